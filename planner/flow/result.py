@@ -1,0 +1,175 @@
+"""The one result object of a load flow, converged or not."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ..network.compile import PQ, PV, SLACK, KIND_NAMES, Compiled
+
+STATUS = {
+    0: "converged",
+    1: "iteration limit reached",
+    2: "diverged",
+    3: "singular Jacobian",
+    4: "low-voltage solution rejected",
+    5: "reactive-limit switching did not settle",
+}
+
+
+@dataclass
+class FlowResult:
+    """Outcome of :func:`planner.flow.newton.solve_flow`.
+
+    Always check ``converged`` (or ``status == 0``) before using the voltages: a failed
+    solve returns its last iterate with ``message``, ``worst_bus`` and ``mismatch_history``
+    saying what went wrong.
+    """
+    converged: bool
+    status: int
+    message: str
+    iterations: int
+    mismatch_history: list
+    worst_bus: int | None
+    worst_mismatch_mva: float
+    losses_mw: float
+    losses_mvar: float
+    solve_seconds: float
+    limited_buses: list
+    v: np.ndarray
+    compiled: Compiled
+    limit_state: np.ndarray          # +1 held at max Mvar, -1 at min, 0 on voltage control
+    kind: np.ndarray                 # bus kinds as solved (codes)
+    buses: pd.DataFrame | None = None
+    generators: pd.DataFrame | None = None
+    branches: pd.DataFrame | None = None
+    bus_q_gen: np.ndarray = field(default=None, repr=False)   # pu per bus
+    bus_p_gen: np.ndarray = field(default=None, repr=False)
+
+    @property
+    def vm(self) -> np.ndarray:
+        return np.abs(self.v)
+
+    @property
+    def va_deg(self) -> np.ndarray:
+        return np.rad2deg(np.angle(self.v))
+
+    def summary(self) -> str:
+        """A few lines a person reads: convergence, losses, voltage extremes, limited generators."""
+        c = self.compiled
+        lines = [f"load flow: {self.message}" + ("" if self.converged else
+                 f"; worst bus {self.worst_bus} mismatch {self.worst_mismatch_mva:.4g} MVA")]
+        lines.append(f"iterations: {self.iterations}   Newton time: {self.solve_seconds * 1000:.1f} ms")
+        if self.converged:
+            vm = self.vm
+            alive = c.alive
+            lo = np.flatnonzero(alive)[np.argmin(vm[alive])]
+            hi = np.flatnonzero(alive)[np.argmax(vm[alive])]
+            lines.append(f"losses: {self.losses_mw:.4f} MW, {self.losses_mvar:.4f} Mvar")
+            lines.append(f"lowest voltage: {vm[lo]:.4f} pu at bus {c.bus_ids[lo]} {c.names[lo]}".rstrip())
+            lines.append(f"highest voltage: {vm[hi]:.4f} pu at bus {c.bus_ids[hi]} {c.names[hi]}".rstrip())
+            if self.limited_buses:
+                lines.append("generators at a reactive limit: " + ", ".join(
+                    f"bus {b} ({'max' if s > 0 else 'min'})" for b, s in
+                    zip(self.limited_buses, self.limit_state[c.index_of(self.limited_buses)])))
+            else:
+                lines.append("generators at a reactive limit: none")
+        return "\n".join(lines)
+
+
+def branch_flows(c: Compiled, v: np.ndarray):
+    """Complex power entering each branch at its from and to ends (pu)."""
+    yff, yft, ytf, ytt = c.branch_admittances()
+    vf, vt = v[c.f], v[c.t]
+    s_from = vf * np.conj(yff * vf + yft * vt)
+    s_to = vt * np.conj(ytf * vf + ytt * vt)
+    return s_from, s_to
+
+
+def build_result(c: Compiled, y, v, kind, q_fixed, at_limit, *, status, message, iterations, history,
+                 seconds, build_tables=True) -> FlowResult:
+    from .newton import bus_mismatch, load_power  # local: newton imports this module
+
+    base = c.base_mva
+    mis = bus_mismatch(c, y, v, q_fixed)
+    # only equations that were solved count for the worst bus (P at PV/PQ, Q at PQ)
+    solved_p = (kind != SLACK) & c.alive
+    solved_q = (kind == PQ) & c.alive
+    err = np.abs(np.where(solved_p, mis.real, 0.0)) + 1j * np.abs(np.where(solved_q, mis.imag, 0.0))
+    worst = int(np.argmax(np.abs(err))) if c.n else 0
+    s_from, s_to = branch_flows(c, v)
+    loss = s_from + s_to
+    vm = np.abs(v)
+    s_load = load_power(c, vm)
+    s_calc = v * np.conj(y @ v)
+    s_gen_bus = s_calc + s_load            # generation that balances each bus
+    # buses whose Q is not solved for keep their scheduled values
+    q_gen_bus = np.where(kind == PQ, c.s_gen.imag + q_fixed, s_gen_bus.imag)
+    p_gen_bus = np.where(kind == SLACK, s_gen_bus.real, c.s_gen.real)
+    limited = [int(b) for b in c.bus_ids[at_limit != 0]]
+    res = FlowResult(
+        converged=status == 0, status=status, message=message, iterations=iterations,
+        mismatch_history=list(history), worst_bus=int(c.bus_ids[worst]) if c.n else None,
+        worst_mismatch_mva=float(np.abs(err[worst]) * base) if c.n else 0.0,
+        losses_mw=float(loss.real.sum() * base), losses_mvar=float(loss.imag.sum() * base),
+        solve_seconds=seconds, limited_buses=limited, v=v, compiled=c, limit_state=at_limit.copy(),
+        kind=kind.copy(), bus_q_gen=q_gen_bus, bus_p_gen=p_gen_bus,
+    )
+    if build_tables:
+        res.buses = pd.DataFrame({
+            "bus": c.bus_ids, "name": c.names, "kind": KIND_NAMES[kind], "v_pu": vm,
+            "angle_deg": np.rad2deg(np.angle(v)),
+            "p_inj_mw": (p_gen_bus - s_load.real) * base, "q_inj_mvar": (q_gen_bus - s_load.imag) * base,
+            "p_load_mw": s_load.real * base, "q_load_mvar": s_load.imag * base,
+            "p_gen_mw": p_gen_bus * base, "q_gen_mvar": q_gen_bus * base,
+            "v_min_pu": c.v_min, "v_max_pu": c.v_max,
+        })
+        res.generators = generator_table(c, kind, p_gen_bus, q_gen_bus, at_limit)
+        rating = c.rating
+        s_max = np.maximum(np.abs(s_from), np.abs(s_to)) * base
+        res.branches = pd.DataFrame({
+            "branch_id": c.branch_ids, "element": c.branch_element,
+            "from_bus": c.bus_ids[c.f], "to_bus": c.bus_ids[c.t],
+            "p_from_mw": s_from.real * base, "q_from_mvar": s_from.imag * base,
+            "p_to_mw": s_to.real * base, "q_to_mvar": s_to.imag * base,
+            "loss_mw": loss.real * base, "loss_mvar": loss.imag * base,
+            "rating_mva": rating,
+            "loading_pct": np.where(rating > 0, 100.0 * s_max / np.where(rating > 0, rating, 1.0), np.nan),
+        })
+    return res
+
+
+def generator_table(c: Compiled, kind, p_gen_bus, q_gen_bus, at_limit) -> pd.DataFrame:
+    """Share each bus's generation among its generators.
+
+    Rule: reactive output is shared in proportion to each generator's reactive range
+    (Q_g = Qmin_g + (Q_bus - Qmin_bus) * range_g / range_bus; equal shares when the ranges are
+    all zero). At a slack bus the active balance beyond the scheduled outputs is shared
+    equally. Generators at PQ buses keep their scheduled output.
+    """
+    base = c.base_mva
+    gb = c.gen_bus
+    n = c.n
+    ng = len(gb)
+    p = c.gen_p.copy()
+    q = c.gen_q.copy()
+    count = np.bincount(gb, minlength=n).astype(float)
+    controlled = kind[gb] != PQ
+    limited = at_limit[gb] != 0
+    share_q = controlled | limited
+    rng = c.gen_q_max - c.gen_q_min
+    rng_bus = np.bincount(gb, rng, n)
+    frac = np.where(rng_bus[gb] > 0, rng / np.where(rng_bus[gb] > 0, rng_bus[gb], 1.0), 1.0 / count[gb])
+    q = np.where(share_q, c.gen_q_min + (q_gen_bus[gb] - c.q_min[gb]) * frac, q)
+    # equal-share case: q_min offsets must not be counted when ranges are zero
+    q = np.where(share_q & (rng_bus[gb] <= 0), q_gen_bus[gb] / count[gb], q)
+    slack = kind[gb] == SLACK
+    extra = p_gen_bus - np.bincount(gb, c.gen_p, n)
+    p = np.where(slack, p + extra[gb] / count[gb], p)
+    state = np.where(at_limit[gb] > 0, "max", np.where(at_limit[gb] < 0, "min", ""))
+    return pd.DataFrame({
+        "gen_id": c.gen_ids, "bus": c.bus_ids[gb] if ng else np.array([], np.int64),
+        "p_mw": p * base, "q_mvar": q * base,
+        "q_min_mvar": c.gen_q_min * base, "q_max_mvar": c.gen_q_max * base, "at_limit": state,
+    })
