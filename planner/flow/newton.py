@@ -70,7 +70,7 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
     >>> res.converged, res.iterations
     (True, 3)
     >>> round(res.losses_mw, 4)
-    0.3237
+    0.3063
     """
     c = compiled if compiled is not None else compile_network(net)
     tol = (1e-8 * c.base_mva if tol_mva is None else float(tol_mva)) / c.base_mva
