@@ -1,0 +1,115 @@
+"""Load-flow scaling figures on synthetic networks (prints a table; not a pytest module).
+
+    python tests/perf/bench_flow.py            # tiled IEEE 30-bus and meshed grid, 300 .. 20,000 buses
+    python tests/perf/bench_flow.py --quick    # sizes up to 3,000 only
+
+For each case: buses, branches, Newton iterations, total solve time (FlowResult.solve_seconds),
+the time of one sparse LU factorisation (scipy.sparse.linalg.splu) of the solver's own
+Jacobian at the solution, the ratio solve / (iterations x one LU), and whether a flat start
+converged (a DC start is tried when it did not). Finally the import time of the solver module
+in a fresh interpreter.
+"""
+from __future__ import annotations
+
+import argparse
+import re
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import scipy.sparse.linalg as spla
+
+from planner.flow.jacobian import JacobianPattern
+from planner.flow.newton import solve_flow
+from planner.network.cdf import read_cdf
+from planner.network.compile import PQ, PV, compile_network
+from planner.network.synthetic import meshed_grid, tiled_network
+
+DATA = Path(__file__).resolve().parents[1] / "data"
+SIZES = (300, 1_000, 3_000, 10_000, 20_000)
+
+
+def jacobian_at(res):
+    """The solver's Jacobian at a solved point, with the final PV / PQ split."""
+    c = res.compiled
+    kind = np.where(res.limit_state != 0, PQ, c.kind)
+    pv = np.flatnonzero((kind == PV) & c.alive)
+    pq = np.flatnonzero((kind == PQ) & c.alive)
+    y = c.ybus()
+    pattern = JacobianPattern(y, np.concatenate([pv, pq]), pq)
+    vm = np.abs(res.v)
+    return pattern.matrix(res.v, c.s_load_i + 2.0 * c.s_load_z * vm)
+
+
+def time_lu(j, repeat=5):
+    best = np.inf
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        spla.splu(j)
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def cases(sizes):
+    ieee30 = read_cdf(DATA / "ieee30cdf.txt")
+    for n in sizes:
+        copies = max(1, round(n / len(ieee30.buses)))
+        yield f"ieee30 x{copies}", lambda copies=copies: tiled_network(ieee30, copies, seed=0)
+    for n in sizes:
+        side = int(round(np.sqrt(n)))
+        yield f"grid {side}x{side}", lambda side=side: meshed_grid(side, side, seed=0)
+
+
+def run(sizes):
+    head = (f"{'case':<14}{'buses':>8}{'branches':>10}{'iters':>7}{'solve s':>10}{'one LU s':>10}"
+            f"{'ratio':>8}  {'flat start':<12}{'compile s':>10}")
+    print(head)
+    print("-" * len(head))
+    for label, make in cases(sizes):
+        net = make()
+        t0 = time.perf_counter()
+        c = compile_network(net)
+        t_compile = time.perf_counter() - t0
+        res = solve_flow(compiled=c, start="flat", build_tables=False)
+        flat = "yes" if res.converged else "no"
+        if not res.converged:
+            res = solve_flow(compiled=c, start="dc", build_tables=False)
+            flat = "no; dc " + ("yes" if res.converged else "no")
+        t_lu = time_lu(jacobian_at(res))
+        ratio = res.solve_seconds / (max(res.iterations, 1) * t_lu)
+        print(f"{label:<14}{c.n:>8}{len(c.f):>10}{res.iterations:>7}{res.solve_seconds:>10.3f}{t_lu:>10.4f}"
+              f"{ratio:>8.2f}  {flat:<12}{t_compile:>10.3f}", flush=True)
+
+
+def import_times():
+    out = subprocess.run([sys.executable, "-X", "importtime", "-c", "import planner.flow.newton"],
+                         capture_output=True, text=True, check=True).stderr
+    cum = [int(m.group(1)) for m in re.finditer(r"import time:\s+\d+ \|\s+(\d+) \| planner\.flow\.newton\s*$",
+                                                 out, re.M)]
+    if cum:
+        print(f"import planner.flow.newton (fresh interpreter, -X importtime cumulative): {cum[-1] / 1e6:.3f} s")
+    for mod in ("planner.flow.newton", "planner.cli"):
+        best = np.inf
+        for _ in range(3):
+            t0 = time.perf_counter()
+            r = subprocess.run([sys.executable, "-c", f"import {mod}"], capture_output=True, text=True)
+            best = min(best, time.perf_counter() - t0)
+        if r.returncode == 0:
+            print(f"python -c 'import {mod}' wall time (best of 3, includes interpreter start): {best:.3f} s")
+        else:
+            print(f"python -c 'import {mod}' failed: {r.stderr.strip().splitlines()[-1]}")
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="sizes up to 3,000 buses only")
+    args = ap.parse_args(argv)
+    run(SIZES[:3] if args.quick else SIZES)
+    print()
+    import_times()
+
+
+if __name__ == "__main__":
+    main()
