@@ -1,0 +1,413 @@
+"""Read and write the IEEE Common Data Format (an open standard, IEEE Trans. PAS-92(6), 1973).
+
+Fields sit in fixed columns; see ``BUS_FIELDS`` and ``BRANCH_FIELDS`` (1-based, inclusive).
+The reader is tolerant of what real files contain: CRLF or mixed line endings, a leading ``TAPE``
+line, lines shorter than the last field (missing fields read as 0 or blank), blank numeric fields
+(read as 0), and the trailing sections (loss zones, interchange, tie lines, ``END OF DATA``), which
+carry nothing a load flow needs and are skipped. Anything it cannot read is an ``InputError``
+naming the file, the line and the field.
+
+Mapping to the model:
+
+* bus type 0 or 1 -> ``PQ``, 2 -> ``PV``, 3 -> ``slack``;
+* a load ``D<bus>`` (constant power) where load MW or Mvar is non-zero;
+* a generator ``G<bus>`` where there is generation or the bus is type 2 or 3; its setpoint is the
+  desired voltage (the final voltage if that is 0); type 2 and 3 buses take their reactive limits
+  from the max/min Mvar fields (both 0 means no limits given: +/-9999 Mvar);
+* shunt G and B (pu on the system base) -> ``gs_mw``/``bs_mvar`` of the bus;
+* branch type 0 with ratio 0 (and no phase shift) -> a line; anything else -> a transformer whose
+  ratio sits on the tap bus (``tap_side="from"``, ``from_bus`` = tap bus); ratio 0 means 1.0;
+  tap limits from the min/max tap fields (0.9/1.1 when both are 0 or for phase shifters); the
+  ratio is ``adjustable`` for types 2 and 3 (variable tap), not for types 0, 1 and 4;
+* branch ids are ``"<tap>-<Z>"``; parallel branches between the same buses get
+  ``"<tap>-<Z>#<circuit>"``;
+* the stored solution (final voltage and angle) -> ``buses.v_pu`` / ``buses.angle_deg``.
+
+A section header that states its number of items (``20 ITEMS``) is checked against the records
+found: a mismatch means a record was lost or added, and is an error.
+
+>>> import os, tempfile
+>>> from planner.network.model import Network, make_table
+>>> net = Network(base_mva=100.0, name="two-bus",
+...     buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack"},
+...                                {"bus": 2, "base_kv": 110.0, "kind": "PQ"}]),
+...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0, "v_set_pu": 1.02}]),
+...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "p_mw": 50.0, "q_mvar": 20.0}]),
+...     lines=make_table("lines", [{"line_id": "1-2", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.1}]))
+>>> path = os.path.join(tempfile.mkdtemp(), "two.cdf")
+>>> write_cdf(net, path)
+>>> back = read_cdf(path)
+>>> back.buses.kind.tolist(), float(back.generators.v_set_pu[0]), float(back.loads.p_mw[0])
+(['slack', 'PQ'], 1.02, 50.0)
+"""
+from __future__ import annotations
+
+import os
+import re
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from planner.errors import InputError, PlannerError
+from planner.network.model import Network, make_table
+
+# (key, label, first column, last column, kind) with columns 1-based inclusive, as in the standard.
+TITLE_FIELDS = [
+    ("base_mva", "system MVA base", 32, 37, "float"),
+    ("case", "case identification", 46, 73, "str"),
+]
+BUS_FIELDS = [
+    ("bus", "bus number", 1, 4, "int"),
+    ("name", "name", 6, 17, "str"),
+    ("area", "area", 19, 20, "int"),
+    ("zone", "loss zone", 21, 23, "int"),
+    ("type", "type", 25, 26, "int"),
+    ("v", "final voltage", 28, 33, "float"),
+    ("angle", "final angle", 34, 40, "float"),
+    ("load_mw", "load MW", 41, 49, "float"),
+    ("load_mvar", "load Mvar", 50, 59, "float"),
+    ("gen_mw", "generation MW", 60, 67, "float"),
+    ("gen_mvar", "generation Mvar", 68, 75, "float"),
+    ("base_kv", "base kV", 77, 83, "float"),
+    ("v_desired", "desired voltage", 85, 90, "float"),
+    ("q_max", "maximum Mvar or voltage", 91, 98, "float"),
+    ("q_min", "minimum Mvar or voltage", 99, 106, "float"),
+    ("g", "shunt G", 107, 114, "float"),
+    ("b", "shunt B", 115, 122, "float"),
+    ("remote", "remote controlled bus", 124, 127, "int"),
+]
+BRANCH_FIELDS = [
+    ("tap_bus", "tap bus", 1, 4, "int"),
+    ("z_bus", "Z bus", 6, 9, "int"),
+    ("area", "area", 11, 12, "int"),
+    ("zone", "loss zone", 13, 14, "int"),
+    ("circuit", "circuit", 17, 17, "int"),
+    ("type", "type", 19, 19, "int"),
+    ("r", "R", 20, 29, "float"),
+    ("x", "X", 30, 40, "float"),
+    ("b", "line charging B", 41, 50, "float"),
+    ("rating1", "rating 1", 51, 55, "float"),
+    ("rating2", "rating 2", 57, 61, "float"),
+    ("rating3", "rating 3", 63, 67, "float"),
+    ("ctrl_bus", "controlled bus", 69, 72, "int"),
+    ("side", "side", 74, 74, "int"),
+    ("ratio", "final turns ratio", 77, 82, "float"),
+    ("shift", "final phase shift", 84, 90, "float"),
+    ("tap_min", "minimum tap", 91, 97, "float"),
+    ("tap_max", "maximum tap", 98, 104, "float"),
+    ("step", "tap step", 106, 111, "float"),
+    ("ctrl_min", "minimum controlled value", 113, 119, "float"),
+    ("ctrl_max", "maximum controlled value", 120, 126, "float"),
+]
+
+# A number with an explicit decimal point or an integer, optional exponent (E or Fortran D).
+# Stricter than float(): rejects "nan", "inf" and "1_0", which float() would accept.
+_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eEdD][+-]?\d+)?")
+_ITEMS = re.compile(r"(\d+)\s+ITEMS", re.IGNORECASE)
+_WIDE_Q = 9999.0
+# Fields a load flow does not need are not read: real files are not always aligned there (the
+# archive files put the maximum controlled value at columns 119-121, overlapping the minimum),
+# and garbage in a field nobody uses should not stop a study. The writer still fills them.
+_NOT_READ = {"zone", "rating2", "rating3", "ctrl_bus", "side", "ctrl_min", "ctrl_max", "remote"}
+
+
+def _parse_fields(text: str, fields, file, lineno, section):
+    """Slice one fixed-column record into a dict; blank or missing numeric fields read as 0."""
+    out = {}
+    for key, label, a, b, kind in fields:
+        if key in _NOT_READ:
+            continue
+        raw = text[a - 1:b].strip()
+        if kind == "str":
+            out[key] = raw
+            continue
+        where = f"{section} section, field '{label}' (cols {a}-{b})" if a != b else \
+            f"{section} section, field '{label}' (col {a})"
+        if raw == "":
+            out[key] = 0 if kind == "int" else 0.0
+            continue
+        if not _NUMBER.fullmatch(raw):
+            raise InputError(f"cannot read {raw!r} as a number", file=file, line=lineno, field=where)
+        value = float(raw.replace("d", "e").replace("D", "e"))
+        if not np.isfinite(value):
+            raise InputError(f"{raw!r} is out of range", file=file, line=lineno, field=where)
+        if kind == "int":
+            if value != int(value):
+                raise InputError(f"{raw!r} is not a whole number", file=file, line=lineno, field=where)
+            value = int(value)
+        out[key] = value
+    return out
+
+
+def _split_lines(data: bytes):
+    # latin-1 maps every byte to one character, so the fixed columns stay byte columns and no
+    # byte sequence can fail to decode; CR, LF and CRLF all end a line.
+    return re.split(r"\r\n|\r|\n", data.decode("latin-1"))
+
+
+def _section(lines, start, file, name):
+    """Records of the section whose header is at index ``start``: (line number, text) pairs up
+    to the ``-999`` terminator; blank lines are skipped."""
+    records = []
+    i = start + 1
+    while i < len(lines):
+        text = lines[i]
+        if text.strip().startswith("-999"):
+            break
+        if text.strip():
+            records.append((i + 1, text))
+        i += 1
+    else:
+        raise InputError(f"{name} section that starts at line {start + 1} has no closing -999 line",
+                         file=file, line=len(lines), field=f"{name} section")
+    m = _ITEMS.search(lines[start])
+    if m and int(m.group(1)) != len(records):
+        hint = ""
+        seen = {}
+        for ln, text in records:
+            key = text.rstrip()
+            if key in seen:
+                hint = f"; line {ln} repeats line {seen[key]} exactly"
+                break
+            seen[key] = ln
+        raise InputError(f"header declares {int(m.group(1))} items but the section has "
+                         f"{len(records)} records{hint}",
+                         file=file, line=start + 1, field=f"{name} section header")
+    return records, i
+
+
+def read_cdf(path) -> Network:
+    """Read an IEEE Common Data Format file into a ``Network``.
+
+    Raises ``InputError`` (one line: file, line number, field) for anything it cannot read.
+    See the module docstring for how records map to the model's tables.
+    """
+    file = str(path)
+    try:
+        data = Path(path).read_bytes()
+    except OSError as exc:
+        raise InputError(f"cannot read file: {exc.strerror or exc}", file=file) from None
+    lines = _split_lines(data)
+
+    bus_hdr = next((i for i, t in enumerate(lines) if t.lstrip().upper().startswith("BUS")), None)
+    if bus_hdr is None:
+        raise InputError("no bus section (a line starting 'BUS DATA FOLLOWS'): not an IEEE CDF file",
+                         file=file)
+    # The title is the line before the bus section, unless that is the optional TAPE line.
+    base_mva, case = 100.0, ""
+    title_idx = bus_hdr - 1
+    if title_idx >= 0 and lines[title_idx].strip().upper() != "TAPE":
+        title = _parse_fields(lines[title_idx], TITLE_FIELDS, file, title_idx + 1, "title")
+        base_mva, case = title["base_mva"], title["case"]
+        if base_mva <= 0:
+            raise InputError(f"system MVA base must be positive, got {base_mva:g}", file=file,
+                             line=title_idx + 1, field="title line, field 'system MVA base' (cols 32-37)")
+
+    bus_records, bus_end = _section(lines, bus_hdr, file, "bus")
+    br_hdr = next((i for i in range(bus_end + 1, len(lines))
+                   if lines[i].lstrip().upper().startswith("BRANCH")), None)
+    if br_hdr is None:
+        raise InputError("no branch section (a line starting 'BRANCH DATA FOLLOWS') after the bus section",
+                         file=file, line=bus_end + 1)
+    branch_records, _ = _section(lines, br_hdr, file, "branch")
+
+    buses, loads, gens = [], [], []
+    seen_bus = {}
+    for lineno, text in bus_records:
+        f = _parse_fields(text, BUS_FIELDS, file, lineno, "bus")
+        n = f["bus"]
+        if n <= 0:
+            raise InputError(f"bus number must be positive, got {n}", file=file, line=lineno,
+                             field="bus section, field 'bus number' (cols 1-4)")
+        if n in seen_bus:
+            raise InputError(f"bus {n} is already defined at line {seen_bus[n]}", file=file,
+                             line=lineno, field="bus section, field 'bus number' (cols 1-4)")
+        seen_bus[n] = lineno
+        btype = f["type"]
+        if btype not in (0, 1, 2, 3):
+            raise InputError(f"bus type must be 0, 1, 2 or 3, got {btype}", file=file, line=lineno,
+                             field="bus section, field 'type' (cols 25-26)")
+        kind = {0: "PQ", 1: "PQ", 2: "PV", 3: "slack"}[btype]
+        v_final = f["v"] if f["v"] > 0 else 1.0   # 0 (blank) is no stored solution: start at 1 pu
+        buses.append({"bus": n, "name": f["name"], "base_kv": f["base_kv"], "kind": kind,
+                      "gs_mw": f["g"] * base_mva, "bs_mvar": f["b"] * base_mva, "area": f["area"],
+                      "v_pu": v_final, "angle_deg": f["angle"]})
+        if f["load_mw"] != 0 or f["load_mvar"] != 0:
+            loads.append({"load_id": f"D{n}", "bus": n, "p_mw": f["load_mw"], "q_mvar": f["load_mvar"]})
+        if btype in (2, 3) or f["gen_mw"] != 0 or f["gen_mvar"] != 0:
+            q_min, q_max = -_WIDE_Q, _WIDE_Q
+            if btype in (2, 3) and (f["q_max"] != 0 or f["q_min"] != 0):
+                q_min, q_max = f["q_min"], f["q_max"]
+            gens.append({"gen_id": f"G{n}", "bus": n, "p_mw": f["gen_mw"], "q_mvar": f["gen_mvar"],
+                         "v_set_pu": f["v_desired"] if f["v_desired"] > 0 else v_final,
+                         "q_min_mvar": q_min, "q_max_mvar": q_max})
+
+    parsed = []
+    for lineno, text in branch_records:
+        f = _parse_fields(text, BRANCH_FIELDS, file, lineno, "branch")
+        if f["type"] not in (0, 1, 2, 3, 4):
+            raise InputError(f"branch type must be 0 to 4, got {f['type']}", file=file, line=lineno,
+                             field="branch section, field 'type' (col 19)")
+        parsed.append((lineno, f))
+    ids = _branch_ids([(f["tap_bus"], f["z_bus"], f["circuit"]) for _, f in parsed])
+
+    lines_out, xfmrs = [], []
+    for (lineno, f), bid in zip(parsed, ids):
+        common = {"from_bus": f["tap_bus"], "to_bus": f["z_bus"], "r_pu": f["r"], "x_pu": f["x"],
+                  "b_pu": f["b"], "rating_mva": f["rating1"]}
+        if f["type"] == 0 and f["ratio"] == 0 and f["shift"] == 0:
+            lines_out.append({"line_id": bid, **common})
+            continue
+        shifter = f["type"] == 4
+        lo, hi = f["tap_min"], f["tap_max"]
+        if shifter or (lo == 0 and hi == 0):
+            lo, hi = 0.9, 1.1
+        xfmrs.append({"xfmr_id": bid, **common,
+                      "ratio_pu": f["ratio"] if f["ratio"] != 0 else 1.0, "tap_side": "from",
+                      "shift_deg": f["shift"], "ratio_min_pu": lo, "ratio_max_pu": hi,
+                      "ratio_step_pu": f["step"] if f["type"] in (2, 3) else 0.0,
+                      "adjustable": f["type"] in (2, 3)})
+
+    def table(kind, records):
+        return make_table(kind, records) if records else None
+
+    net = Network(base_mva=float(base_mva), name=case or Path(file).stem, source=file,
+                  **{k: v for k, v in (("buses", table("buses", buses)), ("loads", table("loads", loads)),
+                                       ("generators", table("generators", gens)),
+                                       ("lines", table("lines", lines_out)),
+                                       ("transformers", table("transformers", xfmrs))) if v is not None})
+    return net
+
+
+def _branch_ids(keys):
+    """Ids for branches given as (tap bus, Z bus, circuit): ``"i-j"`` when a pair of buses has one
+    branch, ``"i-j#c"`` for parallel ones (c is the circuit, or the next free number)."""
+    pair = [frozenset((a, b)) for a, b, _ in keys]
+    counts = pd.Series(pair, dtype=object).value_counts() if keys else {}
+    used, out = set(), []
+    for (a, b, c), p in zip(keys, pair):
+        if counts[p] == 1:
+            bid = f"{a}-{b}"
+        else:
+            c = c if c > 0 else 1
+            bid = f"{a}-{b}#{c}"
+            while bid in used:
+                c += 1
+                bid = f"{a}-{b}#{c}"
+        used.add(bid)
+        out.append(bid)
+    return out
+
+
+# --- writer ---------------------------------------------------------------------------------
+
+def _fmt(value, a, b, record, label, kind="float"):
+    """Right-justify a number in columns a..b. The exact (shortest round-trip) decimal is used when
+    it fits; otherwise the value is rounded to fit, keeping a leading space so fields stay apart."""
+    width = b - a + 1
+    if kind == "int":
+        s = str(int(value))
+        if len(s) > width:
+            raise PlannerError(f"{record}: {label}: {s} does not fit in CDF columns {a}-{b}")
+        return s.rjust(width)
+    v = float(value)
+    if not np.isfinite(v):
+        raise PlannerError(f"{record}: {label}: non-finite value {v} cannot be written")
+    if v == 0:
+        v = 0.0   # no "-0.0"
+    exact = np.format_float_positional(v, trim="-")
+    exact = exact if "." in exact else exact + ".0"
+    if len(exact) <= width:
+        return exact.rjust(width)
+    for room in (width - 1, width):
+        for d in range(room, -1, -1):
+            s = f"{v:.{d}f}" + ("." if d == 0 else "")
+            if len(s) <= room:
+                head, tail = s.split(".")
+                return f"{head}.{tail.rstrip('0') or '0'}".rjust(width)
+    raise PlannerError(f"{record}: {label}: {v} does not fit in CDF columns {a}-{b}")
+
+
+def _record(fields, values, record):
+    line = [" "] * max(b for _, _, _, b, _ in fields)
+    for key, label, a, b, kind in fields:
+        if kind == "str":
+            s = str(values.get(key, ""))[: b - a + 1].ljust(b - a + 1)
+        else:   # fields with nothing to say are written as 0, never blank
+            s = _fmt(values.get(key, 0), a, b, record, label, kind)
+        line[a - 1:b] = s
+    return "".join(line).rstrip()
+
+
+def write_cdf(net: Network, path) -> None:
+    """Write a network as an IEEE Common Data Format file that ``read_cdf`` reads back to the same
+    network, within the precision of the fixed columns. The file is written atomically.
+
+    What the format cannot hold: out-of-service elements are left out; several loads or
+    generators on one bus are summed (the first generator's setpoint is kept); voltage-dependent
+    load shares are dropped; shunt banks are written as fixed bus susceptance (steps on x Mvar per
+    step); a transformer with its ratio on the "to" side is written with its buses swapped.
+    """
+    base = float(net.base_mva)
+    buses = net.buses
+    loads = net.loads[net.loads.in_service]
+    gens = net.generators[net.generators.in_service]
+    shunts = net.shunts[net.shunts.in_service]
+    ld = loads.groupby("bus")[["p_mw", "q_mvar"]].sum()
+    gp = gens.groupby("bus")[["p_mw", "q_mvar", "q_min_mvar", "q_max_mvar"]].sum()
+    gv = gens.groupby("bus")["v_set_pu"].first()
+    sh = (shunts.mvar_per_step * shunts.steps_on).groupby(shunts.bus).sum()
+
+    out = [_record(TITLE_FIELDS, {"case": net.name, "base_mva": base}, "title"),
+           f"BUS DATA FOLLOWS                            {len(buses)} ITEMS"]
+    for row in buses.itertuples(index=False):
+        n = row.bus
+        btype = {"PQ": 0, "PV": 2, "slack": 3}.get(row.kind, 0)
+        vals = {"bus": n, "name": row.name, "area": row.area, "zone": 1, "type": btype,
+                "v": row.v_pu, "angle": row.angle_deg, "base_kv": row.base_kv,
+                "g": row.gs_mw / base, "b": (row.bs_mvar + sh.get(n, 0.0)) / base, "remote": 0,
+                "load_mw": ld.p_mw.get(n, 0.0), "load_mvar": ld.q_mvar.get(n, 0.0)}
+        if n in gp.index:
+            vals.update(gen_mw=gp.p_mw[n], gen_mvar=gp.q_mvar[n], v_desired=gv[n])
+            if btype in (2, 3):
+                lo, hi = gp.q_min_mvar[n], gp.q_max_mvar[n]
+                wide = lo <= -_WIDE_Q and hi >= _WIDE_Q
+                vals.update(q_max=0.0 if wide else hi, q_min=0.0 if wide else lo)
+        out.append(_record(BUS_FIELDS, vals, f"bus {n}"))
+    out.append("-999")
+
+    branches = []
+    for row in net.lines[net.lines.in_service].itertuples(index=False):
+        branches.append({"tap_bus": row.from_bus, "z_bus": row.to_bus, "type": 0, "r": row.r_pu,
+                         "x": row.x_pu, "b": row.b_pu, "rating1": row.rating_mva, "ratio": 0.0,
+                         "shift": 0.0, "id": row.line_id})
+    for row in net.transformers[net.transformers.in_service].itertuples(index=False):
+        a, b = (row.from_bus, row.to_bus) if row.tap_side == "from" else (row.to_bus, row.from_bus)
+        branches.append({"tap_bus": a, "z_bus": b, "type": 2 if row.adjustable else 1,
+                         "r": row.r_pu, "x": row.x_pu, "b": row.b_pu, "rating1": row.rating_mva,
+                         "ratio": row.ratio_pu, "shift": row.shift_deg, "tap_min": row.ratio_min_pu,
+                         "tap_max": row.ratio_max_pu, "step": row.ratio_step_pu, "id": row.xfmr_id})
+    out.append(f"BRANCH DATA FOLLOWS                         {len(branches)} ITEMS")
+    for br in branches:
+        m = re.search(r"#(\d)$", str(br.pop("id")))
+        br.update(area=1, zone=1, circuit=int(m.group(1)) if m else 1)
+        out.append(_record(BRANCH_FIELDS, br, f"branch {br['tap_bus']}-{br['z_bus']}"))
+    out += ["-999", "LOSS ZONES FOLLOWS                     0 ITEMS", "-99",
+            "INTERCHANGE DATA FOLLOWS                 0 ITEMS", "-9",
+            "TIE LINES FOLLOWS                     0 ITEMS", "-999", "END OF DATA"]
+    _atomic_write_text(path, "\r\n".join(out) + "\r\n")
+
+
+def _atomic_write_text(path, text: str) -> None:
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent or ".")
+    try:
+        with os.fdopen(fd, "w", encoding="latin-1", errors="replace", newline="") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
