@@ -85,6 +85,9 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
         at_limit = start.limit_state.copy()
         kind = np.where(at_limit != 0, PQ, kind)
         q_fixed = np.where(at_limit > 0, c.q_max, np.where(at_limit < 0, c.q_min, 0.0))
+        # a bus held at a limit starts from its solved voltage, not from its setpoint
+        held = (at_limit != 0) & c.alive
+        v[held] = start.v[held]
     y = c.ybus()
     history: list[float] = []
     iters = 0
