@@ -1,0 +1,216 @@
+"""HTML pieces for the report: escaping, number formats, tables and the page style.
+
+Tables are built from :class:`Table` objects that also feed the CSV output, so a number shown in
+the HTML comes from the same row as the number written to CSV.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import math
+from dataclasses import dataclass, field
+from html import escape
+from typing import Any, Sequence
+
+__all__ = ["esc", "fmt", "Table", "html_table", "csv_text", "CSS"]
+
+
+def esc(value: Any) -> str:
+    """Escape any value for HTML text or an attribute value.
+
+    >>> esc('<b>R&D</b> "x"')
+    '&lt;b&gt;R&amp;D&lt;/b&gt; &quot;x&quot;'
+    """
+    return escape("" if value is None else str(value), quote=True)
+
+
+def _is_num(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def fmt(value: Any, kind: str, *, mw_decimals: int = 3, currency: str = "") -> str:
+    """Format one value for display (plain text, not yet escaped).
+
+    kinds: text, int, pu, mw, mvar, mwh, money, pct, years, ratio, rate, hours, scale, bool.
+
+    >>> fmt(0.91312, "pu"), fmt(1234567.4, "money", currency="EUR"), fmt(float("inf"), "years")
+    ('0.9131', 'EUR 1,234,567', 'never')
+    >>> fmt(None, "mw"), fmt(0.05, "rate"), fmt(True, "bool")
+    ('', '5.0 %', 'yes')
+    """
+    if value is None:
+        return ""
+    if kind == "bool":
+        return "yes" if value else "no"
+    if kind == "text" or not _is_num(value):
+        return str(value)
+    v = float(value)
+    if math.isnan(v):
+        return "n/a"
+    if math.isinf(v):
+        if kind == "years":
+            return "never" if v > 0 else "n/a"
+        return "unbounded" if v > 0 else "-unbounded"
+    if kind == "int":
+        return f"{int(round(v)):,}"
+    if kind == "pu":
+        return f"{v:.4f}"
+    if kind == "mw":
+        return f"{v:.{mw_decimals}f}"
+    if kind == "mvar":
+        return f"{v:.3f}"
+    if kind == "mwh":
+        return f"{v:,.1f}"
+    if kind == "money":
+        s = f"{v:,.0f}"
+        return f"{currency} {s}".strip()
+    if kind == "pct":
+        return f"{v:.1f} %"
+    if kind == "years":
+        return f"{v:.1f}"
+    if kind == "ratio":
+        return f"{v:.2f}"
+    if kind == "rate":
+        return f"{v * 100:.1f} %"
+    if kind == "hours":
+        return f"{v:,.0f}"
+    if kind == "scale":
+        return f"{v:.3f}"
+    return f"{v:g}"
+
+
+@dataclass
+class Table:
+    """A table as columns (key, header, kind) and rows (dicts keyed by column key)."""
+
+    name: str
+    columns: list[tuple[str, str, str]]
+    rows: list[dict] = field(default_factory=list)
+
+    def keys(self) -> list[str]:
+        return [c[0] for c in self.columns]
+
+
+def html_table(table: Table, *, show: Sequence[str] | None = None, rows: Sequence[dict] | None = None,
+               caption: str = "", mw_decimals: int = 3, currency: str = "",
+               row_class=None, css_class: str = "data") -> str:
+    """Render (some columns / rows of) a :class:`Table` as an HTML table; all text escaped.
+
+    Column kind ``pre`` holds text already formatted, aligned right like numbers.
+    """
+    cols = [c for c in table.columns if show is None or c[0] in show]
+    if show is not None:
+        order = {k: i for i, k in enumerate(show)}
+        cols.sort(key=lambda c: order[c[0]])
+    body_rows = table.rows if rows is None else rows
+    out = [f'<table class="{esc(css_class)}" data-table="{esc(table.name)}">']
+    if caption:
+        out.append(f"<caption>{esc(caption)}</caption>")
+    out.append("<thead><tr>" + "".join(
+        f'<th class="{"num" if c[2] not in ("text", "bool") else "txt"}">{esc(c[1])}</th>'
+        for c in cols) + "</tr></thead><tbody>")
+    for r in body_rows:
+        cls = row_class(r) if row_class else ""
+        tr = f'<tr class="{esc(cls)}">' if cls else "<tr>"
+        cells = []
+        for key, _, kind in cols:
+            v = r.get(key)
+            text = v if isinstance(v, str) and kind != "text" else fmt(
+                v, kind, mw_decimals=mw_decimals, currency=currency)
+            align = "num" if kind not in ("text", "bool") else "txt"
+            cells.append(f'<td class="{align}">{esc(text)}</td>')
+        out.append(tr + "".join(cells) + "</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+_CSV_RISKY = ("=", "+", "@", "\t", "\r")
+
+
+def _csv_cell(v: Any) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if _is_num(v):
+        return repr(float(v)) if isinstance(v, float) else str(v)
+    s = str(v)
+    # A spreadsheet would run a cell starting with these as a formula; a leading quote keeps it
+    # text (common practice against formula injection).
+    if s.startswith(_CSV_RISKY) or (s.startswith("-") and not _looks_numeric(s)):
+        s = "'" + s
+    return s
+
+
+def _looks_numeric(s: str) -> bool:
+    try:
+        float(s)
+        return True
+    except ValueError:
+        return False
+
+
+def csv_text(table: Table) -> str:
+    """CSV of a table, header = column keys, full float precision.
+
+    >>> print(csv_text(Table("t", [("bus", "Bus", "int"), ("v_pu", "V", "pu")],
+    ...                          [{"bus": 18, "v_pu": 0.91312}])), end="")
+    bus,v_pu
+    18,0.91312
+    """
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(table.keys())
+    for r in table.rows:
+        w.writerow([_csv_cell(r.get(k)) for k in table.keys()])
+    return buf.getvalue()
+
+
+CSS = """
+:root { color-scheme: light; }
+* { box-sizing: border-box; }
+body { font-family: system-ui, -apple-system, 'Segoe UI', Roboto, 'DejaVu Sans', Arial, sans-serif;
+  color: #1a1a1a; background: #ffffff; margin: 0; line-height: 1.45; font-size: 15px; }
+main { max-width: 1040px; margin: 0 auto; padding: 24px 28px 48px; }
+header.report { border-bottom: 3px solid #0072B2; margin-bottom: 18px; padding-bottom: 10px; }
+h1 { font-size: 26px; margin: 0 0 6px; }
+h2 { font-size: 21px; margin: 34px 0 10px; padding-bottom: 4px; border-bottom: 1px solid #c8c8c8; }
+h3 { font-size: 17px; margin: 22px 0 8px; }
+p.meta { color: #444; margin: 2px 0; font-size: 14px; }
+.summary { border: 1px solid #9cc3e0; background: #f3f8fc; padding: 10px 16px; margin: 14px 0; }
+.summary ul { margin: 6px 0; padding-left: 20px; }
+.warn { border-left: 5px solid #D55E00; background: #fdf1ea; padding: 8px 12px; margin: 10px 0; }
+.ok { color: #1b6e3a; font-weight: 600; }
+.bad { color: #b2182b; font-weight: 600; }
+table.data { border-collapse: collapse; margin: 8px 0 16px; font-size: 14px;
+  font-variant-numeric: tabular-nums; }
+table.data caption { text-align: left; font-weight: 600; padding: 4px 0; }
+table.data th, table.data td { border: 1px solid #c8c8c8; padding: 4px 9px; }
+table.data th { background: #eef1f4; font-weight: 600; }
+table.data td.num, table.data th.num { text-align: right; }
+table.data td { white-space: nowrap; }
+table.data.wide td:first-child { white-space: normal; min-width: 12em; }
+table.data td.txt, table.data th.txt { text-align: left; }
+table.data tr.unverified td { color: #777; font-style: italic; }
+table.data tr.best td { background: #eef7ee; }
+dl.criteria { display: grid; grid-template-columns: max-content auto; gap: 2px 16px; }
+dl.criteria dt { font-weight: 600; }
+dl.criteria dd { margin: 0; }
+figure { margin: 10px 0 20px; }
+figure svg { display: block; }
+figcaption { font-size: 13px; color: #444; margin-top: 4px; }
+.note { font-size: 13px; color: #444; }
+footer { margin-top: 40px; font-size: 12px; color: #555; border-top: 1px solid #c8c8c8;
+  padding-top: 8px; }
+@page { size: A4; margin: 14mm 12mm; }
+@media print {
+  body { font-size: 10.5pt; }
+  main { max-width: none; padding: 0; }
+  h2.section { break-before: page; page-break-before: always; }
+  figure, table.data tr, .summary, .warn { break-inside: avoid; page-break-inside: avoid; }
+  h2, h3 { break-after: avoid; page-break-after: avoid; }
+  .summary, .warn, table.data th, table.data tr.best td { -webkit-print-color-adjust: exact;
+    print-color-adjust: exact; }
+  a { color: inherit; text-decoration: none; }
+}
+"""
