@@ -1,0 +1,329 @@
+"""Build the mixed-integer model of one optimiser step from linearised data, and solve it.
+
+Following Pyomo's own guidance, :func:`build_model` only builds (from plain arrays) and
+:func:`solve_model` only solves; nothing here runs a load flow.
+
+The loss model of each load level is the convex quadratic ``sum_k s_k^2 + const`` where
+``s = d + R du`` (see :mod:`planner.optimize.sensitivity`: ``R`` comes from a thin QR of the
+resistance-weighted series-current slopes). Each square is replaced by its tangent cuts, so
+the model stays linear; the cuts underestimate by at most ``h^2 / 4`` for spacing ``h``, and
+the outer loop re-linearises anyway.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pyomo.environ as pyo
+
+
+@dataclass
+class LevelData:
+    """Linear model of one load level at the current settings (all pu)."""
+    weight: float                 # objective units per MW of losses at this level
+    d: np.ndarray                 # (k,) square-term offsets
+    R: np.ndarray                 # (k, m) square-term slopes
+    const: float                  # constant part of the losses, pu
+    v_rows: np.ndarray            # bus indices with a voltage row
+    v0: np.ndarray                # their present voltages
+    dv: np.ndarray                # (rows, m)
+    v_lo: np.ndarray
+    v_hi: np.ndarray
+    q_rows: np.ndarray            # generator-bus rows
+    q0: np.ndarray
+    dq: np.ndarray
+    q_lo: np.ndarray
+    q_hi: np.ndarray
+    cur_units: np.ndarray         # (S,) units in service now at each site (fixed + switched on)
+    cur_exist: np.ndarray         # (E,) steps on now of each existing bank
+    v_now: np.ndarray             # (G,) present voltage at each setpoint lever
+
+
+@dataclass
+class StepSpec:
+    """Everything one MILP needs besides the per-level data."""
+    base_mva: float
+    unit_pu: np.ndarray           # (S,) unit size of each site, pu
+    max_units: np.ndarray         # (S,)
+    allow_fixed: np.ndarray       # (S,) bool
+    allow_switched: np.ndarray
+    site_cost: np.ndarray         # money per site
+    mvar_cost: np.ndarray         # money per Mvar
+    sw_mvar_cost: np.ndarray
+    sw_site_cost: np.ndarray
+    existing_sites: np.ndarray    # (S,) bool: already built (does not count as new)
+    max_new_sites: int | None
+    budget: float | None
+    capital_weight: float         # objective units per money
+    exist_step_pu: np.ndarray     # (E,)
+    exist_max: np.ndarray         # (E,)
+    v_lo: np.ndarray              # (G,) setpoint range
+    v_hi: np.ndarray
+    common_setpoints: bool
+    tap_step: np.ndarray          # (T,) pu per step; 0 = continuous
+    tap_lo: np.ndarray            # (L, T) lowest allowed change from now (pu)
+    tap_hi: np.ndarray
+    unit_radius: int
+    v_radius: float
+    tap_radius: float             # pu
+    tangent_points: int
+    penalty: float
+    tie_break: float = 1e-7       # per unit installed, to prefer the smaller of equal plans
+    time_limit: float = 60.0
+    mip_gap: float = 1e-7
+    levels: list = field(default_factory=list)   # list[LevelData]
+
+
+def _lin(coefs, terms, tol=1e-12):
+    """quicksum of coef*term keeping only coefficients that matter."""
+    return pyo.quicksum(float(c) * t for c, t in zip(coefs, terms) if abs(c) > tol)
+
+
+def build_model(spec: StepSpec) -> pyo.ConcreteModel:
+    """A Pyomo model of one trust-region step over all load levels."""
+    m = pyo.ConcreteModel(name="loss_step")
+    S = range(len(spec.unit_pu))
+    E = range(len(spec.exist_step_pu))
+    G = range(len(spec.v_lo))
+    T = range(len(spec.tap_step))
+    L = range(len(spec.levels))
+    nmax = spec.max_units
+    m.z = pyo.Var(S, within=pyo.Binary)
+    m.zs = pyo.Var(S, within=pyo.Binary)
+    m.nf = pyo.Var(S, within=pyo.NonNegativeIntegers,
+                   bounds=lambda _, s: (0, int(nmax[s]) if spec.allow_fixed[s] else 0))
+    m.ns = pyo.Var(S, within=pyo.NonNegativeIntegers,
+                   bounds=lambda _, s: (0, int(nmax[s]) if spec.allow_switched[s] else 0))
+    m.k = pyo.Var(L, S, within=pyo.NonNegativeIntegers, bounds=lambda _, l, s: (0, int(nmax[s])))
+    m.site_cap = pyo.Constraint(S, rule=lambda m, s: m.nf[s] + m.ns[s] <= int(nmax[s]) * m.z[s])
+    m.sw_cap = pyo.Constraint(S, rule=lambda m, s: m.ns[s] <= int(nmax[s]) * m.zs[s])
+    m.steps_cap = pyo.Constraint(L, S, rule=lambda m, l, s: m.k[l, s] <= m.ns[s])
+    if spec.max_new_sites is not None:
+        new = [s for s in S if not spec.existing_sites[s]]
+        m.sites_cap = pyo.Constraint(expr=pyo.quicksum(m.z[s] for s in new) <= int(spec.max_new_sites))
+    mvar = {s: spec.unit_pu[s] * spec.base_mva for s in S}
+    capital = pyo.quicksum(spec.site_cost[s] * m.z[s] + spec.sw_site_cost[s] * m.zs[s]
+                           + spec.mvar_cost[s] * mvar[s] * (m.nf[s] + m.ns[s])
+                           + spec.sw_mvar_cost[s] * mvar[s] * m.ns[s] for s in S)
+    m.capital = pyo.Expression(expr=capital)
+    if spec.budget is not None:
+        m.budget_cap = pyo.Constraint(expr=m.capital <= float(spec.budget))
+
+    # setpoints: one variable per level, or shared
+    lv = [0] if spec.common_setpoints else list(L)
+    v_now = {l: spec.levels[l].v_now for l in L}
+
+    def v_bounds(_, l, g):
+        ref = v_now[l][g]
+        return (max(spec.v_lo[g], ref - spec.v_radius), min(spec.v_hi[g], ref + spec.v_radius))
+    m.v = pyo.Var(lv, G, bounds=lambda _, l, g: _ordered(v_bounds(_, l, g)))
+    m.e = pyo.Var(L, E, within=pyo.NonNegativeIntegers, bounds=lambda _, l, e: (
+        max(0, int(spec.levels[l].cur_exist[e]) - spec.unit_radius),
+        min(int(spec.exist_max[e]), int(spec.levels[l].cur_exist[e]) + spec.unit_radius)))
+
+    def tap_domain(_, l, t):
+        return pyo.Integers if spec.tap_step[t] > 0 else pyo.Reals
+
+    def tap_bounds(_, l, t):
+        lo, hi = max(spec.tap_lo[l, t], -spec.tap_radius), min(spec.tap_hi[l, t], spec.tap_radius)
+        if spec.tap_step[t] > 0:
+            return _ordered((np.ceil(lo / spec.tap_step[t] - 1e-9), np.floor(hi / spec.tap_step[t] + 1e-9)))
+        return _ordered((lo, hi))
+    m.d = pyo.Var(L, T, domain=tap_domain, bounds=tap_bounds)
+
+    obj_terms = [spec.capital_weight * m.capital]
+    tie = []
+    m.levels = pyo.Block(L)
+    for l in L:
+        lev = spec.levels[l]
+        b = m.levels[l]
+        vl = 0 if spec.common_setpoints else l
+        du = ([spec.unit_pu[s] * (m.nf[s] + m.k[l, s] - int(lev.cur_units[s])) for s in S]
+              + [spec.exist_step_pu[e] * (m.e[l, e] - int(lev.cur_exist[e])) for e in E]
+              + [m.v[vl, g] - float(lev.v_now[g]) for g in G]
+              + [(spec.tap_step[t] if spec.tap_step[t] > 0 else 1.0) * m.d[l, t] for t in T])
+        # trust region on bank units at each site
+        b.unit_tr = pyo.ConstraintList()
+        for s in S:
+            b.unit_tr.add(m.nf[s] + m.k[l, s] - int(lev.cur_units[s]) <= spec.unit_radius)
+            b.unit_tr.add(m.nf[s] + m.k[l, s] - int(lev.cur_units[s]) >= -spec.unit_radius)
+        lo_du, hi_du = _du_ranges(spec, lev, l)
+        # loss model: tangent cuts of each square term
+        K = range(len(lev.d))
+        b.s = pyo.Var(K)
+        b.w = pyo.Var(K, within=pyo.NonNegativeReals)
+        b.s_def = pyo.Constraint(K, rule=lambda _, k: b.s[k] == float(lev.d[k]) + _lin(lev.R[k], du))
+        b.cuts = pyo.ConstraintList()
+        for k in K:
+            span = np.abs(lev.R[k]) @ np.maximum(np.abs(lo_du), np.abs(hi_du))
+            lo, hi = lev.d[k] - span, lev.d[k] + span
+            pts = np.unique(np.concatenate([np.linspace(lo, hi, spec.tangent_points), [lev.d[k], 0.0]]))
+            for p in pts:
+                b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
+        b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + float(lev.const))
+        # voltage and reactive rows with penalised slacks
+        VR = range(len(lev.v_rows))
+        b.sv_lo = pyo.Var(VR, within=pyo.NonNegativeReals)
+        b.sv_hi = pyo.Var(VR, within=pyo.NonNegativeReals)
+        b.v_lo_c = pyo.Constraint(VR, rule=lambda _, i: float(lev.v0[i]) + _lin(lev.dv[i], du)
+                                  >= float(lev.v_lo[i]) - b.sv_lo[i])
+        b.v_hi_c = pyo.Constraint(VR, rule=lambda _, i: float(lev.v0[i]) + _lin(lev.dv[i], du)
+                                  <= float(lev.v_hi[i]) + b.sv_hi[i])
+        QR = range(len(lev.q_rows))
+        b.sq_lo = pyo.Var(QR, within=pyo.NonNegativeReals)
+        b.sq_hi = pyo.Var(QR, within=pyo.NonNegativeReals)
+        b.q_lo_c = pyo.Constraint(QR, rule=lambda _, i: float(lev.q0[i]) + _lin(lev.dq[i], du)
+                                  >= float(lev.q_lo[i]) - b.sq_lo[i])
+        b.q_hi_c = pyo.Constraint(QR, rule=lambda _, i: float(lev.q0[i]) + _lin(lev.dq[i], du)
+                                  <= float(lev.q_hi[i]) + b.sq_hi[i])
+        viol = (pyo.quicksum(b.sv_lo[i] + b.sv_hi[i] for i in VR)
+                + pyo.quicksum(b.sq_lo[i] + b.sq_hi[i] for i in QR))
+        obj_terms.append(lev.weight * spec.base_mva * b.loss + spec.penalty * viol)
+        tie.append(pyo.quicksum(m.k[l, s] for s in S))
+    obj_terms.append(spec.tie_break * (pyo.quicksum(m.nf[s] + 2 * m.ns[s] for s in S) + pyo.quicksum(tie)))
+    m.objective = pyo.Objective(expr=pyo.quicksum(obj_terms), sense=pyo.minimize)
+    return m
+
+
+_DEBUG = False
+
+
+def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
+    """Build and solve one step, tightening the loss cuts until they are exact enough.
+
+    The tangent cuts underestimate each square between tangent points. After each solve,
+    cuts are added at the solution's own square-term values (an outer-approximation
+    refinement) until the cut model agrees with the exact quadratic at the solution within
+    ``rel_tol`` of the losses. Returns (solution, number of MILP solves).
+    """
+    m = build_model(spec)
+    solver = new_solver()
+    solves = 0
+    sol = None
+    for _ in range(max_rounds):
+        sol = solve_model(m, spec, solver)
+        solves += 1
+        if not sol.ok:
+            return sol, solves
+        gap = 0.0
+        total = 0.0
+        added = False
+        for l, lev in enumerate(spec.levels):
+            b = m.levels[l]
+            total += lev.weight * float(sol.predicted_loss_pu[l])
+            for k in range(len(lev.d)):
+                sk = pyo.value(b.s[k])
+                excess = sk * sk - pyo.value(b.w[k])
+                if excess > 1e-14:
+                    gap += excess * lev.weight
+                    b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
+                    added = True
+        if _DEBUG:
+            print("  cut round", solves, "gap", gap, "total", total)
+        if not added or gap <= rel_tol * max(total, 1e-12):
+            break
+    return sol, solves
+
+
+def _ordered(bounds):
+    lo, hi = bounds
+    return (lo, hi) if lo <= hi else (hi, hi)
+
+
+def _du_ranges(spec: StepSpec, lev: LevelData, l: int):
+    """Widest change of each lever column allowed in this step (for placing cuts)."""
+    lo, hi = [], []
+    for s in range(len(spec.unit_pu)):
+        cur = lev.cur_units[s]
+        lo.append(spec.unit_pu[s] * max(-cur, -spec.unit_radius))
+        hi.append(spec.unit_pu[s] * min(spec.max_units[s] - cur, spec.unit_radius))
+    for e in range(len(spec.exist_step_pu)):
+        cur = lev.cur_exist[e]
+        lo.append(spec.exist_step_pu[e] * max(-cur, -spec.unit_radius))
+        hi.append(spec.exist_step_pu[e] * min(spec.exist_max[e] - cur, spec.unit_radius))
+    for g in range(len(spec.v_lo)):
+        lo.append(max(spec.v_lo[g] - lev.v_now[g], -spec.v_radius))
+        hi.append(min(spec.v_hi[g] - lev.v_now[g], spec.v_radius))
+    for t in range(len(spec.tap_step)):
+        lo.append(max(spec.tap_lo[l, t], -spec.tap_radius))
+        hi.append(min(spec.tap_hi[l, t], spec.tap_radius))
+    return np.minimum(np.array(lo, float), 0.0), np.maximum(np.array(hi, float), 0.0)
+
+
+@dataclass
+class StepSolution:
+    ok: bool
+    status: str
+    fixed: np.ndarray
+    switched: np.ndarray
+    steps: np.ndarray      # (L, S)
+    exist: np.ndarray      # (L, E)
+    vset: np.ndarray       # (L, G)
+    tap_change: np.ndarray  # (L, T) pu
+    predicted_loss_pu: np.ndarray  # (L,) exact quadratic model at the solution
+    objective: float
+
+
+def new_solver():
+    """A persistent HiGHS interface: re-solves after added cuts update the model in place."""
+    from pyomo.contrib.solver.common.factory import SolverFactory
+
+    return SolverFactory("highs")
+
+
+def solve_model(m: pyo.ConcreteModel, spec: StepSpec, solver=None) -> StepSolution:
+    """Solve with HiGHS and read the solution back as arrays (integers rounded)."""
+    solver = solver or new_solver()
+    try:
+        res = solver.solve(m, load_solutions=False, time_limit=spec_time_limit(spec),
+                           raise_exception_on_nonoptimal_result=False,
+                           solver_options={"mip_rel_gap": spec_mip_gap(spec), "output_flag": False})
+        status = str(res.termination_condition).split(".")[-1]
+        sol = str(res.solution_status).split(".")[-1]
+        ok = sol in ("optimal", "feasible")
+        if ok:
+            res.solution_loader.load_vars()
+    except Exception as exc:  # HiGHS or Pyomo failure: report it, the outer loop decides
+        return _empty_solution(spec, f"solver error: {exc}")
+    if not ok:
+        return _empty_solution(spec, status)
+    S = len(spec.unit_pu)
+    E = len(spec.exist_step_pu)
+    G = len(spec.v_lo)
+    T = len(spec.tap_step)
+    L = len(spec.levels)
+    rnd = lambda x: int(round(pyo.value(x)))  # noqa: E731
+    fixed = np.array([rnd(m.nf[s]) for s in range(S)], int)
+    switched = np.array([rnd(m.ns[s]) for s in range(S)], int)
+    steps = np.array([[rnd(m.k[l, s]) for s in range(S)] for l in range(L)], int).reshape(L, S)
+    exist = np.array([[rnd(m.e[l, e]) for e in range(E)] for l in range(L)], int).reshape(L, E)
+    vset = np.array([[pyo.value(m.v[0 if spec.common_setpoints else l, g]) for g in range(G)]
+                     for l in range(L)], float).reshape(L, G)
+    tap = np.array([[(pyo.value(m.d[l, t]) * spec.tap_step[t] if spec.tap_step[t] > 0
+                      else pyo.value(m.d[l, t])) for t in range(T)] for l in range(L)], float).reshape(L, T)
+    if T:
+        step = np.where(spec.tap_step > 0, spec.tap_step, 1.0)
+        tap = np.where(spec.tap_step > 0, np.round(tap / step) * step, tap)
+    pred = []
+    for l, lev in enumerate(spec.levels):
+        du = np.concatenate([spec.unit_pu * (fixed + steps[l] - lev.cur_units),
+                             spec.exist_step_pu * (exist[l] - lev.cur_exist),
+                             vset[l] - lev.v_now, tap[l]])
+        s = lev.d + lev.R @ du if len(lev.d) else np.zeros(0)
+        pred.append(float(s @ s + lev.const))
+    return StepSolution(True, status, fixed, switched, steps, exist, vset, tap, np.array(pred),
+                        float(pyo.value(m.objective)))
+
+
+def spec_time_limit(spec) -> float:
+    return float(getattr(spec, "time_limit", 60.0))
+
+
+def spec_mip_gap(spec) -> float:
+    return float(getattr(spec, "mip_gap", 1e-7))
+
+
+def _empty_solution(spec, status):
+    L = len(spec.levels)
+    return StepSolution(False, status, np.zeros(0, int), np.zeros(0, int), np.zeros((L, 0), int),
+                        np.zeros((L, 0), int), np.zeros((L, 0)), np.zeros((L, 0)), np.zeros(L), np.inf)

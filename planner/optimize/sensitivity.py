@@ -1,0 +1,214 @@
+"""Sensitivities of a solved AC operating point to the levers.
+
+At a solved point the mismatch equations g(x, u) = 0 hold; for a lever change du the state
+moves by dx = -J^{-1} (dg/du) du, with J the load-flow Jacobian. One sparse LU of J serves
+every lever (one solve per lever column, all in one call).
+
+Levers (columns of the result, in this order):
+  * shunt susceptance at a bus, pu (a bank of rating B Mvar injects B V^2);
+  * voltage magnitude held at a generator bus, pu;
+  * off-nominal ratio of a transformer, pu.
+
+Every generator bus is linearised as voltage-controlled at its present voltage, including a
+bus the load flow holds at a reactive limit: locally that state is the same, and the
+reactive-limit rows then tell the optimiser how far a setpoint may move.
+
+From dx the module returns what the optimiser needs, all linear in du:
+  * bus voltage magnitudes (every bus);
+  * reactive output of every generator bus;
+  * series current of every branch, whose squares weighted by resistance are the losses:
+    ``losses = sum r_b |I_b|^2`` exactly, so ``sum r_b |I_b + dI_b du|^2`` is a convex quadratic
+    model of the losses that keeps their curvature in the levers (first order exact).
+The gradient of the losses is also available by one adjoint solve (:func:`loss_gradient`),
+which cross-checks the quadratic model's slope.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from ..flow.jacobian import JacobianPattern, bus_derivatives
+from ..flow.newton import load_power
+from ..flow.result import FlowResult
+from ..network.compile import PQ, PV, SLACK
+
+
+@dataclass
+class Sensitivity:
+    """Linear model of one operating point: value at the point and slope per lever."""
+    vm0: np.ndarray            # (n,) bus voltage magnitudes
+    dvm: np.ndarray            # (n, m)
+    gen_buses: np.ndarray      # compiled indices of generator (PV and slack) buses
+    q0: np.ndarray             # (g,) reactive output at those buses, pu
+    dq: np.ndarray             # (g, m)
+    i0: np.ndarray             # (nb,) complex series current of every branch
+    di: np.ndarray             # (nb, m) complex
+    r: np.ndarray              # (nb,) series resistance seen by the current (pu)
+    losses0: float             # pu, sum r |i0|^2
+
+
+def series_current_parts(c):
+    """Per branch: series admittance, resistance and the tap factor on the from / to side.
+
+    Series current ``I = ys (V_f k_f - V_t k_t)`` with ``k = 1/a`` on the tap side and 1 on
+    the other; losses are ``Re(1/ys) |I|^2``.
+    """
+    a = c.ratio * np.exp(1j * c.shift)
+    k_f = np.where(c.tap_from, 1.0 / a, 1.0)
+    k_t = np.where(c.tap_from, 1.0, 1.0 / a)
+    r = np.real(1.0 / c.ys)
+    return c.ys, r, k_f, k_t
+
+
+def linearise(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Sensitivity:
+    """Sensitivities at a solved point.
+
+    Parameters
+    ----------
+    flow : a converged FlowResult
+    shunt_buses : compiled bus indices with a shunt-susceptance lever (may repeat)
+    vset_buses : compiled indices of generator buses whose voltage is a lever
+    xfmr_branches : compiled branch indices of transformers whose ratio is a lever
+    """
+    c = flow.compiled
+    v = flow.v
+    n = c.n
+    vm = np.abs(v)
+    kind = np.where(c.kind == SLACK, SLACK, np.where(c.kind == PV, PV, PQ))  # limits lifted
+    shunt_buses = np.asarray(shunt_buses, dtype=np.int64)
+    vset_buses = np.asarray(vset_buses, dtype=np.int64)
+    xfmr_branches = np.asarray(xfmr_branches, dtype=np.int64)
+    ms, mv, mt = len(shunt_buses), len(vset_buses), len(xfmr_branches)
+    m = ms + mv + mt
+
+    y = c.ybus()
+    alive = c.alive
+    pv = np.flatnonzero((kind == PV) & alive)
+    pq = np.flatnonzero((kind == PQ) & alive)
+    pvpq = np.concatenate([pv, pq])
+    pat = JacobianPattern(y, pvpq, pq)
+    dload = c.s_load_i + 2.0 * c.s_load_z * vm
+    J = pat.matrix(v, dload)
+    lu = spla.splu(J)
+    na = len(pvpq)
+
+    # direct change of the computed bus injection S = V conj(Y V) per lever, holding the state
+    ds_direct = np.zeros((n, m), complex)
+    ds_direct[shunt_buses, np.arange(ms)] += -1j * vm[shunt_buses] ** 2
+    d_va, d_vm = bus_derivatives(y, v, pat.diag_pos, pat.rows, dload)
+    dS_dVa = sp.csr_matrix((d_va, y.indices, y.indptr), shape=(n, n))
+    dS_dVm = sp.csr_matrix((d_vm, y.indices, y.indptr), shape=(n, n))
+    if mv:
+        ds_direct[:, ms:ms + mv] = dS_dVm[:, vset_buses].toarray()
+    ys, r, k_f, k_t = series_current_parts(c)
+    if mt:
+        ds_direct[:, ms + mv:] = _ratio_injection_derivative(c, v, xfmr_branches)
+
+    rhs = np.vstack([ds_direct.real[pvpq], ds_direct.imag[pq]])
+    dx = -lu.solve(rhs) if rhs.size else np.zeros((pat.size, m))
+
+    dva = np.zeros((n, m))
+    dvm = np.zeros((n, m))
+    dva[pvpq] = dx[:na]
+    dvm[pq] = dx[na:]
+    dvm[vset_buses, ms + np.arange(mv)] = 1.0
+    dv = v[:, None] * (dvm / np.where(vm > 0, vm, 1.0)[:, None] + 1j * dva)
+
+    # generator reactive output Q = Im(S_calc) + Q_load(V)
+    gen_buses = np.flatnonzero((kind != PQ) & alive)
+    s_calc = v * np.conj(y @ v)
+    q0 = s_calc.imag[gen_buses] + load_power(c, vm).imag[gen_buses] - c.s_gen.imag[gen_buses]
+    # dS_dVm already holds the load derivative on its diagonal, so it gives dQ directly
+    ds_total = (dS_dVa[gen_buses] @ dva + dS_dVm[gen_buses] @ dvm) + ds_direct[gen_buses]
+    dq = ds_total.imag
+
+    # series currents of every branch
+    i0 = ys * (v[c.f] * k_f - v[c.t] * k_t)
+    di = ys[:, None] * (dv[c.f] * k_f[:, None] - dv[c.t] * k_t[:, None])
+    if mt:
+        dk_f, dk_t = _tap_factor_derivative(c, xfmr_branches)
+        cols = ms + mv + np.arange(mt)
+        di[xfmr_branches, cols] += ys[xfmr_branches] * (v[c.f[xfmr_branches]] * dk_f
+                                                        - v[c.t[xfmr_branches]] * dk_t)
+    return Sensitivity(vm0=vm, dvm=dvm, gen_buses=gen_buses, q0=q0, dq=dq, i0=i0, di=di, r=r,
+                       losses0=float(np.sum(r * np.abs(i0) ** 2)))
+
+
+def _tap_factor_derivative(c, br):
+    """d(k_f)/dt and d(k_t)/dt for ratio levers (k = 1/a on the tap side)."""
+    a = c.ratio[br] * np.exp(1j * c.shift[br])
+    dk = -1.0 / (a * c.ratio[br])           # d(1/(t e^{j phi}))/dt
+    tf = c.tap_from[br]
+    return np.where(tf, dk, 0.0), np.where(tf, 0.0, dk)
+
+
+def _ratio_injection_derivative(c, v, br):
+    """(n, len(br)) change of bus injections per unit change of each lever ratio."""
+    n = c.n
+    out = np.zeros((n, len(br)), complex)
+    t = c.ratio[br]
+    a = t * np.exp(1j * c.shift[br])
+    inner = c.ys[br] + 0.5j * c.bc[br]
+    # derivatives of the admittance terms with respect to t (tap side first)
+    d_on_tap = -2.0 * inner / (np.abs(a) ** 2 * t)
+    d_cross_1 = c.ys[br] / (np.conj(a) * t)        # d(-ys/conj(a))/dt
+    d_cross_2 = c.ys[br] / (a * t)                 # d(-ys/a)/dt
+    tf = c.tap_from[br]
+    dyff = np.where(tf, d_on_tap, 0.0)
+    dytt = np.where(tf, 0.0, d_on_tap)
+    dyft = np.where(tf, d_cross_1, d_cross_2)
+    dytf = np.where(tf, d_cross_2, d_cross_1)
+    vf, vt = v[c.f[br]], v[c.t[br]]
+    cols = np.arange(len(br))
+    np.add.at(out, (c.f[br], cols), vf * np.conj(dyff * vf + dyft * vt))
+    np.add.at(out, (c.t[br], cols), vt * np.conj(dytf * vf + dytt * vt))
+    return out
+
+
+def loss_gradient(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> np.ndarray:
+    """Gradient of total series losses (pu) with respect to the levers, by one adjoint solve.
+
+    Losses are ``L = sum_i Re(S_i) - sum_i g_i V_i^2`` (bus injections less shunt
+    conductance). With lambda solving ``J^T lambda = dL/dx``, ``dL/du = dL/du|direct -
+    lambda . dg/du``.
+    """
+    c = flow.compiled
+    v = flow.v
+    n = c.n
+    vm = np.abs(v)
+    kind = c.kind
+    y = c.ybus()
+    pv = np.flatnonzero((kind == PV) & c.alive)
+    pq = np.flatnonzero((kind == PQ) & c.alive)
+    pvpq = np.concatenate([pv, pq])
+    pat = JacobianPattern(y, pvpq, pq)
+    dload = c.s_load_i + 2.0 * c.s_load_z * vm
+    J = pat.matrix(v, dload)
+    # dL/dx: column sums of Re(dS) (the load derivative must not count: use plain dS)
+    d_va, d_vm = bus_derivatives(y, v, pat.diag_pos, pat.rows, None)
+    cols = y.indices
+    dl_dva = np.bincount(cols, d_va.real, n)
+    dl_dvm = np.bincount(cols, d_vm.real, n) - 2.0 * c.ysh.real * vm
+    dl_dx = np.concatenate([dl_dva[pvpq], dl_dvm[pq]])
+    lam = spla.splu(J.tocsc()).solve(dl_dx, trans="T")
+    shunt_buses = np.asarray(shunt_buses, dtype=np.int64)
+    vset_buses = np.asarray(vset_buses, dtype=np.int64)
+    xfmr_branches = np.asarray(xfmr_branches, dtype=np.int64)
+    ms, mv = len(shunt_buses), len(vset_buses)
+    m = ms + mv + len(xfmr_branches)
+    ds = np.zeros((n, m), complex)
+    ds[shunt_buses, np.arange(ms)] += -1j * vm[shunt_buses] ** 2
+    d_va_l, d_vm_l = bus_derivatives(y, v, pat.diag_pos, pat.rows, dload)
+    dS_dVm_l = sp.csr_matrix((d_vm_l, y.indices, y.indptr), shape=(n, n))
+    if mv:
+        ds[:, ms:ms + mv] = dS_dVm_l[:, vset_buses].toarray()
+    if len(xfmr_branches):
+        ds[:, ms + mv:] = _ratio_injection_derivative(c, v, xfmr_branches)
+    dg = np.vstack([ds.real[pvpq], ds.imag[pq]])
+    direct = ds.real.sum(axis=0)
+    if mv:
+        direct[ms:ms + mv] = dl_dvm[vset_buses]
+    return direct - lam @ dg
