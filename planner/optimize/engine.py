@@ -183,7 +183,7 @@ class _Problem:
         c0 = self.compiled[0]
         vset = np.tile(c0.v_set[self.vset_bus], (L, 1))
         ratio = np.tile(c0.ratio[self.tap_br], (L, 1))
-        return Settings(np.zeros(S, int), np.zeros(S, int), np.zeros((L, S), int),
+        return Settings(np.zeros(S, float), np.zeros(S, int), np.zeros((L, S), int),
                         np.tile(self.exist_now, (L, 1)), vset, ratio)
 
     def unit_pu(self):
@@ -331,7 +331,9 @@ class _Problem:
             v_now=np.abs(fr.v[self.vset_bus]),
         )
 
-    def step_spec(self, st: Settings, flows, radius_v, radius_units, radius_tap) -> StepSpec:
+    def step_spec(self, st: Settings, flows, radius_v, radius_units, radius_tap, radius_cont=None) -> StepSpec:
+        if radius_cont is None:
+            radius_cont = float(radius_units)
         L = len(self.levels)
         sites = self.sites
         levels = [self.level_data(l, st, flows[l], radius_v, radius_units) for l in range(L)]
@@ -349,6 +351,8 @@ class _Problem:
             sw_mvar_cost=np.array([s.switched_cost_per_mvar for s in sites], float),
             sw_site_cost=np.array([s.switched_fixed_cost for s in sites], float),
             existing_sites=np.zeros(len(sites), bool),
+            continuous=np.array([s.continuous for s in sites], bool),
+            unit_radius_of=np.array([radius_cont if s.continuous else radius_units for s in sites], float),
             max_new_sites=self.levers.max_new_sites, budget=self.levers.budget,
             capital_weight=self.capital_weight(),
             exist_step_pu=self.exist_step, exist_max=self.exist_max,
@@ -401,12 +405,13 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
     r_v = options.voltage_radius_pu
     r_u = max([s.max_units for s in pb.sites] + list(pb.exist_max) + [1])
     r_t = options.tap_radius_steps
+    r_c = float(r_u)      # continuous bank sizes: a real-valued radius in units
     milps = 0
     predicted = dict(zip(names, before.losses_mw))
     seen = {cur.key(): ev.merit}
     status = "iteration limit"
     for it in range(1, options.max_iterations + 1):
-        spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t)
+        spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c)
         sol, solves = solve_step(spec)
         milps += solves
         if not sol.ok:
@@ -440,12 +445,13 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
                 break
         else:
             r_v *= 0.5
+            r_c *= 0.5
             r_u = max(1, r_u // 2) if r_u > 1 else 0
             r_t = max(1, r_t // 2) if r_t > 1 else 0
-            if r_v < options.min_voltage_radius_pu and r_u == 0 and r_t == 0:
+            if r_v < options.min_voltage_radius_pu and r_u == 0 and r_t == 0 and r_c < 1e-4:
                 status = "converged (trust region collapsed)"
                 break
-            if r_u == 0 and not len(pb.vset_bus) and not len(pb.tap_br):
+            if r_u == 0 and not len(pb.vset_bus) and not len(pb.tap_br) and r_c < 1e-4:
                 status = "converged (trust region collapsed)"
                 break
     if options.polish:
@@ -461,6 +467,8 @@ def _neighbours(pb: _Problem, st: Settings):
     used = np.flatnonzero(st.fixed + st.switched > 0)
     for s in used:
         site = pb.sites[s]
+        if site.continuous:
+            continue
         for dlt in (-1, 1):
             if "fixed" in site.kinds or st.fixed[s]:
                 n = st.copy()
@@ -541,11 +549,12 @@ def _result(pb: _Problem, names, st: Settings, before: Evaluation, final: Evalua
     c0 = pb.compiled[0]
     banks = []
     for s, site in enumerate(pb.sites):
-        units = int(st.fixed[s] + st.switched[s])
-        if units == 0:
+        units = float(st.fixed[s] + st.switched[s]) if site.continuous else int(st.fixed[s] + st.switched[s])
+        if units <= 1e-9:
             continue
         banks.append({
-            "bus": int(site.bus), "units": units, "fixed_units": int(st.fixed[s]),
+            "bus": int(site.bus), "units": units,
+            "fixed_units": float(st.fixed[s]) if site.continuous else int(st.fixed[s]),
             "switched_units": int(st.switched[s]), "unit_mvar": float(site.unit_mvar),
             "mvar": float(units * site.unit_mvar),
             "steps_by_level": {n: int(st.steps[l, s]) for l, n in enumerate(names)},

@@ -24,6 +24,7 @@ class BankSite:
     switched_cost_per_mvar: float = 0.0  # extra money per switched Mvar
     switched_fixed_cost: float = 0.0    # extra money per site with switched units
     kinds: tuple = ("fixed", "switched")
+    continuous: bool = False            # size freely in [0, max_units * unit_mvar] (sizing studies)
 
 
 @dataclass

@@ -52,6 +52,7 @@ class StepSpec:
     sw_mvar_cost: np.ndarray
     sw_site_cost: np.ndarray
     existing_sites: np.ndarray    # (S,) bool: already built (does not count as new)
+    continuous: np.ndarray        # (S,) bool: fixed units sized continuously
     max_new_sites: int | None
     budget: float | None
     capital_weight: float         # objective units per money
@@ -64,6 +65,7 @@ class StepSpec:
     tap_lo: np.ndarray            # (L, T) lowest allowed change from now (pu)
     tap_hi: np.ndarray
     unit_radius: int
+    unit_radius_of: np.ndarray    # (S,) trust radius in units per site (fractional for continuous sites)
     v_radius: float
     tap_radius: float             # pu
     tangent_points: int
@@ -90,7 +92,7 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
     nmax = spec.max_units
     m.z = pyo.Var(S, within=pyo.Binary)
     m.zs = pyo.Var(S, within=pyo.Binary)
-    m.nf = pyo.Var(S, within=pyo.NonNegativeIntegers,
+    m.nf = pyo.Var(S, domain=lambda _, s: pyo.NonNegativeReals if spec.continuous[s] else pyo.NonNegativeIntegers,
                    bounds=lambda _, s: (0, int(nmax[s]) if spec.allow_fixed[s] else 0))
     m.ns = pyo.Var(S, within=pyo.NonNegativeIntegers,
                    bounds=lambda _, s: (0, int(nmax[s]) if spec.allow_switched[s] else 0))
@@ -138,15 +140,15 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
         lev = spec.levels[l]
         b = m.levels[l]
         vl = 0 if spec.common_setpoints else l
-        du = ([spec.unit_pu[s] * (m.nf[s] + m.k[l, s] - int(lev.cur_units[s])) for s in S]
+        du = ([spec.unit_pu[s] * (m.nf[s] + m.k[l, s] - float(lev.cur_units[s])) for s in S]
               + [spec.exist_step_pu[e] * (m.e[l, e] - int(lev.cur_exist[e])) for e in E]
               + [m.v[vl, g] - float(lev.v_now[g]) for g in G]
               + [(spec.tap_step[t] if spec.tap_step[t] > 0 else 1.0) * m.d[l, t] for t in T])
         # trust region on bank units at each site
         b.unit_tr = pyo.ConstraintList()
         for s in S:
-            b.unit_tr.add(m.nf[s] + m.k[l, s] - int(lev.cur_units[s]) <= spec.unit_radius)
-            b.unit_tr.add(m.nf[s] + m.k[l, s] - int(lev.cur_units[s]) >= -spec.unit_radius)
+            b.unit_tr.add(m.nf[s] + m.k[l, s] - float(lev.cur_units[s]) <= spec.unit_radius_of[s])
+            b.unit_tr.add(m.nf[s] + m.k[l, s] - float(lev.cur_units[s]) >= -spec.unit_radius_of[s])
         lo_du, hi_du = _du_ranges(spec, lev, l)
         # loss model: tangent cuts of each square term
         K = range(len(lev.d))
@@ -199,7 +201,7 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     m = build_model(spec)
     solver = new_solver()
     solves = 0
-    sol = None
+    sol = prev = None
     for _ in range(max_rounds):
         sol = solve_model(m, spec, solver)
         solves += 1
@@ -220,9 +222,18 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
                     added = True
         if _DEBUG:
             print("  cut round", solves, "gap", gap, "total", total)
-        if not added or gap <= rel_tol * max(total, 1e-12):
+        same = prev is not None and _same_solution(prev, sol)
+        # HiGHS holds each cut only to its feasibility tolerance (1e-7), so a tiny gap remains
+        if not added or gap <= rel_tol * max(total, 1e-12) or same:
             break
+        prev = sol
     return sol, solves
+
+
+def _same_solution(a, b) -> bool:
+    return (np.allclose(a.fixed, b.fixed, atol=1e-7, rtol=0) and np.array_equal(a.switched, b.switched)
+            and np.array_equal(a.steps, b.steps) and np.array_equal(a.exist, b.exist)
+            and np.allclose(a.vset, b.vset, atol=1e-7, rtol=0) and np.allclose(a.tap_change, b.tap_change, atol=1e-7, rtol=0))
 
 
 def _ordered(bounds):
@@ -235,8 +246,8 @@ def _du_ranges(spec: StepSpec, lev: LevelData, l: int):
     lo, hi = [], []
     for s in range(len(spec.unit_pu)):
         cur = lev.cur_units[s]
-        lo.append(spec.unit_pu[s] * max(-cur, -spec.unit_radius))
-        hi.append(spec.unit_pu[s] * min(spec.max_units[s] - cur, spec.unit_radius))
+        lo.append(spec.unit_pu[s] * max(-cur, -spec.unit_radius_of[s]))
+        hi.append(spec.unit_pu[s] * min(spec.max_units[s] - cur, spec.unit_radius_of[s]))
     for e in range(len(spec.exist_step_pu)):
         cur = lev.cur_exist[e]
         lo.append(spec.exist_step_pu[e] * max(-cur, -spec.unit_radius))
@@ -293,7 +304,7 @@ def solve_model(m: pyo.ConcreteModel, spec: StepSpec, solver=None) -> StepSoluti
     T = len(spec.tap_step)
     L = len(spec.levels)
     rnd = lambda x: int(round(pyo.value(x)))  # noqa: E731
-    fixed = np.array([rnd(m.nf[s]) for s in range(S)], int)
+    fixed = np.array([pyo.value(m.nf[s]) if spec.continuous[s] else rnd(m.nf[s]) for s in range(S)], float)
     switched = np.array([rnd(m.ns[s]) for s in range(S)], int)
     steps = np.array([[rnd(m.k[l, s]) for s in range(S)] for l in range(L)], int).reshape(L, S)
     exist = np.array([[rnd(m.e[l, e]) for e in range(E)] for l in range(L)], int).reshape(L, E)
