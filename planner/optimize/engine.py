@@ -28,6 +28,8 @@ class LevelCase:
     name: str
     network: object
     weight: float = 1.0
+    v_min: float | None = None     # this level's load-bus band, overriding Limits.v_min / v_max
+    v_max: float | None = None
 
 
 @dataclass
@@ -161,14 +163,16 @@ class _Problem:
         self.tap_hi = tr["ratio_max_pu"].to_numpy(float)[tr_rows] if len(tr_rows) else np.zeros(0)
         self.tap_step = tr["ratio_step_pu"].to_numpy(float)[tr_rows] if len(tr_rows) else np.zeros(0)
         # limits per bus
-        self.vmin, self.vmax = self._voltage_limits(c0)
+        self.vlim = [self._voltage_limits(c0, lc) for lc in levels]
         self.flows_run = 0
 
     # ---- limits ----------------------------------------------------------------------------
-    def _voltage_limits(self, c):
+    def _voltage_limits(self, c, level: LevelCase):
         lim = self.limits
-        vmin = np.full(c.n, lim.v_min) if lim.v_min is not None else c.v_min.copy()
-        vmax = np.full(c.n, lim.v_max) if lim.v_max is not None else c.v_max.copy()
+        lo = level.v_min if level.v_min is not None else lim.v_min
+        hi = level.v_max if level.v_max is not None else lim.v_max
+        vmin = np.full(c.n, lo) if lo is not None else c.v_min.copy()
+        vmax = np.full(c.n, hi) if hi is not None else c.v_max.copy()
         for b, (lo, hi) in (lim.per_bus or {}).items():
             i = c.index_of([int(b)])[0]
             vmin[i], vmax[i] = lo, hi
@@ -242,7 +246,7 @@ class _Problem:
                 total = np.inf
                 continue
             losses.append(fr.losses_mw)
-            v, t = self.violations(lc.name, fr)
+            v, t = self.violations(l, fr)
             viols.extend(v)
             total += t
         losses = np.array(losses)
@@ -251,20 +255,22 @@ class _Problem:
                  + self.options.penalty * total) if ok else np.inf
         return Evaluation(flows, losses, viols, total, cap, merit, ok)
 
-    def violations(self, level: str, fr: FlowResult):
-        """Limit breaches of a converged flow, and their sum in pu (for the merit)."""
+    def violations(self, l: int, fr: FlowResult):
+        """Limit breaches of a converged flow at level ``l``, and their sum in pu (for the merit)."""
         c = fr.compiled
+        level = self.levels[l].name
+        vmin, vmax = self.vlim[l]
         out = []
         tol_v = 1e-6
         vm = np.abs(fr.v)
         alive = c.alive
-        lo = alive & (vm < self.vmin - tol_v)
-        hi = alive & (vm > self.vmax + tol_v)
-        total = float(np.sum(np.where(lo, self.vmin - vm, 0.0)) + np.sum(np.where(hi, vm - self.vmax, 0.0)))
+        lo = alive & (vm < vmin - tol_v)
+        hi = alive & (vm > vmax + tol_v)
+        total = float(np.sum(np.where(lo, vmin - vm, 0.0)) + np.sum(np.where(hi, vm - vmax, 0.0)))
         for i in np.flatnonzero(lo):
-            out.append(Violation(level, "voltage", f"bus {c.bus_ids[i]}", vm[i], self.vmin[i], self.vmin[i] - vm[i]))
+            out.append(Violation(level, "voltage", f"bus {c.bus_ids[i]}", vm[i], vmin[i], vmin[i] - vm[i]))
         for i in np.flatnonzero(hi):
-            out.append(Violation(level, "voltage", f"bus {c.bus_ids[i]}", vm[i], self.vmax[i], vm[i] - self.vmax[i]))
+            out.append(Violation(level, "voltage", f"bus {c.bus_ids[i]}", vm[i], vmax[i], vm[i] - vmax[i]))
         if self.limits.q_limits:
             # enforcement keeps PV buses inside; the slack bus can still break its limits
             gb = np.flatnonzero((c.kind != PQ) & alive)
@@ -311,7 +317,8 @@ class _Problem:
                                      np.maximum(self.tap_hi - self.tap_lo, 0.0)])
         reach = np.abs(sens.dvm) @ span_units if sens.dvm.shape[1] else np.zeros(c.n)
         vm = sens.vm0
-        near = c.alive & ((vm - reach <= self.vmin + 1e-3) | (vm + reach >= self.vmax - 1e-3))
+        vmin, vmax = self.vlim[l]
+        near = c.alive & ((vm - reach <= vmin + 1e-3) | (vm + reach >= vmax - 1e-3))
         near[self.vset_bus] = False   # held by the setpoint bounds directly
         v_rows = np.flatnonzero(near)
         gb = sens.gen_buses
@@ -325,7 +332,7 @@ class _Problem:
         cur_units = st.fixed + st.steps[l]
         return LevelData(
             weight=float(self.loss_weights()[l]), d=d, R=R, const=const,
-            v_rows=v_rows, v0=vm[v_rows], dv=sens.dvm[v_rows], v_lo=self.vmin[v_rows], v_hi=self.vmax[v_rows],
+            v_rows=v_rows, v0=vm[v_rows], dv=sens.dvm[v_rows], v_lo=vmin[v_rows], v_hi=vmax[v_rows],
             q_rows=gb[q_sel], q0=sens.q0[q_sel], dq=sens.dq[q_sel], q_lo=c.q_min[gb][q_sel], q_hi=c.q_max[gb][q_sel],
             cur_units=cur_units.astype(int), cur_exist=st.exist[l].astype(int),
             v_now=np.abs(fr.v[self.vset_bus]),

@@ -1,0 +1,357 @@
+"""Study files (TOML): reading and checking.
+
+Every key is documented in the README ("Study file"). A bad file gives one
+:class:`~planner.errors.InputError` line that names the file, the key and the problem, e.g.
+``demo.toml: levels[2].hours: must be a positive number, got -5``.
+"""
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ..errors import InputError
+
+TOP_KEYS = {"study", "limits", "levels", "banks", "generators", "taps", "economics", "objective",
+            "alternatives", "solver"}
+
+
+@dataclass
+class LevelSpec:
+    name: str
+    hours: float = 8760.0
+    p_scale: float = 1.0
+    q_scale: float = 1.0
+    bus_scale: dict = field(default_factory=dict)     # bus -> factor on P and Q
+    v_min_pu: float | None = None
+    v_max_pu: float | None = None
+
+
+@dataclass
+class SiteSpec:
+    bus: int
+    unit_mvar: float
+    max_units: int
+    kinds: tuple
+
+
+@dataclass
+class BankSpec:
+    candidates: object = field(default_factory=list)  # bus numbers, or "all-pq"
+    overrides: dict = field(default_factory=dict)     # bus -> SiteSpec
+    unit_mvar: float = 0.3
+    max_units: int = 4
+    kinds: tuple = ("fixed", "switched")
+    max_new_sites: int | None = None
+    budget: float | None = None
+    per_site: float = 0.0
+    per_mvar: float = 0.0
+    switched_per_mvar: float = 0.0
+    switched_per_site: float = 0.0
+    existing_switchable: bool = True
+
+
+@dataclass
+class AlternativeSpec:
+    name: str
+    description: str = ""
+    banks: bool = True
+    setpoints: bool = True
+    taps: bool = True
+    budget: float | None = None
+    max_new_sites: int | None = None
+
+
+@dataclass
+class StudySpec:
+    path: Path
+    title: str
+    network_path: Path
+    question: str = ""
+    output: Path | None = None
+    currency: str = ""
+    v_min_pu: float = 0.95
+    v_max_pu: float = 1.05
+    bus_limits: dict = field(default_factory=dict)
+    ratings: bool = True
+    q_limits: bool = True
+    levels: list = field(default_factory=list)
+    banks: BankSpec = field(default_factory=BankSpec)
+    gen_range: dict | None = None                      # bus or "*" -> (lo, hi)
+    setpoints_per_level: bool = True
+    taps: bool = False
+    economics: dict = field(default_factory=dict)
+    objective: str = "cost"
+    alternatives: list = field(default_factory=list)
+    max_iterations: int = 30
+    peak_level: str = ""
+
+
+class _Reader:
+    """Typed access to one TOML table with key paths for messages."""
+
+    def __init__(self, file: Path, table: dict, path: str):
+        self.file, self.table, self.path = file, table, path
+        self.used: set = set()
+
+    def _key(self, key):
+        return f"{self.path}.{key}" if self.path else key
+
+    def error(self, key, msg):
+        return InputError(msg, file=self.file.name, field=self._key(key))
+
+    def get(self, key, kind, default=None, *, required=False, check=None, why=""):
+        self.used.add(key)
+        if key not in self.table:
+            if required:
+                raise self.error(key, "missing (required)")
+            return default
+        v = self.table[key]
+        if kind is float:
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or v != v:
+                raise self.error(key, f"must be a number, got {v!r}")
+            v = float(v)
+        elif kind is int:
+            if isinstance(v, bool) or not isinstance(v, int):
+                raise self.error(key, f"must be a whole number, got {v!r}")
+        elif kind is bool:
+            if not isinstance(v, bool):
+                raise self.error(key, f"must be true or false, got {v!r}")
+        elif kind is str:
+            if not isinstance(v, str):
+                raise self.error(key, f"must be text, got {v!r}")
+        elif kind is list:
+            if not isinstance(v, list):
+                raise self.error(key, f"must be a list, got {v!r}")
+        elif kind is dict:
+            if not isinstance(v, dict):
+                raise self.error(key, f"must be a table, got {v!r}")
+        if check is not None and not check(v):
+            raise self.error(key, f"{why}, got {v!r}")
+        return v
+
+    def sub(self, key, *, required=False):
+        t = self.get(key, dict, None, required=required)
+        return _Reader(self.file, t or {}, self._key(key)) if t is not None or not required else None
+
+    def finish(self, allowed=None):
+        unknown = [k for k in self.table if k not in (allowed or self.used)]
+        if unknown:
+            raise self.error(unknown[0], "unknown key (see the README for the keys a study file takes)")
+
+
+def _positive(v):
+    return v > 0
+
+
+def _band(r: _Reader, key, value):
+    if (not isinstance(value, list) or len(value) != 2
+            or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in value)
+            or not 0.5 <= value[0] < value[1] <= 1.5):
+        raise r.error(key, f"must be [low, high] in pu with 0.5 <= low < high <= 1.5, got {value!r}")
+    return (float(value[0]), float(value[1]))
+
+
+def _bus_key(r: _Reader, key):
+    try:
+        return int(key)
+    except (TypeError, ValueError):
+        raise r.error(key, "bus keys must be bus numbers") from None
+
+
+def read_study(path) -> StudySpec:
+    """Read and check a study file; paths inside it are relative to the file.
+
+    >>> import tempfile, pathlib
+    >>> d = pathlib.Path(tempfile.mkdtemp())
+    >>> _ = (d / "s.toml").write_text('[study]\\ntitle = "T"\\nnetwork = "net"\\n'
+    ...                                '[[levels]]\\nname = "peak"\\nhours = 2000\\n')
+    >>> s = read_study(d / "s.toml")
+    >>> s.title, s.levels[0].hours, s.network_path.name
+    ('T', 2000.0, 'net')
+    >>> _ = (d / "bad.toml").write_text('[study]\\ntitle = "T"\\nnetwork = "n"\\n[[levels]]\\nname = "p"\\nhours = -5\\n')
+    >>> try:
+    ...     read_study(d / "bad.toml")
+    ... except Exception as e:
+    ...     print(e)
+    bad.toml: levels[0].hours: must be a positive number, got -5.0
+    """
+    file = Path(path)
+    try:
+        raw = tomllib.loads(file.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InputError("study file not found", file=str(file)) from None
+    except UnicodeDecodeError as exc:
+        raise InputError(f"not UTF-8 text ({exc.reason})", file=file.name) from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"not valid TOML: {exc}", file=file.name) from None
+    top = _Reader(file, raw, "")
+    for k in raw:
+        if k not in TOP_KEYS:
+            raise top.error(k, "unknown section (see the README for the keys a study file takes)")
+    here = file.parent
+
+    st = top.sub("study", required=True)
+    spec = StudySpec(
+        path=file,
+        title=st.get("title", str, required=True),
+        network_path=(here / st.get("network", str, required=True)),
+        question=st.get("question", str, ""),
+        currency=st.get("currency", str, ""),
+    )
+    out = st.get("output", str)
+    spec.output = here / out if out else None
+    st.finish()
+
+    lim = top.sub("limits")
+    spec.v_min_pu = lim.get("v_min_pu", float, 0.95, check=lambda v: 0.5 <= v <= 1.2, why="must be 0.5-1.2 pu")
+    spec.v_max_pu = lim.get("v_max_pu", float, 1.05, check=lambda v: 0.8 <= v <= 1.5, why="must be 0.8-1.5 pu")
+    if spec.v_min_pu >= spec.v_max_pu:
+        raise lim.error("v_min_pu", f"must be below v_max_pu ({spec.v_max_pu}), got {spec.v_min_pu}")
+    spec.ratings = lim.get("branch_ratings", bool, True)
+    spec.q_limits = lim.get("reactive_limits", bool, True)
+    buses = lim.sub("buses")
+    spec.bus_limits = {_bus_key(buses, k): _band(buses, k, v) for k, v in buses.table.items()}
+    lim.used.add("buses")
+    lim.finish()
+
+    levels = top.get("levels", list, required=True)
+    if not levels:
+        raise top.error("levels", "needs at least one load level")
+    names = set()
+    for i, t in enumerate(levels):
+        if not isinstance(t, dict):
+            raise top.error(f"levels[{i}]", "must be a table ([[levels]])")
+        r = _Reader(file, t, f"levels[{i}]")
+        name = r.get("name", str, required=True, check=lambda v: v.strip() != "", why="must not be empty")
+        if name in names:
+            raise r.error("name", f"level {name!r} is defined twice")
+        names.add(name)
+        scale = r.get("load_scale", float, None, check=_positive, why="must be a positive number")
+        lv = LevelSpec(
+            name=name,
+            hours=r.get("hours", float, required=True, check=_positive, why="must be a positive number"),
+            p_scale=r.get("p_scale", float, scale if scale is not None else 1.0, check=_positive,
+                          why="must be a positive number"),
+            q_scale=r.get("q_scale", float, scale if scale is not None else 1.0, check=_positive,
+                          why="must be a positive number"),
+            v_min_pu=r.get("v_min_pu", float), v_max_pu=r.get("v_max_pu", float),
+        )
+        bs = r.sub("bus_scale")
+        for k, v in bs.table.items():
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or v <= 0:
+                raise bs.error(k, f"must be a positive number, got {v!r}")
+            lv.bus_scale[_bus_key(bs, k)] = float(v)
+        r.used.add("bus_scale")
+        r.finish()
+        spec.levels.append(lv)
+    total_hours = sum(lv.hours for lv in spec.levels)
+    if total_hours > 8784 + 1e-9:
+        raise top.error("levels", f"hours add up to {total_hours:g}, more than a year (8760 h)")
+    spec.peak_level = max(spec.levels, key=lambda lv: lv.p_scale).name
+
+    bk = top.sub("banks")
+    unit = bk.get("unit_mvar", float, 0.3, check=_positive, why="must be a positive number")
+    max_units = bk.get("max_units", int, 4, check=lambda v: 1 <= v <= 1000, why="must be 1-1000")
+    kinds = bk.get("kinds", list, ["fixed", "switched"])
+    if not kinds or any(k not in ("fixed", "switched") for k in kinds):
+        raise bk.error("kinds", f"must list \"fixed\" and/or \"switched\", got {kinds!r}")
+    cand = bk.get("candidates", None, [])
+    if cand == "all-pq":
+        cand_list = "all-pq"
+    elif isinstance(cand, list) and all(isinstance(b, int) and not isinstance(b, bool) for b in cand):
+        cand_list = cand
+    else:
+        raise bk.error("candidates", f"must be a list of bus numbers or \"all-pq\", got {cand!r}")
+    overrides = {}
+    for i, t in enumerate(bk.get("site", list, [])):
+        r = _Reader(file, t if isinstance(t, dict) else {}, f"banks.site[{i}]")
+        b = r.get("bus", int, required=True)
+        overrides[b] = SiteSpec(b, r.get("unit_mvar", float, unit, check=_positive, why="must be a positive number"),
+                                r.get("max_units", int, max_units, check=lambda v: 1 <= v <= 1000, why="must be 1-1000"),
+                                tuple(r.get("kinds", list, kinds)))
+        r.finish()
+    costs = bk.sub("costs")
+    spec.banks = BankSpec(
+        candidates=cand_list, overrides=overrides, unit_mvar=unit, max_units=max_units, kinds=tuple(kinds),
+        max_new_sites=bk.get("max_new_sites", int, None, check=lambda v: v >= 0, why="must not be negative"),
+        budget=bk.get("budget", float, None, check=lambda v: v >= 0, why="must not be negative"),
+        per_site=costs.get("per_site", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
+        per_mvar=costs.get("per_mvar", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
+        switched_per_mvar=costs.get("switched_per_mvar", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
+        switched_per_site=costs.get("switched_per_site", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
+        existing_switchable=bk.get("existing_switchable", bool, True),
+    )
+    costs.finish()
+    bk.used.add("costs")
+    bk.finish()
+
+    gen = top.sub("generators")
+    if gen.table:
+        lo = gen.get("v_min_pu", float, 0.95)
+        hi = gen.get("v_max_pu", float, 1.05)
+        spec.gen_range = {"*": _band(gen, "v_min_pu", [lo, hi])}
+        gb = gen.sub("buses")
+        for k, v in gb.table.items():
+            spec.gen_range[_bus_key(gb, k)] = _band(gb, k, v)
+        gen.used.add("buses")
+        spec.setpoints_per_level = gen.get("per_level", bool, True)
+        if not gen.get("adjust", bool, True):
+            spec.gen_range = None
+        gen.finish()
+
+    tp = top.sub("taps")
+    spec.taps = tp.get("adjust", bool, False)
+    tp.finish()
+
+    ec = top.sub("economics")
+    energy = ec.get("energy_value_per_mwh", None, 0.0)
+    if isinstance(energy, dict):
+        for k, v in energy.items():
+            if k not in names:
+                raise ec.error(f"energy_value_per_mwh.{k}", f"is not a load level (levels: {sorted(names)})")
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or v < 0:
+                raise ec.error(f"energy_value_per_mwh.{k}", f"must be a non-negative number, got {v!r}")
+        missing = [n for n in names if n not in energy]
+        if missing:
+            raise ec.error("energy_value_per_mwh", f"has no value for level {missing[0]!r}")
+    elif isinstance(energy, bool) or not isinstance(energy, (int, float)) or energy < 0:
+        raise ec.error("energy_value_per_mwh", f"must be a non-negative number or a table per level, got {energy!r}")
+    spec.economics = dict(
+        energy_value_per_mwh=energy,
+        demand_value_per_kw_year=ec.get("demand_value_per_kw_year", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
+        discount_rate=ec.get("discount_rate", float, 0.07, check=lambda v: 0 <= v < 1, why="must be a fraction 0-1 (0.07 = 7 %)"),
+        horizon_years=ec.get("horizon_years", int, 20, check=lambda v: 1 <= v <= 100, why="must be 1-100"),
+        bank_life_years=ec.get("bank_life_years", int, None, check=lambda v: 1 <= v <= 100, why="must be 1-100"),
+        om_fraction=ec.get("om_fraction", float, 0.0, check=lambda v: 0 <= v < 1, why="must be a fraction 0-1"),
+    )
+    ec.finish()
+
+    ob = top.sub("objective")
+    spec.objective = ob.get("kind", str, "cost", check=lambda v: v in ("cost", "losses"),
+                            why="must be \"cost\" (value of losses plus annualised capital) or \"losses\"")
+    ob.finish()
+    sv = top.sub("solver")
+    spec.max_iterations = sv.get("max_iterations", int, 30, check=lambda v: 1 <= v <= 500, why="must be 1-500")
+    sv.finish()
+
+    alts = top.get("alternatives", list, [])
+    seen = set()
+    for i, t in enumerate(alts):
+        r = _Reader(file, t if isinstance(t, dict) else {}, f"alternatives[{i}]")
+        a = AlternativeSpec(
+            name=r.get("name", str, required=True, check=lambda v: v.strip() != "", why="must not be empty"),
+            description=r.get("description", str, ""),
+            banks=r.get("banks", bool, True), setpoints=r.get("setpoints", bool, True),
+            taps=r.get("taps", bool, True),
+            budget=r.get("budget", float, None, check=lambda v: v >= 0, why="must not be negative"),
+            max_new_sites=r.get("max_new_sites", int, None, check=lambda v: v >= 0, why="must not be negative"),
+        )
+        if a.name in seen:
+            raise r.error("name", f"alternative {a.name!r} is defined twice")
+        seen.add(a.name)
+        r.finish()
+        spec.alternatives.append(a)
+    if not spec.alternatives:
+        spec.alternatives.append(AlternativeSpec(name="Plan", description="all levers in the study file"))
+    return spec
