@@ -222,6 +222,11 @@ class _Problem:
             return w * self.objective.loss_value_per_mw
         return w
 
+    def penalty(self) -> float:
+        """Objective units per pu of violation: ``options.penalty`` MW of losses at the
+        heaviest-weighted level, so limits dominate whatever the objective's scale."""
+        return float(self.options.penalty * max(self.loss_weights().max(), 1e-12))
+
     def capital_weight(self):
         return self.objective.capital_factor if self.objective.kind == "cost" else 0.0
 
@@ -252,7 +257,7 @@ class _Problem:
         losses = np.array(losses)
         cap = self.capital(st)
         merit = (float(self.loss_weights() @ losses) + self.capital_weight() * cap
-                 + self.options.penalty * total) if ok else np.inf
+                 + self.penalty() * total) if ok else np.inf
         return Evaluation(flows, losses, viols, total, cap, merit, ok)
 
     def violations(self, l: int, fr: FlowResult):
@@ -334,7 +339,7 @@ class _Problem:
             weight=float(self.loss_weights()[l]), d=d, R=R, const=const,
             v_rows=v_rows, v0=vm[v_rows], dv=sens.dvm[v_rows], v_lo=vmin[v_rows], v_hi=vmax[v_rows],
             q_rows=gb[q_sel], q0=sens.q0[q_sel], dq=sens.dq[q_sel], q_lo=c.q_min[gb][q_sel], q_hi=c.q_max[gb][q_sel],
-            cur_units=cur_units.astype(int), cur_exist=st.exist[l].astype(int),
+            cur_units=cur_units.astype(float), cur_exist=st.exist[l].astype(int),
             v_now=np.abs(fr.v[self.vset_bus]),
         )
 
@@ -366,7 +371,7 @@ class _Problem:
             v_lo=self.v_lo, v_hi=self.v_hi, common_setpoints=not self.levers.setpoints_per_level,
             tap_step=step, tap_lo=tap_lo, tap_hi=tap_hi,
             unit_radius=int(radius_units), v_radius=float(radius_v), tap_radius=tap_radius,
-            tangent_points=self.options.tangent_points, penalty=self.options.penalty,
+            tangent_points=self.options.tangent_points, penalty=self.penalty(),
             levels=levels, time_limit=self.options.time_limit_s, mip_gap=self.options.mip_gap,
         )
 

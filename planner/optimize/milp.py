@@ -34,7 +34,7 @@ class LevelData:
     dq: np.ndarray
     q_lo: np.ndarray
     q_hi: np.ndarray
-    cur_units: np.ndarray         # (S,) units in service now at each site (fixed + switched on)
+    cur_units: np.ndarray         # (S,) units in service now at each site (fixed + switched on; fractional for continuous sites)
     cur_exist: np.ndarray         # (E,) steps on now of each existing bank
     v_now: np.ndarray             # (G,) present voltage at each setpoint lever
 
@@ -100,15 +100,15 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
     m.site_cap = pyo.Constraint(S, rule=lambda m, s: m.nf[s] + m.ns[s] <= int(nmax[s]) * m.z[s])
     m.sw_cap = pyo.Constraint(S, rule=lambda m, s: m.ns[s] <= int(nmax[s]) * m.zs[s])
     m.steps_cap = pyo.Constraint(L, S, rule=lambda m, l, s: m.k[l, s] <= m.ns[s])
-    if spec.max_new_sites is not None:
-        new = [s for s in S if not spec.existing_sites[s]]
+    new = [s for s in S if not spec.existing_sites[s]]
+    if spec.max_new_sites is not None and len(new) > spec.max_new_sites:
         m.sites_cap = pyo.Constraint(expr=pyo.quicksum(m.z[s] for s in new) <= int(spec.max_new_sites))
     mvar = {s: spec.unit_pu[s] * spec.base_mva for s in S}
     capital = pyo.quicksum(spec.site_cost[s] * m.z[s] + spec.sw_site_cost[s] * m.zs[s]
                            + spec.mvar_cost[s] * mvar[s] * (m.nf[s] + m.ns[s])
                            + spec.sw_mvar_cost[s] * mvar[s] * m.ns[s] for s in S)
     m.capital = pyo.Expression(expr=capital)
-    if spec.budget is not None:
+    if spec.budget is not None and len(S):
         m.budget_cap = pyo.Constraint(expr=m.capital <= float(spec.budget))
 
     # setpoints: one variable per level, or shared
