@@ -121,8 +121,12 @@ def linearise(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
     gen_buses = np.flatnonzero((kind != PQ) & alive)
     s_calc = v * np.conj(y @ v)
     q0 = s_calc.imag[gen_buses] + load_power(c, vm).imag[gen_buses] - c.s_gen.imag[gen_buses]
-    # dS_dVm already holds the load derivative on its diagonal, so it gives dQ directly
-    ds_total = (dS_dVa[gen_buses] @ dva + dS_dVm[gen_buses] @ dvm) + ds_direct[gen_buses]
+    # dS_dVm already holds the load derivative on its diagonal, so it gives dQ directly.
+    # A setpoint column's direct effect is already in dvm (its unit entry at the bus), so only
+    # the shunt and ratio columns add their direct part here.
+    direct = ds_direct[gen_buses].copy()
+    direct[:, ms:ms + mv] = 0.0
+    ds_total = (dS_dVa[gen_buses] @ dva + dS_dVm[gen_buses] @ dvm) + direct
     dq = ds_total.imag
 
     # series currents of every branch
