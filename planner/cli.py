@@ -36,7 +36,7 @@ def _flow(args) -> int:
 
 def _plan(args) -> int:
     from .optimize.study_file import run_plan_file
-    return run_plan_file(args.study, json_path=args.json, quiet=args.quiet)
+    return run_plan_file(args.study, json_path=args.json, quiet=args.quiet, level=args.level)
 
 
 def _study(args) -> int:
@@ -63,6 +63,7 @@ def build_parser() -> argparse.ArgumentParser:
     pl = sub.add_parser("plan", help="optimise banks, setpoints and taps at one load level")
     pl.add_argument("study", help="study file (TOML)")
     pl.add_argument("--json", metavar="FILE", help="where to write the plan (default: beside the study file)")
+    pl.add_argument("--level", help="load level to optimise (default: the heaviest)")
     pl.add_argument("-q", "--quiet", action="store_true")
     pl.set_defaults(run=_plan)
 
