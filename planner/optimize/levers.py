@@ -75,8 +75,8 @@ class Options:
     tap_radius_steps: int = 4
     min_voltage_radius_pu: float = 1e-4
     tangent_points: int = 12              # cuts per squared term of the loss model
-    penalty: float = 1e4                  # objective units per pu of limit violation
+    penalty: float = 1e4                  # MW of losses (at the heaviest level) per pu of violation
     polish: bool = True                   # AC-checked one-unit moves after the loop
     max_polish_flows: int = 400
     mip_gap: float = 1e-5
-    time_limit_s: float = 60.0
+    time_limit_s: float = 20.0            # per MILP solve; the best solution found is used
