@@ -1,0 +1,104 @@
+"""Optimiser timing figures (prints a table; not a pytest module).
+
+    python tests/perf/bench_plan.py            # all cases
+    python tests/perf/bench_plan.py --quick    # skip the 1,000+-bus case
+
+Per case: wall time of planner.optimize.engine.optimise, AC load flows and MILP solves it used,
+the AC-verified result, and the time of the same problem solved by the independent reference
+(tests/reference: scipy SLSQP, or exhaustive enumeration) with the ratio of the two. Targets:
+IEEE 30 voltage schedule < 2 s; 33-bus placement, all 32 candidate buses, up to 3 sites < 10 s;
+1,000+-bus synthetic case with 50 candidate sites < 60 s.
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+TESTS = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(TESTS))
+
+from planner.flow.newton import solve_flow  # noqa: E402
+from planner.network.cdf import read_cdf  # noqa: E402
+from planner.network.compile import PQ  # noqa: E402
+from planner.network.io import read_network  # noqa: E402
+from planner.network.synthetic import meshed_grid  # noqa: E402
+from planner.optimize.engine import LevelCase, optimise  # noqa: E402
+from planner.optimize.levers import BankSite, Levers, Limits  # noqa: E402
+from reference.ac_opf import ieee30_voltage_schedule  # noqa: E402
+from reference.sweep import enumerate_feeder33  # noqa: E402
+
+DATA = TESTS / "data"
+ROWS = []
+
+
+def timed(fn, *a, **kw):
+    t = time.perf_counter()
+    out = fn(*a, **kw)
+    return out, time.perf_counter() - t
+
+
+def row(case, plan, secs, value, ref_value, ref_secs, unit, target):
+    ratio = f"{secs / ref_secs:6.2f}" if ref_secs else "   n/a"
+    ref_v = f"{ref_value:11.4f}" if ref_value is not None else "        n/a"
+    ref_t = f"{ref_secs:8.2f}" if ref_secs else "     n/a"
+    ROWS.append(f"{case:<38} {secs:8.2f} {plan.ac_flows:6d} {plan.milp_solves:6d} {value:11.4f} {ref_v} {unit:<3} "
+                f"{ref_t} {ratio}  {'ok' if secs < target else 'over'} (<{target:g} s)  "
+                f"{'verified' if plan.verified else 'NOT verified'}")
+    print(ROWS[-1], flush=True)
+
+
+def ieee30():
+    net = read_cdf(DATA / "ieee30cdf.txt")
+    plan, secs = timed(optimise, [LevelCase("base", net)], Levers(gen_v_range={"*": (0.95, 1.10)}),
+                       Limits(v_min=0.95, v_max=1.05))
+    ref, ref_secs = timed(ieee30_voltage_schedule)
+    row("IEEE 30 voltage schedule", plan, secs, plan.losses_after_mw["base"], ref.losses_mw, ref_secs, "MW", 2.0)
+
+
+def feeder33(max_sites):
+    net = read_network(DATA / "feeder33_tables")
+    sites = [BankSite(b, 0.15, 10) for b in range(2, 34)]
+    plan, secs = timed(optimise, [LevelCase("base", net)], Levers(sites=sites, max_new_sites=max_sites),
+                       Limits(v_min=0.0, v_max=2.0))
+    if max_sites <= 2:
+        ref, ref_secs = timed(enumerate_feeder33, sites=max_sites, unit_mvar=0.15, max_units=10)
+        ref_v = ref.losses_kw
+    else:
+        ref_v, ref_secs = None, None      # 3-site enumeration (about 7e6 cases) is not run
+    row(f"33-bus placement, 32 buses, <= {max_sites} sites", plan, secs, plan.losses_after_mw["base"] * 1e3,
+        ref_v, ref_secs, "kW", 10.0)
+
+
+def synthetic():
+    net = meshed_grid(32, 32, seed=0)
+    base = solve_flow(net, build_tables=False)
+    c = base.compiled
+    load = np.flatnonzero((c.kind == PQ) & c.alive)
+    # 50 candidate sites: the lowest-voltage load buses (where banks are usually proposed)
+    cand = c.bus_ids[load[np.argsort(base.vm[load])[:50]]]
+    sites = [BankSite(int(b), 5.0, 6) for b in cand]
+    plan, secs = timed(optimise, [LevelCase("base", net)], Levers(sites=sites, max_new_sites=10),
+                       Limits(v_min=0.9, v_max=1.1))
+    row(f"meshed grid 32x32 ({c.n} buses), 50 sites", plan, secs, plan.losses_after_mw["base"], None, None,
+        "MW", 60.0)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="skip the 1,000+-bus case")
+    args = ap.parse_args(argv)
+    print(f"{'case':<38} {'wall s':>8} {'flows':>6} {'MILPs':>6} {'value':>11} {'reference':>11} {'':3} "
+          f"{'ref s':>8} {'ratio':>6}")
+    ieee30()
+    for k in (1, 2, 3):
+        feeder33(k)
+    if not args.quick:
+        synthetic()
+
+
+if __name__ == "__main__":
+    main()
