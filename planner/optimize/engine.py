@@ -424,7 +424,7 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
     status = "iteration limit"
     for it in range(1, options.max_iterations + 1):
         spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c)
-        sol, solves = solve_step(spec)
+        sol, solves = solve_step(spec, time_budget=options.time_limit_s)
         milps += solves
         if not sol.ok:
             status = f"MILP step failed ({sol.status})"
@@ -440,18 +440,29 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
             if progress:
                 progress(log[-1])
             break
-        new = pb.evaluate(cand, warm=ev.flows)
-        accept = new.converged and new.merit < ev.merit - 1e-12
-        log.append({"iteration": it, "accepted": bool(accept), "predicted_mw": pred,
-                    "ac_mw": dict(zip(names, new.losses_mw)), "merit": new.merit,
-                    "violation": new.violation_total, "radius_v": r_v, "radius_units": r_u})
-        if progress:
-            progress(log[-1])
+        if cand.key() in seen:
+            # proposed before and not better then: no load flow needed, shrink the region
+            new = None
+            accept = False
+            log.append({"iteration": it, "accepted": False, "repeat": True, "predicted_mw": pred,
+                        "ac_mw": None, "merit": seen[cand.key()], "violation": None,
+                        "radius_v": r_v, "radius_units": r_u})
+            if progress:
+                progress(log[-1])
+        else:
+            new = pb.evaluate(cand, warm=ev.flows)
+            seen[cand.key()] = new.merit
+            accept = new.converged and new.merit < ev.merit - 1e-12
+        if new is not None:
+            log.append({"iteration": it, "accepted": bool(accept), "predicted_mw": pred,
+                        "ac_mw": dict(zip(names, new.losses_mw)), "merit": new.merit,
+                        "violation": new.violation_total, "radius_v": r_v, "radius_units": r_u})
+            if progress:
+                progress(log[-1])
         if accept:
             gain = ev.merit - new.merit
             loss_change = float(np.abs(new.losses_mw - ev.losses_mw).max())
             cur, ev, predicted = cand, new, pred
-            seen[cur.key()] = ev.merit
             if loss_change < options.loss_tolerance_mw and gain < options.loss_tolerance_mw * max(1.0, pb.loss_weights().max()):
                 status = "converged (AC loss change below tolerance)"
                 break

@@ -78,5 +78,5 @@ class Options:
     penalty: float = 1e4                  # MW of losses (at the heaviest level) per pu of violation
     polish: bool = True                   # AC-checked one-unit moves after the loop
     max_polish_flows: int = 400
-    mip_gap: float = 1e-5
-    time_limit_s: float = 20.0            # per MILP solve; the best solution found is used
+    mip_gap: float = 1e-4
+    time_limit_s: float = 30.0            # per optimiser step (all its MILP solves); best found is used

@@ -13,6 +13,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+import time
+
 import numpy as np
 import pyomo.environ as pyo
 
@@ -76,9 +78,19 @@ class StepSpec:
     levels: list = field(default_factory=list)   # list[LevelData]
 
 
-def _lin(coefs, terms, tol=1e-12):
-    """quicksum of coef*term keeping only coefficients that matter."""
+def _lin(coefs, terms, rel_tol=1e-9):
+    """quicksum of coef*term, dropping coefficients far below the row's largest (they only
+    hurt the solver's numerics)."""
+    coefs = np.asarray(coefs, float)
+    tol = rel_tol * (np.abs(coefs).max() if coefs.size else 0.0)
     return pyo.quicksum(float(c) * t for c, t in zip(coefs, terms) if abs(c) > tol)
+
+
+def objective_scale(spec: "StepSpec") -> float:
+    """Cost of the present point's losses: the model's objective is divided by it, so HiGHS
+    sees numbers near one whatever the currency or the size of the network."""
+    total = sum(lev.weight * spec.base_mva * (float(lev.d @ lev.d) + lev.const) for lev in spec.levels)
+    return total if total > 0 else 1.0
 
 
 def build_model(spec: StepSpec) -> pyo.ConcreteModel:
@@ -133,7 +145,9 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
         return _ordered((lo, hi))
     m.d = pyo.Var(L, T, domain=tap_domain, bounds=tap_bounds)
 
-    obj_terms = [spec.capital_weight * m.capital]
+    scale = objective_scale(spec)
+    root = np.sqrt(spec.base_mva)   # square terms in units whose squares are MW
+    obj_terms = [spec.capital_weight / scale * m.capital]
     tie = []
     m.levels = pyo.Block(L)
     for l in L:
@@ -154,15 +168,15 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
         K = range(len(lev.d))
         b.s = pyo.Var(K)
         b.w = pyo.Var(K, within=pyo.NonNegativeReals)
-        b.s_def = pyo.Constraint(K, rule=lambda _, k: b.s[k] == float(lev.d[k]) + _lin(lev.R[k], du))
+        b.s_def = pyo.Constraint(K, rule=lambda _, k: b.s[k] == root * float(lev.d[k]) + _lin(root * lev.R[k], du))
         b.cuts = pyo.ConstraintList()
         for k in K:
-            span = np.abs(lev.R[k]) @ np.maximum(np.abs(lo_du), np.abs(hi_du))
-            lo, hi = lev.d[k] - span, lev.d[k] + span
-            pts = np.unique(np.concatenate([np.linspace(lo, hi, spec.tangent_points), [lev.d[k], 0.0]]))
+            span = root * (np.abs(lev.R[k]) @ np.maximum(np.abs(lo_du), np.abs(hi_du)))
+            lo, hi = root * lev.d[k] - span, root * lev.d[k] + span
+            pts = np.unique(np.concatenate([np.linspace(lo, hi, spec.tangent_points), [root * lev.d[k], 0.0]]))
             for p in pts:
                 b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
-        b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + float(lev.const))
+        b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + spec.base_mva * float(lev.const))  # MW
         # voltage and reactive rows with penalised slacks
         VR = range(len(lev.v_rows))
         b.sv_lo = pyo.Var(VR, within=pyo.NonNegativeReals)
@@ -180,7 +194,7 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
                                   <= float(lev.q_hi[i]) + b.sq_hi[i])
         viol = (pyo.quicksum(b.sv_lo[i] + b.sv_hi[i] for i in VR)
                 + pyo.quicksum(b.sq_lo[i] + b.sq_hi[i] for i in QR))
-        obj_terms.append(lev.weight * spec.base_mva * b.loss + spec.penalty * viol)
+        obj_terms.append(lev.weight / scale * b.loss + spec.penalty / scale * viol)
         tie.append(pyo.quicksum(m.k[l, s] for s in S))
     obj_terms.append(spec.tie_break * (pyo.quicksum(m.nf[s] + 2 * m.ns[s] for s in S) + pyo.quicksum(tie)))
     m.objective = pyo.Objective(expr=pyo.quicksum(obj_terms), sense=pyo.minimize)
@@ -190,7 +204,7 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
 _DEBUG = False
 
 
-def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
+def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, time_budget: float = 30.0):
     """Build and solve one step, tightening the loss cuts until they are exact enough.
 
     The tangent cuts underestimate each square between tangent points. After each solve,
@@ -202,8 +216,12 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     solver = new_solver()
     solves = 0
     sol = prev = None
+    t_end = time.perf_counter() + time_budget
     for _ in range(max_rounds):
-        sol = solve_model(m, spec, solver)
+        left = t_end - time.perf_counter()
+        if solves and left <= 0.5:
+            break   # out of time: keep the last solution (its cut gap only makes the step conservative)
+        sol = solve_model(m, spec, solver, time_limit=max(left, 1.0))
         solves += 1
         if not sol.ok:
             return sol, solves
@@ -212,12 +230,12 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
         added = False
         for l, lev in enumerate(spec.levels):
             b = m.levels[l]
-            total += lev.weight * float(sol.predicted_loss_pu[l])
+            total += lev.weight * float(sol.predicted_loss_pu[l]) * spec.base_mva
             for k in range(len(lev.d)):
                 sk = pyo.value(b.s[k])
                 excess = sk * sk - pyo.value(b.w[k])
                 if excess > 1e-14:
-                    gap += excess * lev.weight
+                    gap += excess * lev.weight      # MW x weight
                     b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
                     added = True
         if _DEBUG:
@@ -282,11 +300,12 @@ def new_solver():
     return SolverFactory("highs")
 
 
-def solve_model(m: pyo.ConcreteModel, spec: StepSpec, solver=None) -> StepSolution:
-    """Solve with HiGHS and read the solution back as arrays (integers rounded)."""
+def solve_model(m: pyo.ConcreteModel, spec: StepSpec, solver=None, time_limit=None) -> StepSolution:
+    """Solve with HiGHS and read the solution back as arrays (integers rounded). With a time
+    limit, the best solution found in time is used."""
     solver = solver or new_solver()
     try:
-        res = solver.solve(m, load_solutions=False, time_limit=spec_time_limit(spec),
+        res = solver.solve(m, load_solutions=False, time_limit=time_limit if time_limit is not None else spec_time_limit(spec),
                            raise_exception_on_nonoptimal_result=False,
                            solver_options={"mip_rel_gap": spec_mip_gap(spec), "output_flag": False})
         status = str(res.termination_condition).split(".")[-1]
