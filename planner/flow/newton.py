@@ -24,7 +24,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, compile_network
-from .jacobian import JacobianPattern
+from .jacobian import JacobianPattern, factorize
 from .result import FlowResult, STATUS, build_result
 
 LOW_VOLTAGE_SOLUTION_PU = 0.5     # below this a "converged" point is a low-voltage solution
@@ -204,7 +204,7 @@ def _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history):
             return v, iters, 1, f"no convergence within {max_iter} iterations"
         J = pattern.matrix(v, dload(vm))
         try:
-            lu = spla.splu(J)
+            lu = factorize(J)
             dx = -lu.solve(F)
         except RuntimeError:
             return v, iters, 3, "the Jacobian is singular (voltage collapse or an unsupported island)"
