@@ -106,6 +106,7 @@ class PlanResult:
     milp_solves: int
     seconds: float
     settings: Settings = field(repr=False, default=None)
+    bands: dict = field(repr=False, default_factory=dict)   # level -> (v_min, v_max) per bus, compiled order
 
 
 class _Problem:
@@ -466,6 +467,9 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
             if loss_change < options.loss_tolerance_mw and gain < options.loss_tolerance_mw * max(1.0, pb.loss_weights().max()):
                 status = "converged (AC loss change below tolerance)"
                 break
+            if gain < options.merit_rel_tolerance * abs(new.merit):
+                status = "converged (relative improvement below tolerance)"
+                break
         else:
             r_v *= 0.5
             r_c *= 0.5
@@ -609,4 +613,5 @@ def _result(pb: _Problem, names, st: Settings, before: Evaluation, final: Evalua
         capital_cost=float(final.capital), objective_before=float(before.merit), objective_after=float(final.merit),
         violations=final.violations, violations_before=before.violations,
         flows_before=dict(zip(names, before.flows)), flows_after=dict(zip(names, final.flows)),
-        log=log, ac_flows=pb.flows_run, milp_solves=milps, seconds=time.perf_counter() - t0, settings=st)
+        log=log, ac_flows=pb.flows_run, milp_solves=milps, seconds=time.perf_counter() - t0, settings=st,
+        bands={n: pb.vlim[l] for l, n in enumerate(names)})

@@ -71,6 +71,7 @@ class Options:
     """Knobs of the outer loop (defaults suit most cases)."""
     max_iterations: int = 30
     loss_tolerance_mw: float = 1e-5       # stop when an accepted step changes AC losses less
+    merit_rel_tolerance: float = 1e-7     # ... or improves the objective by less than this fraction
     voltage_radius_pu: float = 0.05       # initial trust radius of setpoints
     tap_radius_steps: int = 4
     min_voltage_radius_pu: float = 1e-4

@@ -154,7 +154,8 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
     c0 = compile_network(net)
     limits = Limits(v_min=spec.v_min_pu, v_max=spec.v_max_pu, per_bus=spec.bus_limits,
                     ratings=spec.ratings, q_limits=spec.q_limits)
-    options = Options(max_iterations=spec.max_iterations)
+    options = Options(max_iterations=spec.max_iterations, mip_gap=spec.mip_gap, time_limit_s=spec.step_seconds,
+                      merit_rel_tolerance=spec.rel_tolerance)
     data = {
         "title": spec.title, "network": net.name or spec.network_path.name,
         "created": _dt.datetime.now().strftime("%Y-%m-%d %H:%M"),
@@ -231,7 +232,7 @@ def _alternative_data(spec, alt, plan: PlanResult, cases, c0, names_by_bus, hour
     levels = {}
     for l, n in enumerate(names):
         fr = plan.flows_after[n]
-        lo, hi = _band_arrays(spec, c0, spec.levels[l])
+        lo, hi = plan.bands[n]      # the bands the optimiser verified against
         ok = bool(fr.converged and not [v for v in plan.violations if v.level == n])
         summary = _flow_summary(fr, lo, hi, names_by_bus) if fr.converged else {"losses_mw": None}
         summary.update({"verified": ok, "predicted_mw": plan.losses_predicted_mw.get(n),

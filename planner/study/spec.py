@@ -84,6 +84,9 @@ class StudySpec:
     objective: str = "cost"
     alternatives: list = field(default_factory=list)
     max_iterations: int = 30
+    mip_gap: float = 5e-4
+    rel_tolerance: float = 1e-4
+    step_seconds: float = 15.0
     peak_level: str = ""
 
 
@@ -333,6 +336,11 @@ def read_study(path) -> StudySpec:
     ob.finish()
     sv = top.sub("solver")
     spec.max_iterations = sv.get("max_iterations", int, 30, check=lambda v: 1 <= v <= 500, why="must be 1-500")
+    spec.mip_gap = sv.get("mip_gap", float, 5e-4, check=lambda v: 0 < v < 0.1, why="must be between 0 and 0.1")
+    spec.rel_tolerance = sv.get("rel_tolerance", float, 1e-4, check=lambda v: 0 <= v < 0.1,
+                                why="must be between 0 and 0.1")
+    spec.step_seconds = sv.get("step_seconds", float, 15.0, check=lambda v: 0.5 <= v <= 3600,
+                               why="must be 0.5-3600 s")
     sv.finish()
 
     alts = top.get("alternatives", list, [])
