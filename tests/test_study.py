@@ -1,0 +1,478 @@
+"""Study files and the study runner: ``read_study``, ``run_study``, ``run_study_file``.
+
+The study files under tests/data/studies/ are invented for these tests. Every AC figure the runner
+reports is re-derived here with an independent load flow of the exact settings (loads scaled and
+banks added as bus shunts by this file, not by the runner), and the economics are recomputed from
+the same numbers.
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from planner.errors import InputError
+from planner.flow.newton import solve_flow
+from planner.network.io import read_network, write_network
+from planner.study.economics import Economics, evaluate
+from planner.study.run import run_study, run_study_file
+from planner.study.spec import read_study
+
+DATA = Path(__file__).resolve().parent / "data"
+FEEDER = DATA / "feeder33_tables"
+STUDIES = DATA / "studies"
+EVERY_KEY = STUDIES / "every_key.toml"
+TWO_LEVELS = STUDIES / "feeder33_two_levels.toml"
+
+
+def write_study(tmp_path, text, name="case.toml") -> Path:
+    p = tmp_path / name
+    p.write_text(text, encoding="utf-8")
+    return p
+
+
+def every_key_with(tmp_path, old, new) -> Path:
+    """A copy of every_key.toml with the first ``old`` replaced by ``new`` (``old`` must occur)."""
+    text = EVERY_KEY.read_text()
+    assert old in text, old
+    return write_study(tmp_path, text.replace(old, new, 1))
+
+
+def read_error(path) -> str:
+    with pytest.raises(InputError) as info:
+        read_study(path)
+    msg = str(info.value)
+    assert "\n" not in msg
+    return msg
+
+
+# --- read_study: accepted keys ------------------------------------------------------------------
+
+def test_every_documented_key_is_read():
+    s = read_study(EVERY_KEY)
+    assert s.title == "Every key (test)" and s.currency == "TST"
+    assert s.question.startswith("Does the reader")
+    assert s.network_path == STUDIES / "../feeder33_tables"
+    assert s.output == STUDIES / "out"
+    assert (s.v_min_pu, s.v_max_pu, s.ratings, s.q_limits) == (0.93, 1.06, False, False)
+    assert s.bus_limits == {18: (0.90, 1.05), 33: (0.91, 1.04)}
+    assert [lv.name for lv in s.levels] == ["peak", "shoulder", "light"]
+    peak, shoulder, light = s.levels
+    assert (peak.hours, peak.p_scale, peak.q_scale) == (1500.0, 1.0, 1.0)
+    assert peak.bus_scale == {18: 1.2, 33: 0.8}
+    assert (peak.v_min_pu, peak.v_max_pu) == (0.92, 1.05)
+    assert (shoulder.p_scale, shoulder.q_scale, shoulder.hours) == (0.7, 0.6, 4000.0)
+    assert (light.p_scale, light.q_scale) == (0.4, 0.4)
+    assert s.peak_level == "peak"
+    b = s.banks
+    assert b.candidates == [14, 18, 30]
+    assert (b.unit_mvar, b.max_units, b.kinds, b.max_new_sites, b.budget) == \
+        (0.15, 8, ("fixed", "switched"), 2, 50000.0)
+    assert b.existing_switchable is False
+    assert (b.per_site, b.per_mvar, b.switched_per_mvar, b.switched_per_site) == (2000.0, 8000.0, 3000.0, 1500.0)
+    assert set(b.overrides) == {33}
+    o = b.overrides[33]
+    assert (o.unit_mvar, o.max_units, tuple(o.kinds)) == (0.3, 3, ("switched",))
+    assert s.gen_range == {"*": (0.98, 1.04), 1: (1.00, 1.03)}
+    assert s.setpoints_per_level is False and s.taps is True
+    e = s.economics
+    assert e["energy_value_per_mwh"] == {"peak": 90.0, "shoulder": 60.0, "light": 40.0}
+    assert (e["demand_value_per_kw_year"], e["discount_rate"], e["horizon_years"],
+            e["bank_life_years"], e["om_fraction"]) == (55.0, 0.06, 15, 10, 0.015)
+    assert s.objective == "cost" and s.max_iterations == 12
+    a1, a2 = s.alternatives
+    assert (a1.name, a1.description, a1.banks, a1.setpoints, a1.taps, a1.budget, a1.max_new_sites) == \
+        ("Banks", "banks only", True, False, False, 20000.0, 1)
+    assert (a2.name, a2.banks, a2.setpoints, a2.taps, a2.budget, a2.max_new_sites) == \
+        ("All", True, True, True, None, None)
+
+
+def test_defaults_of_a_minimal_study(tmp_path):
+    s = read_study(write_study(tmp_path, '[study]\ntitle = "M"\nnetwork = "n"\n'
+                                         '[[levels]]\nname = "only"\nhours = 8760\n'))
+    assert (s.v_min_pu, s.v_max_pu) == (0.95, 1.05)
+    assert (s.banks.unit_mvar, s.banks.max_units, s.banks.kinds) == (0.3, 4, ("fixed", "switched"))
+    assert s.banks.candidates == [] and s.gen_range is None and s.taps is False
+    assert s.objective == "cost" and s.max_iterations == 30
+    assert s.economics["discount_rate"] == 0.07 and s.economics["horizon_years"] == 20
+    assert [a.name for a in s.alternatives] == ["Plan"]
+    # the [generators] section alone makes setpoints levers, with the documented default range
+    s = read_study(write_study(tmp_path, '[study]\ntitle = "M"\nnetwork = "n"\n'
+                                         '[[levels]]\nname = "only"\nhours = 8760\n'
+                                         '[generators]\nper_level = true\n', "g.toml"))
+    assert s.gen_range == {"*": (0.95, 1.05)}
+
+
+# --- read_study: bad values ---------------------------------------------------------------------
+
+BAD_VALUES = [
+    # (old text, new text, key path in the message, words in the message)
+    ("hours = 4000", "hours = -5", "levels[1].hours", "positive"),
+    ("hours = 4000", 'hours = "many"', "levels[1].hours", "number"),
+    ("load_scale = 0.4", "load_scale = 0", "levels[2].load_scale", "positive"),
+    ('bus_scale = { "18" = 1.2', 'bus_scale = { "18" = -1.2', "levels[0].bus_scale.18", "positive"),
+    ('bus_scale = { "18" = 1.2', 'bus_scale = { "x18" = 1.2', "levels[0].bus_scale.x18", "bus number"),
+    ('name = "light"', 'name = "peak"', "levels[2].name", "twice"),
+    ("unit_mvar = 0.15", 'unit_mvar = "big"', "banks.unit_mvar", "number"),
+    ("unit_mvar = 0.15", "unit_mvar = 0", "banks.unit_mvar", "positive"),
+    ("max_units = 8", "max_units = 0", "banks.max_units", "1-1000"),
+    ("max_units = 8", "max_units = 2.5", "banks.max_units", "whole number"),
+    ('kinds = ["fixed", "switched"]', 'kinds = ["fixd"]', "banks.kinds", "fixd"),
+    ("candidates = [14, 18, 30]", 'candidates = [14, "x"]', "banks.candidates", "bus numbers"),
+    ("max_new_sites = 2", "max_new_sites = -1", "banks.max_new_sites", "negative"),
+    ("budget = 50000.0", 'budget = "lots"', "banks.budget", "number"),
+    ("per_mvar = 8000.0", "per_mvar = -1.0", "banks.costs.per_mvar", "negative"),
+    ("unit_mvar = 0.3", "unit_mvar = 0", "banks.site[0].unit_mvar", "positive"),
+    ("bus = 33", 'bus = "33"', "banks.site[0].bus", "whole number"),
+    ("existing_switchable = false", "existing_switchable = 0", "banks.existing_switchable", "true or false"),
+    ('"18" = [0.90, 1.05]', '"18" = "high"', "limits.buses.18", "[low, high]"),
+    ('"33" = [0.91, 1.04]', '"33" = [1.04, 0.91]', "limits.buses.33", "[low, high]"),
+    ('"33" = [0.91, 1.04]', '"abc" = [0.91, 1.04]', "limits.buses.abc", "bus number"),
+    ("v_min_pu = 0.93", 'v_min_pu = "low"', "limits.v_min_pu", "number"),
+    ("v_min_pu = 0.93", "v_min_pu = 1.06", "limits.v_min_pu", "below v_max_pu"),
+    ("v_min_pu = 0.93", "v_min_pu = 1.1", "limits.v_min_pu", "below v_max_pu"),
+    ("branch_ratings = false", 'branch_ratings = "no"', "limits.branch_ratings", "true or false"),
+    ("v_min_pu = 0.98", "v_min_pu = 1.04", "generators.v_min_pu", "low < high"),
+    ('"1" = [1.00, 1.03]', '"1" = [1.03]', "generators.buses.1", "[low, high]"),
+    ("per_level = false", "per_level = 3", "generators.per_level", "true or false"),
+    ("adjust = true", 'adjust = "yes"', "generators.adjust", "true or false"),
+    ("discount_rate = 0.06", "discount_rate = 1.5", "economics.discount_rate", "fraction"),
+    ("horizon_years = 15", "horizon_years = 2.5", "economics.horizon_years", "whole number"),
+    ("bank_life_years = 10", "bank_life_years = 0", "economics.bank_life_years", "1-100"),
+    ("demand_value_per_kw_year = 55.0", "demand_value_per_kw_year = -55.0",
+     "economics.demand_value_per_kw_year", "negative"),
+    ("light = 40.0 }", "light = 40.0, winter = 1.0 }", "economics.energy_value_per_mwh.winter", "not a load level"),
+    ("peak = 90.0,", "peak = -90.0,", "economics.energy_value_per_mwh.peak", "non-negative"),
+    (", light = 40.0 }", " }", "economics.energy_value_per_mwh", "'light'"),
+    ('kind = "cost"', 'kind = "money"', "objective.kind", "money"),
+    ("max_iterations = 12", "max_iterations = 0", "solver.max_iterations", "1-500"),
+    ('description = "every lever"', 'description = "every lever"\nbudget = -1.0', "alternatives[1].budget",
+     "negative"),
+    ('name = "All"', 'name = "Banks"', "alternatives[1].name", "twice"),
+    ("setpoints = false", 'setpoints = "no"', "alternatives[0].setpoints", "true or false"),
+    ('output = "out"', "output = 5", "study.output", "text"),
+    ('title = "Every key (test)"', "title = 7", "study.title", "text"),
+    ("[taps]\nadjust = true", '[taps]\nadjust = "on"', "taps.adjust", "true or false"),
+]
+
+
+@pytest.mark.parametrize("old,new,key,words", BAD_VALUES, ids=[f"{c[2]}={c[1][-20:]}" for c in BAD_VALUES])
+def test_bad_value_names_file_and_key(tmp_path, old, new, key, words):
+    msg = read_error(every_key_with(tmp_path, old, new))
+    assert msg.startswith(f"case.toml: {key}: "), msg
+    assert words in msg, msg
+
+
+UNKNOWN = [
+    ('currency = "TST"', 'currency = "TST"\ncurency = "X"', "study.curency"),
+    ("existing_switchable = false", "existing_switchable = false\nunits = 3", "banks.units"),
+    ("per_site = 2000.0", "per_site = 2000.0\nper_sites = 1.0", "banks.costs.per_sites"),
+    ("max_units = 3", "max_units = 3\nsize = 3", "banks.site[0].size"),
+    ('name = "shoulder"', 'name = "shoulder"\nhour = 5', "levels[1].hour"),
+    ("om_fraction = 0.015", "om_fraction = 0.015\ninterest = 0.05", "economics.interest"),
+    ("banks = true", "bank = true", "alternatives[0].bank"),
+    ("[taps]\nadjust = true", "[taps]\nadjust = true\nstep = 1", "taps.step"),
+    ('kind = "cost"', 'kind = "cost"\nweight = 1', "objective.weight"),
+    ("max_iterations = 12", "max_iterations = 12\ntolerance = 1", "solver.tolerance"),
+    ("reactive_limits = false", "reactive_limits = false\nthermal = true", "limits.thermal"),
+    ("[generators]\n", "[generators]\nspeed = 1\n", "generators.speed"),
+]
+
+
+@pytest.mark.parametrize("old,new,key", UNKNOWN, ids=[c[2] for c in UNKNOWN])
+def test_unknown_key_is_named(tmp_path, old, new, key):
+    msg = read_error(every_key_with(tmp_path, old, new))
+    assert msg.startswith(f"case.toml: {key}: unknown key"), msg
+
+
+def test_unknown_section_is_named(tmp_path):
+    msg = read_error(write_study(tmp_path, EVERY_KEY.read_text() + '\n[bankz]\nunit_mvar = 1\n'))
+    assert msg.startswith("case.toml: bankz: unknown section"), msg
+    msg = read_error(write_study(tmp_path, 'flavour = "x"\n' + EVERY_KEY.read_text()))
+    assert msg.startswith("case.toml: flavour: unknown section"), msg
+
+
+@pytest.mark.parametrize("old,key", [('title = "Every key (test)"\n', "study.title"),
+                                     ('network = "../feeder33_tables"\n', "study.network"),
+                                     ("hours = 1500\n", "levels[0].hours"),
+                                     ('name = "shoulder"\n', "levels[1].name")])
+def test_missing_required_key_is_named(tmp_path, old, key):
+    msg = read_error(every_key_with(tmp_path, old, ""))
+    assert msg == f"case.toml: {key}: missing (required)"
+
+
+def test_missing_study_or_levels_section(tmp_path):
+    msg = read_error(write_study(tmp_path, '[[levels]]\nname = "p"\nhours = 1\n'))
+    assert msg == "case.toml: study: missing (required)"
+    msg = read_error(write_study(tmp_path, '[study]\ntitle = "t"\nnetwork = "n"\n'))
+    assert msg == "case.toml: levels: missing (required)"
+    msg = read_error(write_study(tmp_path, '[study]\ntitle = "t"\nnetwork = "n"\n[levels]\nname = "p"\n'))
+    assert msg.startswith("case.toml: levels: must be a list")
+    msg = read_error(write_study(tmp_path, 'study = "x"\n[[levels]]\nname = "p"\nhours = 1\n'))
+    assert msg.startswith("case.toml: study: must be a table")
+
+
+def test_hours_over_a_year_rejected(tmp_path):
+    msg = read_error(every_key_with(tmp_path, "hours = 4000", "hours = 6000"))   # 1500 + 6000 + 3260
+    assert msg.startswith("case.toml: levels: hours add up to 10760"), msg
+    assert "year" in msg
+    # exactly a year is fine
+    s = read_study(every_key_with(tmp_path, "hours = 4000", "hours = 4000"))
+    assert sum(lv.hours for lv in s.levels) == 8760.0
+
+
+def test_malformed_toml_one_line_with_file_name(tmp_path):
+    msg = read_error(every_key_with(tmp_path, 'title = "Every key (test)"', 'title = "Every key (test)'))
+    assert msg.startswith("case.toml: not valid TOML"), msg
+    assert "line 3" in msg, msg
+
+
+def test_missing_or_undecodable_study_file(tmp_path):
+    with pytest.raises(InputError) as info:
+        read_study(tmp_path / "absent.toml")
+    assert "absent.toml" in str(info.value) and "not found" in str(info.value)
+    p = tmp_path / "latin.toml"
+    p.write_bytes('[study]\ntitle = "Caf\u00e9"\n'.encode("latin-1"))
+    with pytest.raises(InputError) as info:
+        read_study(p)
+    assert str(info.value).startswith("latin.toml: not UTF-8")
+
+
+# Per-level band and per-site kinds are documented keys but read without checks (see report).
+
+def test_level_band_inverted_rejected(tmp_path):
+    msg = read_error(every_key_with(tmp_path, "v_min_pu = 0.92", "v_min_pu = 1.07"))   # level v_max 1.05
+    assert msg.startswith("case.toml: levels[0].v_min_pu: "), msg
+
+
+def test_level_band_out_of_range_rejected(tmp_path):
+    msg = read_error(every_key_with(tmp_path, "v_max_pu = 1.05\n\n[[levels]]", "v_max_pu = 7.0\n\n[[levels]]"))
+    assert msg.startswith("case.toml: levels[0].v_max_pu: "), msg
+
+
+def test_site_kinds_checked(tmp_path):
+    msg = read_error(every_key_with(tmp_path, 'kinds = ["switched"]', 'kinds = ["swiched"]'))
+    assert msg.startswith("case.toml: banks.site[0].kinds: "), msg
+
+
+# --- bus numbers that the network does not have -------------------------------------------------
+
+SMALL = ('[study]\ntitle = "small"\nnetwork = "{net}"\n[limits]\nv_min_pu = 0.90\n'
+         '[objective]\nkind = "losses"\n[solver]\nmax_iterations = 3\n'
+         '[banks]\ncandidates = [18]\nunit_mvar = 0.15\nmax_units = 4\n'
+         '[[levels]]\nname = "peak"\nhours = 2000\n{extra}')
+
+
+@pytest.mark.parametrize("extra,key", [
+    ("[banks.costs]\nper_site = 1.0\n", None),           # control: a good file runs
+    ('bus_scale = { "999" = 2.0 }\n', "levels[0].bus_scale.999"),
+    ('[limits.buses]\n"999" = [0.9, 1.1]\n', "limits.buses.999"),
+    ("[[banks.site]]\nbus = 999\n", "banks.site[0].bus"),
+    ('[generators.buses]\n"999" = [0.9, 1.1]\n', "generators.buses.999"),
+], ids=["control", "bus_scale", "limits.buses", "banks.site", "generators.buses"])
+def test_unknown_bus_in_study_is_input_error(tmp_path, extra, key):
+    path = write_study(tmp_path, SMALL.format(net=FEEDER.as_posix(), extra=extra))
+    if key is None:
+        data, _ = run_study(read_study(path))
+        assert data["alternatives"][0]["verified"] is True
+        return
+    with pytest.raises(InputError) as info:
+        run_study(read_study(path))
+    msg = str(info.value)
+    assert msg.startswith(f"case.toml: {key}"), msg
+    assert "999" in msg
+
+
+def test_unknown_candidate_bus_is_input_error(tmp_path):
+    path = write_study(tmp_path, SMALL.format(net=FEEDER.as_posix(), extra="").replace("[18]", "[18, 999]"))
+    with pytest.raises(InputError) as info:
+        run_study(read_study(path))
+    assert str(info.value).startswith("case.toml: banks.candidates: bus 999 is not in the network")
+
+
+# --- run_study on a two-level feeder study ------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def two_level():
+    spec = read_study(TWO_LEVELS)
+    data, plans = run_study(spec)
+    return spec, data, plans
+
+
+HOURS = {"peak": 2000.0, "light": 6760.0}
+SCALE = {"peak": 1.0, "light": 0.4}
+BAND = (0.92, 1.05)
+CANDIDATES = {14, 18, 30, 33}
+
+
+def solve_level(level, mvar_by_bus=None):
+    """Independent AC load flow of the feeder at a level: loads scaled here, banks as bus shunts."""
+    net = read_network(FEEDER).copy()
+    net.loads["p_mw"] = net.loads["p_mw"] * SCALE[level]
+    net.loads["q_mvar"] = net.loads["q_mvar"] * SCALE[level]
+    for bus, mvar in (mvar_by_bus or {}).items():
+        net.buses.loc[net.buses["bus"] == bus, "bs_mvar"] += mvar
+    res = solve_flow(net)
+    assert res.converged
+    return res
+
+
+def bank_mvar_at(alt, level):
+    out = {}
+    for b in alt["banks"]:
+        out[b["bus"]] = out.get(b["bus"], 0.0) + b["steps_by_level"][level] * b["unit_mvar"]
+    return out
+
+
+def test_run_study_base_case(two_level):
+    _, data, plans = two_level
+    assert data["title"] == "Feeder 33 two-level study (test)"
+    assert [lv["name"] for lv in data["levels"]] == ["peak", "light"]
+    assert data["peak_level"] == "peak"
+    assert [a["name"] for a in data["alternatives"]] == ["Banks, two sites", "Banks, one site"]
+    assert len(plans) == 2
+    base = data["base"]
+    # Baran and Wu 1989: 202.67 kW, lowest voltage 0.9131 pu at bus 18
+    assert base["peak"]["losses_mw"] == pytest.approx(0.20267, abs=1e-5)
+    assert base["peak"]["v_min_pu"] == pytest.approx(0.9131, abs=1e-4) and base["peak"]["v_min_bus"] == 18
+    light = solve_level("light")
+    assert base["light"]["losses_mw"] == pytest.approx(light.losses_mw, abs=1e-9)
+    assert base["light"]["v_min_pu"] == pytest.approx(light.vm.min(), abs=1e-9)
+    # the base peak breaks the 0.92 pu band at the far end of the main feeder, the light level does not
+    broken = {v["bus"] for v in base["peak"]["violations"]}
+    assert 18 in broken and all(v["v_pu"] < 0.92 for v in base["peak"]["violations"])
+    assert base["light"]["violations"] == []
+
+
+def test_every_alternative_level_verified_by_ac(two_level):
+    _, data, _ = two_level
+    for alt in data["alternatives"]:
+        assert alt["verified"] is True, alt["message"]
+        assert alt["remaining_violations"] == []
+        assert alt["banks"], alt["name"]
+        for level in ("peak", "light"):
+            lv = alt["levels"][level]
+            assert lv["verified"] is True
+            res = solve_level(level, bank_mvar_at(alt, level))
+            assert lv["losses_mw"] == pytest.approx(res.losses_mw, abs=1e-7), (alt["name"], level)
+            mine = dict(zip(res.compiled.bus_ids.tolist(), res.vm.tolist()))
+            theirs = {p["bus"]: p["v_pu"] for p in lv["profile"]}
+            assert set(theirs) == set(mine)
+            assert max(abs(theirs[b] - mine[b]) for b in mine) < 1e-7
+            assert BAND[0] - 1e-6 <= min(mine.values()) and max(mine.values()) <= BAND[1] + 1e-6
+            assert lv["v_min_pu"] == pytest.approx(min(mine.values()), abs=1e-7)
+            assert lv["violations"] == []
+
+
+def test_alternatives_respect_catalogue_and_caps(two_level):
+    _, data, _ = two_level
+    caps = {"Banks, two sites": (2, None), "Banks, one site": (1, 12000.0)}
+    for alt in data["alternatives"]:
+        sites = {b["bus"] for b in alt["banks"]}
+        assert sites <= CANDIDATES
+        max_sites, budget = caps[alt["name"]]
+        assert len(sites) <= max_sites
+        capital = 0.0
+        for bus in sites:
+            entries = [b for b in alt["banks"] if b["bus"] == bus]
+            assert sum(b["units"] for b in entries) <= 8
+            fixed = sum(b["mvar"] for b in entries if b["kind"] == "fixed")
+            switched = sum(b["mvar"] for b in entries if b["kind"] == "switched")
+            # invented catalogue costs of the study file
+            capital += 2000.0 + 8000.0 * (fixed + switched) + (1500.0 + 3000.0 * switched if switched else 0.0)
+        for b in alt["banks"]:
+            assert b["unit_mvar"] == 0.15 and b["mvar"] == pytest.approx(0.15 * b["units"])
+            if b["kind"] == "fixed":
+                assert b["steps_by_level"] == {"peak": b["units"], "light": b["units"]}
+            else:
+                assert all(0 <= s <= b["units"] for s in b["steps_by_level"].values())
+        assert alt["capital_cost"] == pytest.approx(capital, abs=1e-6)
+        if budget is not None:
+            assert alt["capital_cost"] <= budget + 1e-6
+
+
+def test_economics_match_evaluate(two_level):
+    spec, data, _ = two_level
+    econ = Economics(energy_value_per_mwh={"peak": 90.0, "light": 45.0}, demand_value_per_kw_year=60.0,
+                     discount_rate=0.08, horizon_years=15, bank_life_years=20, om_fraction=0.02)
+    for alt in data["alternatives"]:
+        assert alt["verified"] and "economics" in alt
+        before = {n: data["base"][n]["losses_mw"] for n in HOURS}
+        after = {n: alt["levels"][n]["losses_mw"] for n in HOURS}
+        ref = evaluate(before, after, HOURS, alt["capital_cost"], econ, "peak").as_dict()
+        got = alt["economics"]
+        for k, v in ref.items():
+            if isinstance(v, float):
+                assert got[k] == pytest.approx(v, rel=1e-9, abs=1e-9), k
+            else:
+                assert got[k] == v, k
+        # the same figures by hand
+        saved = {n: (before[n] - after[n]) * HOURS[n] for n in HOURS}
+        annual = saved["peak"] * 90.0 + saved["light"] * 45.0 + (before["peak"] - after["peak"]) * 1000 * 60.0
+        assert got["annual_saving"] == pytest.approx(annual, rel=1e-9)
+        assert got["annual_om"] == pytest.approx(0.02 * alt["capital_cost"], rel=1e-12)
+        assert got["energy_before_mwh"]["light"] == pytest.approx(before["light"] * 6760.0, rel=1e-12)
+        assert got["annual_saving"] > 0 and got["npv"] > 0
+
+
+# --- run_study_file: the report folder -----------------------------------------------------------
+
+def snapshot(folder: Path) -> dict:
+    return {p.relative_to(folder).as_posix(): p.read_bytes() for p in folder.rglob("*") if p.is_file()}
+
+
+def test_report_folder_written_then_replaced_whole(tmp_path):
+    out = tmp_path / "reports"
+    assert run_study_file(STUDIES / "feeder33_plan.toml", out_dir=out, quiet=True) == 0
+    folder = out / "feeder33-plan"
+    names = {p.name for p in folder.iterdir()}
+    assert {"report.html", "report.json", "plans.json"} <= names
+    assert any(n.endswith(".csv") for n in names)
+    html = (folder / "report.html").read_text()
+    assert html.startswith("<!DOCTYPE html>") and "Feeder 33 bank placement (test)" in html
+    report = json.loads((folder / "report.json").read_text())
+    assert report["data"]["title"] == "Feeder 33 bank placement (test)"
+    assert report["data"]["alternatives"][0]["verified"] is True
+    plans = json.loads((folder / "plans.json").read_text())
+    assert len(plans) == 1 and plans[0]["verified"] is True
+    assert plans[0]["losses_before_mw"] == pytest.approx(0.20267, abs=1e-5)   # Baran and Wu 1989
+
+    (folder / "stale.csv").write_text("left over\n")
+    assert run_study_file(STUDIES / "feeder33_plan.toml", out_dir=out, quiet=True) == 0
+    assert not (folder / "stale.csv").exists()
+    assert {p.name for p in folder.iterdir()} == names
+    assert [p.name for p in out.iterdir()] == ["feeder33-plan"]     # no temporary folders left
+
+
+def test_failed_run_leaves_earlier_report_untouched(tmp_path, monkeypatch):
+    out = tmp_path / "reports"
+    assert run_study_file(STUDIES / "feeder33_plan.toml", out_dir=out, quiet=True) == 0
+    before = snapshot(out)
+
+    import planner.report.render as render
+
+    def broken(data):
+        raise RuntimeError("renderer failed")
+    monkeypatch.setattr(render, "render_report", broken)
+    with pytest.raises(RuntimeError, match="renderer failed"):
+        run_study_file(STUDIES / "feeder33_plan.toml", out_dir=out, quiet=True)
+    assert snapshot(out) == before
+    assert [p.name for p in out.iterdir()] == ["feeder33-plan"]
+
+
+def test_bus_names_escaped_in_report(tmp_path):
+    net = read_network(FEEDER).copy()
+    net.buses["name"] = net.buses["name"].astype(object)
+    net.buses.loc[net.buses["bus"] == 18, "name"] = "<script>alert(1)</script>"
+    net.buses.loc[net.buses["bus"] == 1, "name"] = 'A & B "q"'     # the highest voltage
+    write_network(net, tmp_path / "named")
+    study = write_study(tmp_path, SMALL.format(net="named", extra=""), "named.toml")
+    assert run_study_file(study, out_dir=tmp_path / "out", quiet=True) == 0
+    html = (tmp_path / "out" / "named" / "report.html").read_text()
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html      # bus 18 is the lowest voltage
+    assert "<script" not in html.lower()
+    assert "A &amp; B &quot;q&quot;" in html and "A & B" not in html
+    report = json.loads((tmp_path / "out" / "named" / "report.json").read_text())
+    assert report["data"]["base"]["peak"]["v_min_bus"] == 18
