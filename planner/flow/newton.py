@@ -11,9 +11,13 @@ Method
 * Step control: a backtracking line search on the 2-norm of the mismatch, so a poor start
   does not run away to a far-off solution; a solution with a live bus below 0.5 pu is not
   accepted as the normal operating point.
-* Reactive limits (on by default): after convergence, PV buses whose generators would exceed
-  their summed limits become PQ at the limit; a limited bus returns to PV when its voltage
-  would move back past the setpoint. Repeated until no bus changes.
+* Reactive limits (on by default): PV buses whose generators would exceed their summed limits
+  become PQ at the limit; a limited bus returns to PV when its voltage would move back past the
+  setpoint. The limits are first checked once the mismatch falls below
+  ``LIMIT_CHECK_PU`` (with a margin of the current mismatch, so an unconverged point does not
+  switch a bus that sits on the edge), so each switching round need not converge fully; a
+  round that changes nothing carries on to full convergence, and the converged point is
+  checked again without a margin. Repeated until no bus changes.
 """
 from __future__ import annotations
 
@@ -29,6 +33,7 @@ from .result import FlowResult, STATUS, build_result
 
 LOW_VOLTAGE_SOLUTION_PU = 0.5     # below this a "converged" point is a low-voltage solution
 MAX_LIMIT_ROUNDS = 20
+LIMIT_CHECK_PU = 1e-3             # mismatch at which limits are first checked in each round
 LINE_SEARCH_STEPS = 10
 
 
@@ -92,8 +97,15 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
     history: list[float] = []
     iters = 0
     status, message = 1, ""
+
+    def early_check(vv, margin):
+        return _update_limits(c, y, vv, kind, q_fixed, at_limit, margin=margin)
+
     for _ in range(MAX_LIMIT_ROUNDS + 1):
-        v, iters, status, message = _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history)
+        v, iters, status, message = _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history,
+                                            early_check if enforce_q_limits else None)
+        if status == SWITCHED:
+            continue
         if status != 0 or not enforce_q_limits:
             break
         changed = _update_limits(c, y, v, kind, q_fixed, at_limit)
@@ -175,8 +187,16 @@ def bus_mismatch(c: Compiled, y, v: np.ndarray, q_fixed: np.ndarray) -> np.ndarr
     return v * np.conj(y @ v) - s_spec
 
 
-def _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history):
-    """Newton iterations for one set of bus kinds. Returns (v, iterations, status, message)."""
+SWITCHED = -1                     # internal status: the early limit check changed bus kinds
+
+
+def _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history, early_check=None):
+    """Newton iterations for one set of bus kinds. Returns (v, iterations, status, message).
+
+    ``early_check(v, margin)``, if given, is called once, when the mismatch first falls below
+    ``LIMIT_CHECK_PU``; if it returns True (bus kinds changed, ``v`` possibly adjusted in
+    place) the iterations stop with status ``SWITCHED``.
+    """
     alive = c.alive
     pv = np.flatnonzero((kind == PV) & alive)
     pq = np.flatnonzero((kind == PQ) & alive)
@@ -200,6 +220,10 @@ def _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history):
             return v, iters, 2, "the iteration diverged (non-finite mismatch)"
         if norm <= tol:
             return v, iters, 0, ""
+        if early_check is not None and norm <= LIMIT_CHECK_PU:
+            if early_check(v, norm):
+                return v, iters, SWITCHED, ""
+            early_check = None
         if iters >= max_iter:
             return v, iters, 1, f"no convergence within {max_iter} iterations"
         J = pattern.matrix(v, dload(vm))
@@ -234,16 +258,19 @@ def _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history):
         v, vm, va, F = v_new, vm_new, va_new, F_new
 
 
-def _update_limits(c, y, v, kind, q_fixed, at_limit) -> bool:
-    """Switch PV buses at a reactive limit to PQ and back; True if anything changed."""
+def _update_limits(c, y, v, kind, q_fixed, at_limit, margin: float = 0.0) -> bool:
+    """Switch PV buses at a reactive limit to PQ and back; True if anything changed.
+
+    ``margin`` (pu of Mvar and of voltage) widens both tests, for a point not yet converged.
+    """
     vm = np.abs(v)
     q_gen = (v * np.conj(y @ v)).imag + load_power(c, vm).imag - c.s_gen.imag
-    tol_q = 1e-9
+    tol_q = 1e-9 + margin
     pv_now = (kind == PV) & c.alive
     over = pv_now & (q_gen > c.q_max + tol_q)
     under = pv_now & (q_gen < c.q_min - tol_q)
     # a bus held at its maximum whose voltage is above the setpoint could give less: back to PV
-    tol_v = 1e-9
+    tol_v = 1e-9 + margin
     back = ((at_limit > 0) & (vm > c.v_set + tol_v)) | ((at_limit < 0) & (vm < c.v_set - tol_v))
     if not (over.any() or under.any() or back.any()):
         return False
