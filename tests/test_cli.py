@@ -276,6 +276,20 @@ def test_plan_limits_unreachable_exits_1_with_violations(tmp_path):
     assert all(v["excess"] > 0 and v["level"] == "peak" for v in d["violations"])
 
 
+def test_plan_one_level_switched_only_sites_still_used(tmp_path):
+    # a catalogue of switched banks only: at a single level a switched bank is simply in service,
+    # so the plan must still place banks (the same sizes as fixed ones would be)
+    text = (STUDIES / "feeder33_plan.toml").read_text().replace('kinds = ["fixed"]', 'kinds = ["switched"]')
+    text = text.replace('"../feeder33_tables"', f'"{FEEDER.as_posix()}"')
+    study = tmp_path / "switched.toml"
+    study.write_text(text)
+    out = tmp_path / "switched.json"
+    assert main(["plan", str(study), "--json", str(out), "-q"]) == 0
+    d = json.loads(out.read_text())
+    assert d["verified"] is True and d["banks"]
+    assert d["losses_after_mw"] < d["losses_before_mw"] - 0.03
+
+
 def test_plan_unknown_level_is_input_error(tmp_path, capsys):
     out = tmp_path / "p.json"
     code = main(["plan", str(STUDIES / "feeder33_plan.toml"), "--level", "winter", "--json", str(out)])
@@ -293,3 +307,17 @@ def test_plan_bad_study_file_one_line(tmp_path):
     assert p.returncode == 2
     line = one_error_line(p.stderr)
     assert "typo.toml" in line and "banks.unit_mvr" in line and "unknown key" in line
+
+
+# --- planner study ------------------------------------------------------------------------------
+
+def test_study_command_writes_report_and_says_where(tmp_path, capsys):
+    out = tmp_path / "reports"
+    assert main(["study", str(STUDIES / "feeder33_plan.toml"), "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    report = out / "feeder33-plan" / "report.html"
+    assert report.is_file()
+    assert f"report: {report}" in text
+    assert re.search(r"Plan: verified; losses after: peak 0\.1\d{3} MW", text), text
+    data = json.loads((out / "feeder33-plan" / "report.json").read_text())["data"]
+    assert data["base"]["peak"]["losses_mw"] == pytest.approx(0.20267, abs=1e-5)   # Baran and Wu 1989

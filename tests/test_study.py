@@ -82,6 +82,7 @@ def test_every_documented_key_is_read():
     assert (e["demand_value_per_kw_year"], e["discount_rate"], e["horizon_years"],
             e["bank_life_years"], e["om_fraction"]) == (55.0, 0.06, 15, 10, 0.015)
     assert s.objective == "cost" and s.max_iterations == 12
+    assert (s.rel_tolerance, s.mip_gap, s.step_seconds) == (0.001, 0.002, 5.0)
     a1, a2 = s.alternatives
     assert (a1.name, a1.description, a1.banks, a1.setpoints, a1.taps, a1.budget, a1.max_new_sites) == \
         ("Banks", "banks only", True, False, False, 20000.0, 1)
@@ -96,6 +97,7 @@ def test_defaults_of_a_minimal_study(tmp_path):
     assert (s.banks.unit_mvar, s.banks.max_units, s.banks.kinds) == (0.3, 4, ("fixed", "switched"))
     assert s.banks.candidates == [] and s.gen_range is None and s.taps is False
     assert s.objective == "cost" and s.max_iterations == 30
+    assert (s.rel_tolerance, s.mip_gap, s.step_seconds) == (1e-4, 5e-4, 15.0)
     assert s.economics["discount_rate"] == 0.07 and s.economics["horizon_years"] == 20
     assert [a.name for a in s.alternatives] == ["Plan"]
     # the [generators] section alone makes setpoints levers, with the documented default range
@@ -148,6 +150,9 @@ BAD_VALUES = [
     (", light = 40.0 }", " }", "economics.energy_value_per_mwh", "'light'"),
     ('kind = "cost"', 'kind = "money"', "objective.kind", "money"),
     ("max_iterations = 12", "max_iterations = 0", "solver.max_iterations", "1-500"),
+    ("mip_gap = 0.002", "mip_gap = 0", "solver.mip_gap", "between 0 and 0.1"),
+    ("rel_tolerance = 0.001", 'rel_tolerance = "small"', "solver.rel_tolerance", "number"),
+    ("step_seconds = 5.0", "step_seconds = 0.1", "solver.step_seconds", "0.5-3600"),
     ('description = "every lever"', 'description = "every lever"\nbudget = -1.0', "alternatives[1].budget",
      "negative"),
     ('name = "All"', 'name = "Banks"', "alternatives[1].name", "twice"),
