@@ -358,7 +358,8 @@ class _Problem:
             base_mva=self.base, unit_pu=self.unit_pu(),
             max_units=np.array([s.max_units for s in sites], int),
             allow_fixed=np.array(["fixed" in s.kinds for s in sites], bool),
-            allow_switched=np.array(["switched" in s.kinds for s in sites], bool) if L > 1 else np.zeros(len(sites), bool),
+            # at a single level a switched unit is simply in service; it still counts its extra cost
+            allow_switched=np.array(["switched" in s.kinds for s in sites], bool),
             site_cost=np.array([s.fixed_cost for s in sites], float),
             mvar_cost=np.array([s.cost_per_mvar for s in sites], float),
             sw_mvar_cost=np.array([s.switched_cost_per_mvar for s in sites], float),
@@ -502,11 +503,12 @@ def _neighbours(pb: _Problem, st: Settings):
                 n.fixed[s] += dlt
                 if 0 <= n.fixed[s] and n.fixed[s] + n.switched[s] <= site.max_units:
                     yield n
-            if st.switched[s] or (L > 1 and "switched" in site.kinds):
+            if st.switched[s] or "switched" in site.kinds:
                 n = st.copy()
                 n.switched[s] += dlt
-                if 0 <= n.switched[s] and n.fixed[s] + n.switched[s] <= site.max_units and L > 1:
-                    n.steps[:, s] = np.minimum(n.steps[:, s], n.switched[s])
+                if 0 <= n.switched[s] and n.fixed[s] + n.switched[s] <= site.max_units:
+                    # a unit added comes in service at every level; step moves can then turn it off
+                    n.steps[:, s] = np.minimum(n.steps[:, s] + max(dlt, 0), n.switched[s])
                     yield n
             for l in range(L):
                 if st.switched[s]:

@@ -18,7 +18,7 @@ from ..network.io import read_network
 from ..optimize.engine import LevelCase, PlanResult, optimise
 from ..optimize.levers import BankSite, Levers, Limits, Objective, Options
 from .economics import Economics, capital_recovery_factor, evaluate
-from .spec import StudySpec, read_study
+from .spec import StudySpec, check_buses, read_study
 
 
 def scaled_network(net, p_scale=1.0, q_scale=1.0, bus_scale=None):
@@ -61,12 +61,6 @@ def candidate_sites(net, spec: StudySpec) -> list:
         has_load = np.abs(c.s_load_p + c.s_load_i + c.s_load_z) > 0
         buses = [int(b) for b in c.bus_ids[(c.kind == PQ) & c.alive & has_load]]
     else:
-        known = set(int(b) for b in net.buses["bus"])
-        for b in bk.candidates:
-            if b not in known:
-                from ..errors import InputError
-                raise InputError(f"bus {b} is not in the network {spec.network_path.name}",
-                                 file=spec.path.name, field="banks.candidates")
         buses = list(bk.candidates)
     buses += [b for b in bk.overrides if b not in buses]
     sites = []
@@ -145,6 +139,7 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
     """
     say = progress or (lambda text: None)
     net = read_network(spec.network_path)
+    check_buses(spec, net)
     names_by_bus = {int(b): str(n).strip() for b, n in zip(net.buses["bus"], net.buses["name"])}
     econ = _economics(spec)
     weights, objective = _objective_weights(spec, econ)

@@ -155,6 +155,39 @@ def _band(r: _Reader, key, value):
     return (float(value[0]), float(value[1]))
 
 
+def _kinds(r: _Reader, kinds):
+    if not kinds or any(k not in ("fixed", "switched") for k in kinds):
+        raise r.error("kinds", f"must list \"fixed\" and/or \"switched\", got {kinds!r}")
+    return kinds
+
+
+def check_buses(spec: "StudySpec", net) -> None:
+    """Every bus the study names must be in the network (generator ranges at generator buses)."""
+    known = set(int(b) for b in net.buses["bus"])
+    gens = set(int(b) for b in net.generators.loc[net.generators["in_service"].astype(bool), "bus"])
+    where = spec.network_path.name
+
+    def bad(key, bus, what="is not in the network"):
+        return InputError(f"bus {bus} {what} {where}", file=spec.path.name, field=key)
+    for b in spec.bus_limits:
+        if b not in known:
+            raise bad(f"limits.buses.{b}", b)
+    for i, lv in enumerate(spec.levels):
+        for b in lv.bus_scale:
+            if b not in known:
+                raise bad(f"levels[{i}].bus_scale.{b}", b)
+    if spec.banks.candidates != "all-pq":
+        for b in spec.banks.candidates:
+            if b not in known:
+                raise bad("banks.candidates", b)
+    for i, b in enumerate(spec.banks.overrides):
+        if b not in known:
+            raise bad(f"banks.site[{i}].bus", b)
+    for b in (spec.gen_range or {}):
+        if b != "*" and b not in gens:
+            raise bad(f"generators.buses.{b}", b, "has no generator in service in")
+
+
 def _bus_key(r: _Reader, key):
     try:
         return int(key)
@@ -238,8 +271,14 @@ def read_study(path) -> StudySpec:
                           why="must be a positive number"),
             q_scale=r.get("q_scale", float, scale if scale is not None else 1.0, check=_positive,
                           why="must be a positive number"),
-            v_min_pu=r.get("v_min_pu", float), v_max_pu=r.get("v_max_pu", float),
+            v_min_pu=r.get("v_min_pu", float, check=lambda v: 0.5 <= v <= 1.2, why="must be 0.5-1.2 pu"),
+            v_max_pu=r.get("v_max_pu", float, check=lambda v: 0.8 <= v <= 1.5, why="must be 0.8-1.5 pu"),
         )
+        lo = lv.v_min_pu if lv.v_min_pu is not None else spec.v_min_pu
+        hi = lv.v_max_pu if lv.v_max_pu is not None else spec.v_max_pu
+        if lo >= hi:
+            raise r.error("v_min_pu" if lv.v_min_pu is not None else "v_max_pu",
+                          f"the level's band {lo:g}-{hi:g} pu is empty (low must be below high)")
         bs = r.sub("bus_scale")
         for k, v in bs.table.items():
             if isinstance(v, bool) or not isinstance(v, (int, float)) or v <= 0:
@@ -256,9 +295,7 @@ def read_study(path) -> StudySpec:
     bk = top.sub("banks")
     unit = bk.get("unit_mvar", float, 0.3, check=_positive, why="must be a positive number")
     max_units = bk.get("max_units", int, 4, check=lambda v: 1 <= v <= 1000, why="must be 1-1000")
-    kinds = bk.get("kinds", list, ["fixed", "switched"])
-    if not kinds or any(k not in ("fixed", "switched") for k in kinds):
-        raise bk.error("kinds", f"must list \"fixed\" and/or \"switched\", got {kinds!r}")
+    kinds = _kinds(bk, bk.get("kinds", list, ["fixed", "switched"]))
     cand = bk.get("candidates", None, [])
     if cand == "all-pq":
         cand_list = "all-pq"
@@ -272,7 +309,7 @@ def read_study(path) -> StudySpec:
         b = r.get("bus", int, required=True)
         overrides[b] = SiteSpec(b, r.get("unit_mvar", float, unit, check=_positive, why="must be a positive number"),
                                 r.get("max_units", int, max_units, check=lambda v: 1 <= v <= 1000, why="must be 1-1000"),
-                                tuple(r.get("kinds", list, kinds)))
+                                tuple(_kinds(r, r.get("kinds", list, kinds))))
         r.finish()
     costs = bk.sub("costs")
     spec.banks = BankSpec(
