@@ -7,6 +7,9 @@ iteration.
 
 Unknowns are ``[angle at PV and PQ buses, |V| at PQ buses]``; equations are
 ``[P mismatch at PV and PQ buses, Q mismatch at PQ buses]``.
+
+The same fixed pattern lets :class:`NewtonLinearSolver` compute a fill-reducing ordering once
+(at the first factorisation) and fill later Jacobians directly in that order.
 """
 from __future__ import annotations
 
@@ -45,6 +48,10 @@ def bus_derivatives(y: sp.csr_matrix, v: np.ndarray, diag_pos: np.ndarray, rows:
 LU_OPTIONS = dict(permc_spec="MMD_AT_PLUS_A", options=dict(SymmetricMode=True))
 
 
+# for a matrix already in a fill-reducing order: no ordering work, same pivoting rule
+_LU_ORDERED = dict(permc_spec="NATURAL", options=dict(SymmetricMode=True))
+
+
 def factorize(jac: sp.csc_matrix):
     """Sparse LU (SuperLU) of a Jacobian with the ordering used by the load flow."""
     return spla.splu(jac, **LU_OPTIONS)
@@ -77,16 +84,65 @@ class JacobianPattern:
             pieces_r.append(row_map[self.rows[m]])
             pieces_c.append(col_map[cols[m]])
             pieces_src.append(k[m] + offset * nnz)
-        r = np.concatenate(pieces_r)
-        c = np.concatenate(pieces_c)
-        src = np.concatenate(pieces_src)
-        order = np.lexsort((r, c))
-        self.indices = r[order].astype(np.int32)
-        self.indptr = np.concatenate([[0], np.cumsum(np.bincount(c, minlength=self.size))]).astype(np.int32)
-        self.src = src[order]
+        self.indices, self.indptr, self.src = _csc_structure(
+            np.concatenate(pieces_r), np.concatenate(pieces_c), np.concatenate(pieces_src), self.size)
 
     def matrix(self, v: np.ndarray, dload_dvm: np.ndarray | None = None) -> sp.csc_matrix:
         """The Jacobian at voltage ``v`` (complex, all buses)."""
         d_va, d_vm = bus_derivatives(self.y, v, self.diag_pos, self.rows, dload_dvm)
         stacked = np.concatenate([d_va.real, d_vm.real, d_va.imag, d_vm.imag])
         return sp.csc_matrix((stacked[self.src], self.indices, self.indptr), shape=(self.size, self.size))
+
+    def permuted(self, order: np.ndarray) -> "JacobianPattern":
+        """The same pattern with unknowns and equations both taken in ``order``.
+
+        ``matrix`` of the result is ``J[order][:, order]`` of this pattern's ``J``, filled by
+        the same single gather.
+        """
+        new = object.__new__(JacobianPattern)
+        new.__dict__.update(self.__dict__)
+        inv = np.empty(self.size, np.int64)
+        inv[order] = np.arange(self.size)
+        cols = np.repeat(np.arange(self.size), np.diff(self.indptr))
+        new.indices, new.indptr, new.src = _csc_structure(inv[self.indices], inv[cols], self.src, self.size)
+        return new
+
+
+def _csc_structure(r, c, src, size):
+    """(indices, indptr, src) of distinct entries ``(r, c)`` in CSC order, rows sorted.
+
+    scipy's compiled COO-to-CSC conversion does the sorting (several times faster than a
+    lexsort); the data carried through it is ``src + 1``, so no entry is an explicit zero.
+    """
+    m = sp.csc_matrix((src + 1, (r, c)), shape=(size, size))
+    m.sort_indices()
+    if m.nnz != len(src):
+        raise ValueError("Jacobian pattern has repeated entries")
+    return m.indices.astype(np.int32), m.indptr.astype(np.int32), m.data - 1
+
+
+class NewtonLinearSolver:
+    """Solves ``J(v) x = b`` for successive voltages on one Jacobian pattern.
+
+    The first call orders and factorises as :func:`factorize` does; later calls reuse that
+    fill-reducing ordering by filling the Jacobian directly in permuted order, so SuperLU
+    skips the ordering step (the pattern is fixed, only the values change). Raises
+    ``RuntimeError`` for a singular Jacobian, as ``splu`` does.
+    """
+
+    def __init__(self, pattern: JacobianPattern):
+        self.pattern = pattern
+        self.order = None
+        self._ordered = None
+
+    def solve(self, v: np.ndarray, dload_dvm: np.ndarray | None, rhs: np.ndarray) -> np.ndarray:
+        if self.order is None:
+            lu = factorize(self.pattern.matrix(v, dload_dvm))
+            self.order = np.argsort(lu.perm_c)     # old index at each new position
+            return lu.solve(rhs)
+        if self._ordered is None:                 # built on second use: many rounds need one LU only
+            self._ordered = self.pattern.permuted(self.order)
+        lu = spla.splu(self._ordered.matrix(v, dload_dvm), **_LU_ORDERED)
+        x = np.empty_like(rhs)
+        x[self.order] = lu.solve(rhs[self.order])
+        return x

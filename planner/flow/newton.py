@@ -28,7 +28,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, compile_network
-from .jacobian import JacobianPattern, factorize
+from .jacobian import JacobianPattern, NewtonLinearSolver
 from .result import FlowResult, STATUS, build_result
 
 LOW_VOLTAGE_SOLUTION_PU = 0.5     # below this a "converged" point is a low-voltage solution
@@ -201,7 +201,7 @@ def _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history, early_check=N
     pv = np.flatnonzero((kind == PV) & alive)
     pq = np.flatnonzero((kind == PQ) & alive)
     pvpq = np.concatenate([pv, pq])
-    pattern = JacobianPattern(y, pvpq, pq)
+    system = NewtonLinearSolver(JacobianPattern(y, pvpq, pq))
     na = len(pvpq)
 
     def residual(vv):
@@ -226,10 +226,8 @@ def _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history, early_check=N
             early_check = None
         if iters >= max_iter:
             return v, iters, 1, f"no convergence within {max_iter} iterations"
-        J = pattern.matrix(v, dload(vm))
         try:
-            lu = factorize(J)
-            dx = -lu.solve(F)
+            dx = -system.solve(v, dload(vm), F)
         except RuntimeError:
             return v, iters, 3, "the Jacobian is singular (voltage collapse or an unsupported island)"
         if not np.all(np.isfinite(dx)):
