@@ -10,7 +10,7 @@ the time of one sparse LU factorisation of the solver's own Jacobian at the solu
 solver's own ordering (planner.flow.jacobian.factorize), the ratio solve / (iterations x one
 LU), the same LU with scipy's default splu options for comparison, and whether a flat start
 converged (a DC start is tried when it did not). Finally the import time of the solver module
-in a fresh interpreter.
+in a fresh interpreter, and the import time of a small ``planner flow`` run per package.
 """
 from __future__ import annotations
 
@@ -98,6 +98,20 @@ def run(sizes, repeat=3):
               f"{ratio:>8.2f}{t_lu_default:>12.4f}  {flat:<12}{t_compile:>10.3f}", flush=True)
 
 
+HEAVY = ("pyomo", "matplotlib", "highspy")   # must not be imported by ``planner flow``
+
+
+def import_breakdown(args):
+    """Seconds of import time per top-level package (sum of -X importtime self times)."""
+    out = subprocess.run([sys.executable, "-X", "importtime", *args], capture_output=True, text=True,
+                         cwd=Path(__file__).resolve().parents[2]).stderr
+    per: dict[str, float] = {}
+    for m in re.finditer(r"^import time:\s+(\d+) \|\s+\d+ \|\s*([\w.]+)\s*$", out, re.M):
+        root = m.group(2).split(".")[0]
+        per[root] = per.get(root, 0.0) + int(m.group(1)) / 1e6
+    return per
+
+
 def import_times():
     out = subprocess.run([sys.executable, "-X", "importtime", "-c", "import planner.flow.newton"],
                          capture_output=True, text=True, check=True).stderr
@@ -115,6 +129,15 @@ def import_times():
             print(f"python -c 'import {mod}' wall time (best of 3, includes interpreter start): {best:.3f} s")
         else:
             print(f"python -c 'import {mod}' failed: {r.stderr.strip().splitlines()[-1]}")
+    # what a small `planner flow` run pays for, package by package (best of 3 per package)
+    runs = [import_breakdown(["-m", "planner", "flow", str(DATA / "ieee14cdf.txt"), "-q"]) for _ in range(3)]
+    names = sorted(set().union(*runs), key=lambda k: -min(r.get(k, 0.0) for r in runs))
+    best = {k: min(r.get(k, 0.0) for r in runs) for k in names}
+    top = [k for k in names if best[k] >= 0.005]
+    print("planner flow ieee14 imports (s, best of 3): " + ", ".join(f"{k} {best[k]:.3f}" for k in top)
+          + f", all others {sum(best[k] for k in names if k not in top):.3f}")
+    heavy = [k for k in HEAVY if k in names]
+    print("planner flow imports " + (", ".join(heavy) if heavy else f"none of {', '.join(HEAVY)}"))
 
 
 def main(argv=None):
