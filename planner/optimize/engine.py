@@ -18,7 +18,7 @@ from ..flow.result import FlowResult
 from ..network.compile import PQ, SLACK, compile_network, replace
 from .levers import Levers, Limits, Objective, Options
 from .milp import LevelData, StepSpec, solve_step
-from .sensitivity import linearise
+from .sensitivity import flow_magnitude_slopes, linearise
 
 
 @dataclass
@@ -336,8 +336,17 @@ class _Problem:
         else:
             q_sel = np.zeros(0, np.int64)
         cur_units = st.fixed + st.steps[l]
+        s_rows = s0 = ds = s_hi = None
+        if self.limits.ratings:
+            rated = np.flatnonzero(c.rating > 0)
+            if len(rated):
+                mag, slope = flow_magnitude_slopes(fr, sens, rated)
+                reach = np.abs(slope) @ span_units if slope.shape[1] else np.zeros(len(rated))
+                rating = c.rating[rated] / c.base_mva
+                near = mag + reach >= 0.95 * rating
+                s_rows, s0, ds, s_hi = rated[near], mag[near], slope[near], rating[near]
         return LevelData(
-            weight=float(self.loss_weights()[l]), d=d, R=R, const=const,
+            s_rows=s_rows, s0=s0, ds=ds, s_hi=s_hi,            weight=float(self.loss_weights()[l]), d=d, R=R, const=const,
             v_rows=v_rows, v0=vm[v_rows], dv=sens.dvm[v_rows], v_lo=vmin[v_rows], v_hi=vmax[v_rows],
             q_rows=gb[q_sel], q0=sens.q0[q_sel], dq=sens.dq[q_sel], q_lo=c.q_min[gb][q_sel], q_hi=c.q_max[gb][q_sel],
             cur_units=cur_units.astype(float), cur_exist=st.exist[l].astype(int),

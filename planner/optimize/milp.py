@@ -39,6 +39,10 @@ class LevelData:
     cur_units: np.ndarray         # (S,) units in service now at each site (fixed + switched on; fractional for continuous sites)
     cur_exist: np.ndarray         # (E,) steps on now of each existing bank
     v_now: np.ndarray             # (G,) present voltage at each setpoint lever
+    s_rows: np.ndarray = None     # branch rows with a rating that can bind
+    s0: np.ndarray = None         # their |S| now, pu
+    ds: np.ndarray = None         # (rows, m)
+    s_hi: np.ndarray = None       # their ratings, pu
 
 
 @dataclass
@@ -192,8 +196,13 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
                                   >= float(lev.q_lo[i]) - b.sq_lo[i])
         b.q_hi_c = pyo.Constraint(QR, rule=lambda _, i: float(lev.q0[i]) + _lin(lev.dq[i], du)
                                   <= float(lev.q_hi[i]) + b.sq_hi[i])
+        SR = range(0 if lev.s_rows is None else len(lev.s_rows))
+        b.ss_hi = pyo.Var(SR, within=pyo.NonNegativeReals)
+        b.s_hi_c = pyo.Constraint(SR, rule=lambda _, i: float(lev.s0[i]) + _lin(lev.ds[i], du)
+                                  <= float(lev.s_hi[i]) + b.ss_hi[i])
         viol = (pyo.quicksum(b.sv_lo[i] + b.sv_hi[i] for i in VR)
-                + pyo.quicksum(b.sq_lo[i] + b.sq_hi[i] for i in QR))
+                + pyo.quicksum(b.sq_lo[i] + b.sq_hi[i] for i in QR)
+                + pyo.quicksum(b.ss_hi[i] for i in SR))
         obj_terms.append(lev.weight / scale * b.loss + spec.penalty / scale * viol)
         tie.append(pyo.quicksum(m.k[l, s] for s in S))
     obj_terms.append(spec.tie_break * (pyo.quicksum(m.nf[s] + 2 * m.ns[s] for s in S) + pyo.quicksum(tie)))

@@ -48,6 +48,7 @@ class Sensitivity:
     di: np.ndarray             # (nb, m) complex
     r: np.ndarray              # (nb,) series resistance seen by the current (pu)
     losses0: float             # pu, sum r |i0|^2
+    dv: np.ndarray = None      # (n, m) complex bus voltage slopes
 
 
 def series_current_parts(c):
@@ -138,7 +139,34 @@ def linearise(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
         di[xfmr_branches, cols] += ys[xfmr_branches] * (v[c.f[xfmr_branches]] * dk_f
                                                         - v[c.t[xfmr_branches]] * dk_t)
     return Sensitivity(vm0=vm, dvm=dvm, gen_buses=gen_buses, q0=q0, dq=dq, i0=i0, di=di, r=r,
-                       losses0=float(np.sum(r * np.abs(i0) ** 2)))
+                       losses0=float(np.sum(r * np.abs(i0) ** 2)), dv=dv)
+
+
+def flow_magnitude_slopes(flow: FlowResult, sens: Sensitivity, branches: np.ndarray):
+    """|S| at the more loaded end of each given branch (pu) and its slope per lever.
+
+    Uses the bus-voltage slopes at fixed branch admittance (a ratio lever's own effect on the
+    admittance is left out: the trust region and the AC check cover it).
+    """
+    c = flow.compiled
+    v = flow.v
+    yff, yft, ytf, ytt = c.branch_admittances()
+    f, t = c.f[branches], c.t[branches]
+    vf, vt = v[f], v[t]
+    i_f = yff[branches] * vf + yft[branches] * vt
+    i_t = ytf[branches] * vf + ytt[branches] * vt
+    s_f, s_t = vf * np.conj(i_f), vt * np.conj(i_t)
+    use_from = np.abs(s_f) >= np.abs(s_t)
+    dvf, dvt = sens.dv[f], sens.dv[t]
+    di_f = yff[branches, None] * dvf + yft[branches, None] * dvt
+    di_t = ytf[branches, None] * dvf + ytt[branches, None] * dvt
+    ds_f = dvf * np.conj(i_f)[:, None] + vf[:, None] * np.conj(di_f)
+    ds_t = dvt * np.conj(i_t)[:, None] + vt[:, None] * np.conj(di_t)
+    s0 = np.where(use_from, s_f, s_t)
+    ds = np.where(use_from[:, None], ds_f, ds_t)
+    mag = np.abs(s0)
+    slope = np.real(np.conj(s0)[:, None] * ds) / np.where(mag > 0, mag, 1.0)[:, None]
+    return mag, slope
 
 
 def _tap_factor_derivative(c, br):
