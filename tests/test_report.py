@@ -411,7 +411,7 @@ def test_browser_renders_report(chromium, tmp_path):
     assert dom.returncode == 0, dom.stderr[-2000:]
     html = dom.stdout
     assert html.count("<svg") == 6
-    assert "Voltage profile, peak" in html and "Optimiser convergence, A: three fixed banks" in html
+    assert "Bus voltages at the peak level" in html and "Optimiser convergence, A: three fixed banks" in html
     assert "0.2027" in html and "EUR" in html
     assert html.count('class="series"') == 3 * 3 + 2 * 2   # profile lines + convergence lines
 

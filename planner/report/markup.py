@@ -103,7 +103,7 @@ def html_table(table: Table, *, show: Sequence[str] | None = None, rows: Sequenc
         order = {k: i for i, k in enumerate(show)}
         cols.sort(key=lambda c: order[c[0]])
     body_rows = table.rows if rows is None else rows
-    out = [f'<table class="{esc(css_class)}" data-table="{esc(table.name)}">']
+    out = [f'<div class="tablewrap"><table class="{esc(css_class)}" data-table="{esc(table.name)}">']
     if caption:
         out.append(f"<caption>{esc(caption)}</caption>")
     out.append("<thead><tr>" + "".join(
@@ -120,7 +120,7 @@ def html_table(table: Table, *, show: Sequence[str] | None = None, rows: Sequenc
             align = "num" if kind not in ("text", "bool") else "txt"
             cells.append(f'<td class="{align}">{esc(text)}</td>')
         out.append(tr + "".join(cells) + "</tr>")
-    out.append("</tbody></table>")
+    out.append("</tbody></table></div>")
     return "".join(out)
 
 
@@ -175,23 +175,31 @@ main { max-width: 1040px; margin: 0 auto; padding: 24px 28px 48px; }
 header.report { border-bottom: 3px solid #0072B2; margin-bottom: 18px; padding-bottom: 10px; }
 h1 { font-size: 26px; margin: 0 0 6px; }
 h2 { font-size: 21px; margin: 34px 0 10px; padding-bottom: 4px; border-bottom: 1px solid #c8c8c8; }
-h3 { font-size: 17px; margin: 22px 0 8px; }
+h3 { font-size: 17px; margin: 26px 0 8px; }
+h3.alt { border-top: 2px solid #9cc3e0; padding-top: 10px; margin-top: 30px; }
 p.meta { color: #444; margin: 2px 0; font-size: 14px; }
 .summary { border: 1px solid #9cc3e0; background: #f3f8fc; padding: 10px 16px; margin: 14px 0; }
 .summary ul { margin: 6px 0; padding-left: 20px; }
 .warn { border-left: 5px solid #D55E00; background: #fdf1ea; padding: 8px 12px; margin: 10px 0; }
+.good { border-left: 5px solid #009E73; background: #eef7f2; padding: 8px 12px; margin: 10px 0; }
+.warn ul { margin: 4px 0 2px; padding-left: 20px; }
 .ok { color: #1b6e3a; font-weight: 600; }
 .bad { color: #b2182b; font-weight: 600; }
+/* Tables are laid out to fit the content width (no horizontal scrolling): text cells wrap,
+   numbers do not; the wrapper only scrolls if a table is still too wide on a narrow screen. */
+.tablewrap { max-width: 100%; overflow-x: auto; }
 table.data { border-collapse: collapse; margin: 8px 0 16px; font-size: 14px;
-  font-variant-numeric: tabular-nums; }
+  font-variant-numeric: tabular-nums; max-width: 100%; }
+table.data.compact { font-size: 13px; }
 table.data caption { text-align: left; font-weight: 600; padding: 4px 0; }
-table.data th, table.data td { border: 1px solid #c8c8c8; padding: 4px 9px; }
+table.data th, table.data td { border: 1px solid #c8c8c8; padding: 4px 8px; vertical-align: top; }
+table.data.compact th, table.data.compact td { padding: 3px 6px; }
 table.data th { background: #eef1f4; font-weight: 600; }
 table.data td.num, table.data th.num { text-align: right; }
-table.data td { white-space: nowrap; }
-table.data.wide td:first-child { white-space: normal; min-width: 12em; }
+table.data td.num { white-space: nowrap; }
 table.data td.txt, table.data th.txt { text-align: left; }
-table.data tr.unverified td { color: #777; font-style: italic; }
+table.data.wide td:first-child { white-space: normal; min-width: 12em; }
+table.data tr.unverified td { color: #666; font-style: italic; }
 table.data tr.best td { background: #eef7ee; }
 dl.criteria { display: grid; grid-template-columns: max-content auto; gap: 2px 16px; }
 dl.criteria dt { font-weight: 600; }
@@ -200,16 +208,21 @@ figure { margin: 10px 0 20px; }
 figure svg { display: block; }
 figcaption { font-size: 13px; color: #444; margin-top: 4px; }
 .note { font-size: 13px; color: #444; }
+p.how { font-size: 13px; color: #444; margin: 4px 0 10px; }
 footer { margin-top: 40px; font-size: 12px; color: #555; border-top: 1px solid #c8c8c8;
   padding-top: 8px; }
 @page { size: A4; margin: 14mm 12mm; }
 @media print {
-  body { font-size: 10.5pt; }
+  body { font-size: 10pt; }
   main { max-width: none; padding: 0; }
   h2.section { break-before: page; page-break-before: always; }
-  figure, table.data tr, .summary, .warn { break-inside: avoid; page-break-inside: avoid; }
-  h2, h3 { break-after: avoid; page-break-after: avoid; }
-  .summary, .warn, table.data th, table.data tr.best td { -webkit-print-color-adjust: exact;
+  table.data { font-size: 8.5pt; }
+  table.data.compact { font-size: 8pt; }
+  table.data th, table.data td, table.data.compact th, table.data.compact td { padding: 2px 5px; }
+  .tablewrap { overflow: visible; }
+  figure, table.data tr, .summary, .warn, .good { break-inside: avoid; page-break-inside: avoid; }
+  h2, h3, table.data caption { break-after: avoid; page-break-after: avoid; }
+  .summary, .warn, .good, table.data th, table.data tr.best td { -webkit-print-color-adjust: exact;
     print-color-adjust: exact; }
   a { color: inherit; text-decoration: none; }
 }

@@ -46,10 +46,18 @@ Input schema (a JSON-like dict; units in the key names; ``?`` marks optional key
           "taps"?: {level: [{"branch", "ratio"}]},
           "levels": {level: {"verified": bool, "losses_mw": float | None,   # AC figure
                              "predicted_mw"?: float,                         # linear model
+                             "converged"?: bool,                             # AC load flow solved
                              "v_min_pu"?, "v_min_bus"?, "v_max_pu"?, "v_max_bus"?,
-                             "violations"?: [...], "profile"?: [...]}},
+                             "violations"?: [...], "other_violations"?: [str, ...],
+                             "profile"?: [...]}},
+          "message"?: str,             # the optimiser's verdict in one line
+          "remaining_violations"?: [str, ...],   # limits still broken, one line each (when
+                                       # absent, built from the levels' violation lists)
+          "status"?: str, "ac_flows"?: int, "milp_solves"?: int, "seconds"?: float,
+          "existing_steps"?: {level: [{"shunt_id", "bus", "steps"}]},  # existing switched banks
           "convergence"?: [{"iteration": int, "predicted_mw": float | None, "ac_mw": float | None,
-                            "trust"?: float, "accepted"?: bool}],
+                            "trust"?: float, "accepted"?: bool}],   # losses as the optimiser
+                                       # weighs them: hour-weighted mean over the levels
           "economics"?: planner.study.economics.EconomicResult.as_dict(),
         }, ...
       ],
@@ -75,6 +83,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from pathlib import Path
 from typing import Any
 
@@ -195,6 +204,39 @@ def _names_by_bus(data: dict) -> dict:
     return out
 
 
+def _other(r: dict) -> list:
+    o = r.get("other_violations")
+    return list(o) if isinstance(o, (list, tuple)) else []
+
+
+def _level_limits_broken(r: dict) -> int | None:
+    """Limits broken at one level by the AC load flow, None when it did not solve."""
+    if r.get("converged") is False:
+        return None
+    return len(r.get("violations") or []) + len(_other(r))
+
+
+def _remaining_lines(a: dict, names: list[str], nb: dict) -> list[str]:
+    """The alternative's broken limits as text lines (given, or built from the level data)."""
+    if isinstance(a.get("remaining_violations"), (list, tuple)):
+        return [str(x) for x in a["remaining_violations"]]
+    out = []
+    for n in names:
+        r = a["levels"][n]
+        if r.get("converged") is False:
+            continue
+        for v in r.get("violations") or []:
+            vp, lim = _f(v.get("v_pu")), _f(v.get("limit"))
+            txt = f"{n}: voltage at bus {_bus_label(v.get('bus'), nb)}"
+            if vp is not None:
+                txt += f": {vp:.4f} pu"
+            if lim is not None:
+                txt += f" against limit {lim:.4f} pu"
+            out.append(txt)
+        out += [str(x) if str(x).startswith(f"{n}:") else f"{n}: {x}" for x in _other(r)]
+    return out
+
+
 def _build(data: dict) -> dict[str, Table]:
     names = _check(data)
     hours = {lv["name"]: float(lv["hours"]) for lv in data["levels"]}
@@ -240,6 +282,7 @@ def _build(data: dict) -> dict[str, Table]:
         ("converged", "Converged", "bool")], base_rows)
 
     banks, setp, taps, res, conv, eco, eco_sum, comp = [], [], [], [], [], [], [], []
+    remaining, runs, existing = [], [], []
     base_energy = sum(r["loss_energy_mwh"] for r in base_rows)
     comp.append({"alternative": "base case", "verified": True, "banks": 0, "installed_mvar": 0.0,
                  "capital_cost": 0.0, "loss_energy_mwh": base_energy, "energy_saved_mwh": 0.0,
@@ -282,20 +325,31 @@ def _build(data: dict) -> dict[str, Table]:
                         "v_min_bus": _bus_label(r.get("v_min_bus"), nb),
                         "v_max_pu": _f(r.get("v_max_pu")),
                         "v_max_bus": _bus_label(r.get("v_max_bus"), nb),
-                        "violations": len(r.get("violations") or [])})
+                        "ac_converged": r.get("converged"),
+                        "limits_broken": _level_limits_broken(r)})
             if ac is not None:
                 alt_energy += ac * hours[n]
             if r.get("v_min_pu") is not None:
                 vmins.append(float(r["v_min_pu"]))
             if r.get("v_max_pu") is not None:
                 vmaxs.append(float(r["v_max_pu"]))
-            nviol += len(r.get("violations") or [])
             for v in r.get("violations") or []:
                 viol.append({"case": an, "level": n, "bus": v.get("bus"), "name": v.get("name", ""),
                              "v_pu": _f(v.get("v_pu")), "limit_pu": _f(v.get("limit"))})
             for p in r.get("profile") or []:
                 prof.append({"case": an, "level": n, "bus": p["bus"], "name": p.get("name", ""),
                              "v_pu": _f(p.get("v_pu"))})
+        lines = _remaining_lines(a, names, nb)
+        nviol = len(lines)
+        remaining += [{"alternative": an, "violation": t} for t in lines]
+        runs.append({"alternative": an, "verified": ok, "status": a.get("status"),
+                     "ac_flows": a.get("ac_flows"), "milp_solves": a.get("milp_solves"),
+                     "seconds": _f(a.get("seconds")), "limits_broken": nviol,
+                     "message": a.get("message")})
+        for n, lst in (a.get("existing_steps") or {}).items():
+            for x in lst or []:
+                existing.append({"alternative": an, "level": n, "bank": x.get("shunt_id"),
+                                 "bus": x.get("bus"), "steps": x.get("steps")})
         for c in a.get("convergence") or []:
             conv.append({"alternative": an, "iteration": c.get("iteration"),
                          "predicted_mw": _f(c.get("predicted_mw")), "ac_mw": _f(c.get("ac_mw")),
@@ -322,7 +376,7 @@ def _build(data: dict) -> dict[str, Table]:
                                               if ok and base_energy else None),
                      "worst_v_min_pu": min(vmins) if ok and vmins else None,
                      "worst_v_max_pu": max(vmaxs) if ok and vmaxs else None,
-                     "violations": nviol if ok else None,
+                     "violations": nviol,      # shown for every plan: why it is not a result
                      "annual_saving": _f(e.get("annual_saving")) if ok and e else None,
                      "payback_years": _f(e.get("payback_years")) if ok and e else None,
                      "npv": _f(e.get("npv")) if ok and e else None,
@@ -346,7 +400,20 @@ def _build(data: dict) -> dict[str, Table]:
         ("reduction_mw", "Reduction (MW)", "mw"), ("reduction_pct", "Reduction", "pct"),
         ("v_min_pu", "Lowest V (pu)", "pu"), ("v_min_bus", "at bus", "text"),
         ("v_max_pu", "Highest V (pu)", "pu"), ("v_max_bus", "at bus", "text"),
-        ("violations", "Buses outside band", "int")], res)
+        ("ac_converged", "AC load flow solved", "bool"),
+        ("limits_broken", "Limits broken", "int")], res)
+    T["remaining_violations"] = Table("remaining_violations", [
+        ("alternative", "Alternative", "text"), ("violation", "Limit still broken", "text")],
+        remaining)
+    T["optimiser_runs"] = Table("optimiser_runs", [
+        ("alternative", "Alternative", "text"), ("verified", "AC verified", "bool"),
+        ("status", "Optimiser status", "text"), ("ac_flows", "AC load flows", "int"),
+        ("milp_solves", "Mixed-integer solves", "int"), ("seconds", "Run time (s)", "years"),
+        ("limits_broken", "Limits broken", "int"), ("message", "Verdict", "text")], runs)
+    T["existing_banks"] = Table("existing_banks", [
+        ("alternative", "Alternative", "text"), ("level", "Load level", "text"),
+        ("bank", "Bank", "text"), ("bus", "Bus", "text"), ("steps", "Steps in service", "int")],
+        existing)
     T["violations"] = Table("violations", [
         ("case", "Case", "text"), ("level", "Load level", "text"), ("bus", "Bus", "text"),
         ("name", "Bus name", "text"), ("v_pu", "V (pu)", "pu"), ("limit_pu", "Limit (pu)", "pu")], viol)
@@ -375,7 +442,7 @@ def _build(data: dict) -> dict[str, Table]:
         ("capital_cost", "Capital", "money"), ("loss_energy_mwh", "Loss energy (MWh/yr)", "mwh"),
         ("energy_saved_mwh", "Saved (MWh/yr)", "mwh"), ("energy_reduction_pct", "Reduction", "pct"),
         ("worst_v_min_pu", "Lowest V (pu)", "pu"), ("worst_v_max_pu", "Highest V (pu)", "pu"),
-        ("violations", "Band violations", "int"), ("annual_saving", "Saving (/yr)", "money"),
+        ("violations", "Limits broken", "int"), ("annual_saving", "Saving (/yr)", "money"),
         ("payback_years", "Payback (years)", "years"), ("npv", "NPV", "money"),
         ("bcr", "Benefit/cost", "ratio")], comp)
     return T
@@ -472,14 +539,20 @@ def _profile_chart(data, names, level, verified_alts) -> str | None:
         series.append({"name": a["name"], "y": y, "color": svg.PALETTE[k % len(svg.PALETTE)],
                        "dash": svg.DASHES[(k + 1) % len(svg.DASHES)]})
     lo, hi = float(data["criteria"]["v_min_pu"]), float(data["criteria"]["v_max_pu"])
-    return svg.line_chart(series, title=f"Voltage profile, {level}", x_label="bus",
-                          y_label="voltage (pu)", x_categories=buses,
+    return svg.line_chart(series, title=f"Bus voltages at the {level} level",
+                          x_label="bus number (in network order)", y_label="voltage (pu)",
+                          x_categories=buses, height=400,
                           band=(lo, hi, f"planning band {lo:.3f} to {hi:.3f} pu"),
                           hlines=[(lo, f"min {lo:.3f} pu"), (hi, f"max {hi:.3f} pu")])
 
 
 _CRITERIA_LABELS = {"v_min_pu": "Lowest allowed bus voltage (pu)",
                     "v_max_pu": "Highest allowed bus voltage (pu)"}
+
+
+def _criterion_label(key) -> str:
+    text = _CRITERIA_LABELS.get(key, str(key))
+    return text[:1].upper() + text[1:]
 
 
 def _transposed(name: str, rows: list[dict], cols: list[tuple], *, mwd: int, cur: str,
@@ -496,6 +569,63 @@ def _transposed(name: str, rows: list[dict], cols: list[tuple], *, mwd: int, cur
                  out)
 
 
+def _v_at(v, bus) -> str:
+    """One cell for a voltage and where it is, e.g. ``0.9517 at 413 (Ravensholm North 11)``."""
+    if v is None:
+        return ""
+    return f"{fmt(v, 'pu')} at {bus}" if bus not in (None, "") else fmt(v, "pu")
+
+
+def _base_display(T: dict) -> Table:
+    rows = [dict(r, v_low=_v_at(r["v_min_pu"], r["v_min_bus"]),
+                 v_high=_v_at(r["v_max_pu"], r["v_max_bus"])) for r in T["base_case"].rows]
+    return Table("base_case", [
+        ("level", "Load level", "text"), ("losses_mw", "Losses (MW)", "mw"),
+        ("loss_energy_mwh", "Loss energy (MWh/yr)", "mwh"),
+        ("v_low", "Lowest voltage (pu) at bus", "text"),
+        ("v_high", "Highest voltage (pu) at bus", "text"),
+        ("violations", "Buses outside band", "int"), ("gens_at_limit", "Gens at Q limit", "int"),
+        ("converged", "AC solved", "bool")], rows)
+
+
+def _levels_display(rows: list[dict], mwd: int) -> Table:
+    """Per-level results of one alternative; unverified levels keep only the prediction and the
+    count of broken limits (a diagnosis, not a result)."""
+    out = []
+    for r in rows:
+        d = dict(r)
+        if r["verified"]:
+            red = "" if r["reduction_mw"] is None else fmt(r["reduction_mw"], "mw", mw_decimals=mwd)
+            if red and r["reduction_pct"] is not None:
+                red += f" ({fmt(r['reduction_pct'], 'pct')})"
+            d.update(reduction=red, v_low=_v_at(r["v_min_pu"], r["v_min_bus"]),
+                     v_high=_v_at(r["v_max_pu"], r["v_max_bus"]))
+        else:
+            d.update(losses_mw="not verified", reduction="", v_low="", v_high="")
+            if r.get("ac_converged") is False:
+                d["limits_broken"] = "AC not solved"
+        out.append(d)
+    return Table("alternative_levels", [
+        ("level", "Load level", "text"), ("verified", "AC verified", "bool"),
+        ("base_losses_mw", "Base losses (MW)", "mw"), ("losses_mw", "AC losses (MW)", "mw"),
+        ("predicted_mw", "Linear prediction (MW)", "mw"),
+        ("reduction", "Reduction MW (%)", "pre"),
+        ("v_low", "Lowest voltage (pu) at bus", "text"),
+        ("v_high", "Highest voltage (pu) at bus", "text"),
+        ("limits_broken", "Limits broken", "int")], out)
+
+
+def _pivot(name: str, rows: list[dict], keys: list[tuple], value: str, kind: str,
+           names: list[str]) -> Table:
+    """Long rows (one per item and level) as one row per item with a column per load level."""
+    items: dict[tuple, dict] = {}
+    for r in rows:
+        k = tuple(r.get(c[0]) for c in keys)
+        row = items.setdefault(k, {c[0]: r.get(c[0]) for c in keys})
+        row[f"lv_{r['level']}"] = r.get(value)
+    return Table(name, list(keys) + [(f"lv_{n}", n, kind) for n in names], list(items.values()))
+
+
 def _section(title: str, body: list[str], anchor: str) -> str:
     return (f'<section id="{esc(anchor)}"><h2 class="section">{esc(title)}</h2>'
             + "".join(body) + "</section>")
@@ -504,6 +634,39 @@ def _section(title: str, body: list[str], anchor: str) -> str:
 def _p(text: str, cls: str = "") -> str:
     c = f' class="{cls}"' if cls else ""
     return f"<p{c}>{esc(text)}</p>"
+
+
+def _how_line(run: dict) -> str:
+    """'How the optimiser got here' in one line, from the parts the data has."""
+    bits = []
+    if run.get("status"):
+        bits.append(str(run["status"]))
+    if run.get("ac_flows") is not None:
+        bits.append(f"{fmt(run['ac_flows'], 'int')} AC load flows")
+    if run.get("milp_solves") is not None:
+        bits.append(f"{fmt(run['milp_solves'], 'int')} mixed-integer (MILP) solves")
+    if run.get("seconds") is not None:
+        bits.append(f"{run['seconds']:.1f} s")
+    return ("How the optimiser got here: " + "; ".join(bits) + ".") if bits else ""
+
+
+def _sentence(text) -> str:
+    """First letter upper case, one full stop at the end (for verdict lines from the optimiser)."""
+    t = str(text).strip()
+    t = t[:1].upper() + t[1:]
+    return t if t.endswith((".", "!", "?")) else t + "."
+
+
+def _with_bus_names(line: str, nb: dict) -> str:
+    """``bus 452`` -> ``bus 452 (Cobbleston Mill 11)`` where the name is known and not given."""
+    def sub(m):
+        name = nb.get(m.group(1))
+        return f"bus {m.group(1)} ({name})" if name and name != m.group(1) else m.group(0)
+    return re.sub(r"\bbus (\w+)\b(?! \()", sub, line)
+
+
+def _plural(n: int, one: str, many: str) -> str:
+    return f"{n} {one if n == 1 else many}"
 
 
 def render_report(data: dict) -> str:
@@ -516,6 +679,14 @@ def render_report(data: dict) -> str:
     alts = data["alternatives"]
     verified = [a for a in alts if _alt_verified(a, names)]
     comp = {r["alternative"]: r for r in T["comparison"].rows}
+    runs = {r["alternative"]: r for r in T["optimiser_runs"].rows}
+    lines_by_alt: dict[str, list[str]] = {}
+    for r in T["remaining_violations"].rows:
+        lines_by_alt.setdefault(r["alternative"], []).append(r["violation"])
+    nb = _names_by_bus(data)
+    verified_names = {a["name"] for a in verified}
+    best = max((r for r in T["comparison"].rows if r["alternative"] in verified_names
+                and r["npv"] is not None), key=lambda r: r["npv"], default=None)
 
     head = [
         "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
@@ -528,29 +699,38 @@ def render_report(data: dict) -> str:
     for label, key in (("Network", "network"), ("Created", "created")):
         if data.get(key):
             hdr.append(f'<p class="meta">{label}: {esc(data[key])}</p>')
-    hdr.append(f'<p class="meta">Load levels: {esc(", ".join(names))}; alternatives studied: '
-               f"{len(alts)}, confirmed by AC load flow: {len(verified)}</p></header>")
+    hdr.append(f'<p class="meta">Load levels: {esc(", ".join(names))}. Alternatives studied: '
+               f"{len(alts)}; confirmed by AC load flow: {len(verified)}.</p></header>")
 
     # summary for a reader who stops here
     summ = ['<div class="summary"><strong>Summary</strong><ul>']
     base_c = comp["base case"]
     summ.append(f"<li>Base case: loss energy {esc(fmt(base_c['loss_energy_mwh'], 'mwh'))} MWh a year; "
                 f"lowest voltage {esc(fmt(base_c['worst_v_min_pu'], 'pu'))} pu; "
-                f"{base_c['violations']} bus voltages outside the planning band, counted over "
-                f"all load levels.</li>")
+                f"{_plural(base_c['violations'], 'bus voltage', 'bus voltages')} outside the "
+                f"planning band, counted over all load levels.</li>")
     for a in alts:
         c = comp[a["name"]]
         if not c["verified"]:
-            summ.append(f"<li>{esc(a['name'])}: <span class=\"bad\">not confirmed by AC load flow at "
-                        f"every level</span>; no result figures are given for it.</li>")
+            n = c["violations"]
+            why = (f"{_plural(n, 'limit is', 'limits are')} still broken (listed in its section)"
+                   if n else "the AC load flow did not confirm it")
+            summ.append(f"<li>{esc(a['name'])}: <span class=\"bad\">not confirmed by AC load flow "
+                        f"at every level</span>: {esc(why)}; no result figures are given for it."
+                        "</li>")
             continue
         bits = [f"loss energy down {esc(fmt(c['energy_saved_mwh'], 'mwh'))} MWh a year "
                 f"({esc(fmt(c['energy_reduction_pct'], 'pct'))})",
                 f"lowest voltage {esc(fmt(c['worst_v_min_pu'], 'pu'))} pu"]
+        if c["capital_cost"] is not None:
+            bits.append(f"capital {esc(fmt(c['capital_cost'], 'money', currency=cur))}")
         if c["npv"] is not None:
             bits.append(f"NPV {esc(fmt(c['npv'], 'money', currency=cur))}, payback "
                         f"{esc(fmt(c['payback_years'], 'years'))} years")
         summ.append(f"<li>{esc(a['name'])}: " + "; ".join(bits) + ".</li>")
+    if best is not None:
+        summ.append(f"<li><strong>Highest net present value among the AC-verified alternatives: "
+                    f"{esc(best['alternative'])}</strong>.</li>")
     summ.append("</ul></div>")
 
     sections = []
@@ -559,14 +739,27 @@ def render_report(data: dict) -> str:
     if data.get("question"):
         body.append(_p(data["question"]))
     body.append('<dl class="criteria">' + "".join(
-        f"<dt>{esc(_CRITERIA_LABELS.get(r['criterion'], r['criterion']))}</dt>"
+        f"<dt>{esc(_criterion_label(r['criterion']))}</dt>"
         f"<dd>{esc(r['value'])}</dd>" for r in T["criteria"].rows)
         + "</dl>")
     body.append("<h3>Load levels</h3>" + tab(T["levels"]))
     sections.append(_section("Study question and criteria", body, "question"))
 
-    # 2 base case
-    body = [tab(T["base_case"])]
+    # 2 comparison, early: it is the page a decision is made from
+    comp_cols = [c for c in T["comparison"].columns if c[0] != "alternative"]
+    body = [html_table(_transposed("comparison", T["comparison"].rows, comp_cols, mwd=mwd,
+                                   cur=cur), css_class="data wide")]
+    if best is not None:
+        body.append(_p(f"Highest net present value among the AC-verified alternatives: "
+                       f"{best['alternative']}."))
+    body.append(_p("Result figures (losses, voltages, money) are given only for plans confirmed by "
+                   "AC load flow at every level; for the others they are left blank. \"Limits "
+                   "broken\" counts, for every plan, the limits its AC load flows still break "
+                   "(for the base case: bus voltages outside the band).", "note"))
+    sections.append(_section("Comparison of alternatives", body, "comparison"))
+
+    # 3 base case
+    body = [tab(_base_display(T), css_class="data compact")]
     bv = [r for r in T["violations"].rows if r["case"] == "base case"]
     if bv:
         body.append(tab(T["violations"], rows=bv, show=["level", "bus", "name", "v_pu", "limit_pu"],
@@ -580,43 +773,65 @@ def render_report(data: dict) -> str:
                         caption="Generators held at a reactive limit, base case"))
     sections.append(_section("Base case", body, "base"))
 
-    # 3 alternatives
+    # 4 alternatives
     body = []
     if not alts:
         body.append(_p("No alternatives were studied."))
     for a in alts:
         an = a["name"]
         ok = comp[an]["verified"]
-        body.append(f"<h3>{esc(an)}</h3>")
+        body.append(f'<h3 class="alt">{esc(an)}</h3>')
         if a.get("description"):
-            body.append(_p(a["description"]))
-        if not ok:
-            body.append('<div class="warn">This plan was not confirmed by AC load flow at every '
-                        "load level. Its figures below are not results; levels without AC "
-                        "confirmation show the linear prediction only.</div>")
+            body.append(_p(a["description"][:1].upper() + a["description"][1:]))
+        lines = lines_by_alt.get(an, [])
+        if ok:
+            body.append('<div class="good">' + esc(_sentence(
+                a.get("message") or "confirmed by AC load flow at every load level")) + "</div>")
+        else:
+            box = ['<div class="warn"><strong>This plan was not confirmed by AC load flow at every '
+                   "load level</strong>, so its figures are not results: levels without AC "
+                   "confirmation show the linear prediction only."]
+            if a.get("message"):
+                box.append(f"<br>Optimiser's verdict: {esc(_sentence(a['message']))}")
+            if lines:
+                box.append(f"<br>{esc(_plural(len(lines), 'limit', 'limits'))} still broken in "
+                           "the AC load flow:<ul>"
+                           + "".join(f"<li>{esc(_with_bus_names(t, nb))}</li>" for t in lines)
+                           + "</ul>")
+            box.append("</div>")
+            body.append("".join(box))
+        how = _how_line(runs[an])
+        if how:
+            body.append(_p(how, "how"))
+        rows = [r for r in T["alternative_levels"].rows if r["alternative"] == an]
+        ok_levels = {r["level"] for r in rows if r["verified"]}
+        body.append(tab(_levels_display(rows, mwd), css_class="data compact",
+                        caption="Results by load level (AC load flow; linear prediction beside it)",
+                        row_class=lambda r: "" if r["verified"] else "unverified"))
         rows = [r for r in T["banks"].rows if r["alternative"] == an]
         if rows:
             body.append(tab(T["banks"], rows=rows, show=[k for k in T["banks"].keys()
                                                          if k != "alternative"],
-                            caption="Capacitor banks"))
+                            css_class="data compact", caption="New capacitor banks"))
+        elif a.get("banks") is not None:
+            body.append(_p("No new capacitor banks in this plan."))
+        rows = [r for r in T["existing_banks"].rows if r["alternative"] == an]
+        if rows:
+            body.append(tab(_pivot("existing_banks", rows, [("bank", "Existing bank", "text"),
+                                                            ("bus", "Bus", "text")],
+                                   "steps", "int", names),
+                            caption="Existing switched banks: steps in service by load level"))
         rows = [r for r in T["setpoints"].rows if r["alternative"] == an]
         if rows:
-            body.append(tab(T["setpoints"], rows=rows, show=["level", "gen", "bus", "v_pu"],
-                            caption="Generator voltage set-points"))
+            body.append(tab(_pivot("setpoints", rows, [("gen", "Generator", "text"),
+                                                       ("bus", "Bus", "text")],
+                                   "v_pu", "pu", names),
+                            caption="Generator voltage set-points (pu) by load level"))
         rows = [r for r in T["taps"].rows if r["alternative"] == an]
         if rows:
-            body.append(tab(T["taps"], rows=rows, show=["level", "branch", "ratio"],
-                            caption="Transformer ratios"))
-        rows = [dict(r) for r in T["alternative_levels"].rows if r["alternative"] == an]
-        for r in rows:
-            if not r["verified"]:   # only AC-confirmed figures are shown as results
-                r.update(losses_mw="not verified", v_min_pu=None, v_min_bus=None, v_max_pu=None,
-                         v_max_bus=None, violations=None)
-        ok_levels = {r["level"] for r in rows if r["verified"]}
-        body.append(tab(T["alternative_levels"], rows=rows,
-                        show=[k for k in T["alternative_levels"].keys() if k != "alternative"],
-                        caption="Results by load level (AC load flow; linear prediction beside it)",
-                        row_class=lambda r: "" if r["verified"] else "unverified"))
+            body.append(tab(_pivot("taps", rows, [("branch", "Transformer", "text")],
+                                   "ratio", "pu", names),
+                            caption="Transformer ratios (pu) by load level"))
         av = [r for r in T["violations"].rows if r["case"] == an and r["level"] in ok_levels]
         if av:
             body.append(tab(T["violations"], rows=av,
@@ -624,39 +839,46 @@ def render_report(data: dict) -> str:
                             caption="Bus voltages outside the planning band"))
         conv = a.get("convergence") or []
         if conv:
+            acc = [c.get("accepted") for c in conv]
             body.append("<figure>" + svg.convergence_chart(
                 [c.get("iteration") for c in conv], [_f(c.get("predicted_mw")) for c in conv],
-                [_f(c.get("ac_mw")) for c in conv], title=f"Optimiser convergence, {an}")
-                + "<figcaption>Loss objective at each outer iteration: the linear model's "
-                "prediction and the AC load flow of the same proposal. The full table is in "
-                "convergence.csv.</figcaption></figure>")
+                [_f(c.get("ac_mw")) for c in conv], accepted=acc,
+                title=f"Optimiser convergence, {an}",
+                y_label="mean losses over the year (MW)")
+                + "<figcaption>Losses as the optimiser weighs them (mean over the year, each load "
+                "level weighted by its hours) at each outer iteration: the linear model's "
+                "prediction and the AC load flow of the same proposal"
+                + ("; a rejected proposal is a hollow ring and the plan stays at the last "
+                   "accepted step" if any(x is False for x in acc) else "")
+                + ". The full table is in convergence.csv.</figcaption></figure>")
     sections.append(_section("Alternatives", body, "alternatives"))
 
-    # 4 voltage profiles
+    # 5 voltage profiles
     body = []
     for n in names:
         chart = _profile_chart(data, names, n, verified)
         if chart:
-            body.append(f"<figure>{chart}<figcaption>Bus voltages at the {esc(n)} level, base case "
-                        "and each AC-verified alternative; shaded: planning band.</figcaption>"
-                        "</figure>")
+            body.append(f"<figure>{chart}<figcaption>Bus voltages at the {esc(n)} level: base case "
+                        "and each alternative confirmed by AC load flow; shaded: planning band, "
+                        "dashed red: its limits.</figcaption></figure>")
     if not body:
         body.append(_p("No voltage profiles were supplied."))
     sections.append(_section("Voltage profiles", body, "profiles"))
 
-    # 5 losses by level
+    # 6 losses by level
     series = [{"name": "base case", "values": [float(data["base"][n]["losses_mw"]) for n in names],
                "color": svg.BASE_COLOR}]
     for k, a in enumerate(verified):
         series.append({"name": a["name"], "values": [_f(a["levels"][n]["losses_mw"]) for n in names],
                        "color": svg.PALETTE[k % len(svg.PALETTE)]})
-    chart = svg.bar_chart(names, series, title="Active losses by load level", y_label="losses (MW)",
-                          x_label="load level", value_format=lambda v: f"{v:.{mwd}f}")
-    body = [f"<figure>{chart}<figcaption>AC load-flow losses; alternatives not confirmed by AC load "
-            "flow are left out.</figcaption></figure>"]
+    chart = svg.bar_chart(names, series, title="Active power losses by load level (AC load flow)",
+                          y_label="losses (MW)", x_label="load level",
+                          value_format=lambda v: f"{v:.{mwd}f}")
+    body = [f"<figure>{chart}<figcaption>AC load-flow losses at each load level; alternatives not "
+            "confirmed by AC load flow are left out.</figcaption></figure>"]
     sections.append(_section("Losses by load level", body, "losses"))
 
-    # 6 economics
+    # 7 economics
     body = []
     srows = [r for r in T["economics_summary"].rows if r["verified"]]
     if srows:
@@ -684,19 +906,6 @@ def render_report(data: dict) -> str:
     else:
         body.append(_p("No economic evaluation was supplied."))
     sections.append(_section("Economics", body, "economics"))
-
-    # 7 comparison
-    verified_names = {a["name"] for a in verified}
-    best = max((r for r in T["comparison"].rows if r["alternative"] in verified_names
-                and r["npv"] is not None), key=lambda r: r["npv"], default=None)
-    comp_cols = [c for c in T["comparison"].columns if c[0] != "alternative"]
-    body = [html_table(_transposed("comparison", T["comparison"].rows, comp_cols, mwd=mwd,
-                                   cur=cur), css_class="data wide")]
-    if best is not None:
-        body.append(_p(f"Highest net present value among the AC-verified alternatives: "
-                       f"{best['alternative']}."))
-    body.append(_p("Figures for alternatives not confirmed by AC load flow are left blank.", "note"))
-    sections.append(_section("Comparison of alternatives", body, "comparison"))
 
     # 8 assumptions and cautions
     body = []

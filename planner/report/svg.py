@@ -129,15 +129,24 @@ def _legend_svg(placed, kind) -> list[str]:
                        f'fill="{e["color"]}" stroke="#333" stroke-width="0.5"/>')
         else:
             dash = f' stroke-dasharray="{e["dash"]}"' if e.get("dash") else ""
-            out.append(f'<line x1="{_num(x)}" y1="{_num(cy)}" x2="{_num(x + 26)}" y2="{_num(cy)}" '
-                       f'stroke="{e["color"]}" stroke-width="{e.get("width", 2.2)}"{dash}/>')
+            if e.get("line", True):
+                out.append(f'<line x1="{_num(x)}" y1="{_num(cy)}" x2="{_num(x + 26)}" '
+                           f'y2="{_num(cy)}" stroke="{e["color"]}" '
+                           f'stroke-width="{e.get("width", 2.2)}"{dash}/>')
             if e.get("marker"):
-                out.append(f'<circle cx="{_num(x + 13)}" cy="{_num(cy)}" r="3.5" '
-                           f'fill="{e["color"]}"/>')
+                out.append(_marker(x + 13, cy, e["color"], e["marker"]))
         out.append(f'<text x="{_num(x + 32)}" y="{_num(cy + 4)}" font-size="{_LEGEND_PX}">'
                    f'{_e(e["name"])}</text>')
     out.append("</g>")
     return out
+
+
+def _marker(x, y, color, style) -> str:
+    """A point marker: filled dot, or ``"hollow"`` ring (e.g. a rejected optimiser step)."""
+    if style == "hollow":
+        return (f'<circle cx="{_num(x)}" cy="{_num(y)}" r="4.5" fill="#ffffff" stroke="{color}" '
+                f'stroke-width="1.8"/>')
+    return f'<circle cx="{_num(x)}" cy="{_num(y)}" r="3.5" fill="{color}"/>'
 
 
 def _open_svg(width, height, title) -> list[str]:
@@ -204,7 +213,8 @@ def line_chart(series: Sequence[dict], *, title: str, x_label: str = "", y_label
     """Line chart of several series.
 
     series: dicts with ``name``, ``y`` (list; ``None`` leaves a gap), optional ``x`` (defaults to
-    0, 1, ...), ``color``, ``dash``, ``marker`` (bool), ``width``.
+    0, 1, ...), ``color``, ``dash``, ``marker`` (true for dots, ``"hollow"`` for rings),
+    ``line`` (false: markers only), ``width``.
     x_categories: tick labels for x = 0, 1, ... (e.g. bus names); thinned so they do not overlap.
     band: ``(low, high, label)`` shaded (e.g. the planning voltage band).
     hlines: ``(y, label)`` dashed limit lines, labelled in the right margin.
@@ -234,7 +244,8 @@ def line_chart(series: Sequence[dict], *, title: str, x_label: str = "", y_label
         ys, xs = ys or [0.0, 1.0], xs or [0.0, 1.0]
 
     legend = [{"name": s["name"], "color": s["color"], "dash": s["dash"],
-               "marker": s.get("marker"), "width": s.get("width", 2.2)} for s in series]
+               "marker": s.get("marker"), "line": s.get("line", True),
+               "width": s.get("width", 2.2)} for s in series]
     if band:
         legend.append({"name": band[2], "color": "#cfe8cf", "dash": "", "width": 9})
     placed, legend_bottom = _legend_layout(legend, width, top=34)
@@ -251,7 +262,14 @@ def line_chart(series: Sequence[dict], *, title: str, x_label: str = "", y_label
         f.set_x(-0.5, len(x_categories) - 0.5)
         xticks = _thin_labels(list(x_categories), f.x1 - f.x0)
     else:
-        xlo_a, xhi_a, xt = nice_ticks(min(xs), max(xs), min_step=1.0 if x_integer else 0.0)
+        span = max(xs) - min(xs)
+        if x_integer and 0 < span <= 20 and float(min(xs)).is_integer():
+            # one tick per iteration, axis ending at the last one (no empty tail)
+            xlo_a, xhi_a = float(min(xs)), float(math.ceil(max(xs)))
+            xt = [xlo_a + i for i in range(int(xhi_a - xlo_a) + 1)]
+        else:
+            xlo_a, xhi_a, xt = nice_ticks(min(xs), max(xs),
+                                          min_step=1.0 if x_integer else 0.0)
         f.set_x(xlo_a, xhi_a)
         xticks = [(t, _fmt_tick(t, xt)) for t in xt]
 
@@ -278,14 +296,14 @@ def line_chart(series: Sequence[dict], *, title: str, x_label: str = "", y_label
             d.append(f'{"L" if pen else "M"}{_num(f.px(x))} {_num(f.py(y))}')
             pen = True
         dash = f' stroke-dasharray="{s["dash"]}"' if s["dash"] else ""
-        out.append(f'<path class="series" data-name="{_e(s["name"])}" d="{" ".join(d)}" '
-                   f'fill="none" stroke="{s["color"]}" stroke-width="{s.get("width", 2.2)}" '
-                   f'stroke-linejoin="round"{dash}/>')
+        if s.get("line", True):
+            out.append(f'<path class="series" data-name="{_e(s["name"])}" d="{" ".join(d)}" '
+                       f'fill="none" stroke="{s["color"]}" stroke-width="{s.get("width", 2.2)}" '
+                       f'stroke-linejoin="round"{dash}/>')
         if s.get("marker"):
             for x, y in zip(s["x"], s["y"]):
                 if y is not None:
-                    out.append(f'<circle cx="{_num(f.px(x))}" cy="{_num(f.py(y))}" r="3.5" '
-                               f'fill="{s["color"]}"/>')
+                    out.append(_marker(f.px(x), f.py(y), s["color"], s["marker"]))
     out += _legend_svg(placed, "line")
     out.append("</svg>")
     return "\n".join(out)
@@ -352,20 +370,38 @@ def bar_chart(categories: Sequence[str], series: Sequence[dict], *, title: str,
 
 
 def convergence_chart(iterations: Sequence[int], predicted: Sequence[float | None],
-                      ac: Sequence[float | None], *, title: str, y_label: str = "Losses (MW)",
+                      ac: Sequence[float | None], *, title: str, y_label: str = "losses (MW)",
+                      accepted: Sequence[bool | None] | None = None,
                       width: int = 960, height: int = 340) -> str:
     """Losses per optimiser iteration: linear-model prediction (dashed) against AC load flow.
+
+    With ``accepted`` (one flag per iteration), the AC line joins the accepted steps only and a
+    rejected proposal's AC figure is a hollow ring off the line, so a rejected trial does not read
+    as the plan getting worse.
 
     >>> s = convergence_chart([0, 1, 2], [None, 0.15, 0.142], [0.2, 0.151, 0.143], title="c")
     >>> s.count('class="series"'), s.count("<circle")    # 5 points and 2 legend markers
     (2, 7)
+    >>> s = convergence_chart([0, 1, 2], [None, 0.15, 0.142], [0.2, 0.16, 0.143], title="c",
+    ...                       accepted=[True, False, True])
+    >>> s.count('class="series"'), s.count('fill="#ffffff" stroke=')   # ring + legend ring
+    (2, 2)
     """
-    series = [
-        {"name": "AC load flow", "x": list(iterations), "y": list(ac), "color": PALETTE[0],
-         "dash": "", "marker": True},
-        {"name": "linear prediction", "x": list(iterations), "y": list(predicted),
-         "color": PALETTE[1], "dash": "6 4", "marker": True},
-    ]
-    chart = line_chart(series, title=title, x_label="iteration", y_label=y_label,
-                       width=width, height=height, x_integer=True)
-    return chart
+    its, pred, acv = list(iterations), list(predicted), list(ac)
+    if accepted is None or all(a is None or a for a in accepted):
+        series = [{"name": "AC load flow", "x": its, "y": acv, "color": PALETTE[0], "dash": "",
+                   "marker": True}]
+    else:
+        ok = [a is None or bool(a) for a in accepted]
+        series = [
+            {"name": "AC load flow, accepted step", "x": [i for i, k in zip(its, ok) if k],
+             "y": [v for v, k in zip(acv, ok) if k], "color": PALETTE[0], "dash": "",
+             "marker": True},
+            {"name": "AC load flow, rejected proposal", "x": [i for i, k in zip(its, ok) if not k],
+             "y": [v for v, k in zip(acv, ok) if not k], "color": PALETTE[0], "dash": "",
+             "marker": "hollow", "line": False},
+        ]
+    series.append({"name": "linear prediction", "x": its, "y": pred, "color": PALETTE[1],
+                   "dash": "6 4", "marker": True})
+    return line_chart(series, title=title, x_label="optimiser iteration", y_label=y_label,
+                      width=width, height=height, x_integer=True)
