@@ -29,7 +29,7 @@ import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, compile_network
 from .jacobian import JacobianPattern, NewtonLinearSolver
-from .result import FlowResult, STATUS, build_result
+from .result import FlowResult, build_result
 
 LOW_VOLTAGE_SOLUTION_PU = 0.5     # below this a "converged" point is a low-voltage solution
 MAX_LIMIT_ROUNDS = 20

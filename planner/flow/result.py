@@ -6,7 +6,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from ..network.compile import PQ, PV, SLACK, KIND_NAMES, Compiled
+from ..network.compile import PQ, SLACK, KIND_NAMES, Compiled
 
 STATUS = {
     0: "converged",

@@ -15,7 +15,6 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass, field
 
-import numpy as np
 import pandas as pd
 
 # Column name -> dtype, in the order tables are written. Readers fill missing optional

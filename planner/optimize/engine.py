@@ -15,7 +15,7 @@ import numpy as np
 
 from ..flow.newton import solve_flow
 from ..flow.result import FlowResult
-from ..network.compile import PQ, SLACK, compile_network, replace
+from ..network.compile import PQ, compile_network, replace
 from .levers import Levers, Limits, Objective, Options
 from .milp import LevelData, StepSpec, solve_step
 from .sensitivity import flow_magnitude_slopes, linearise

@@ -28,9 +28,8 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
-import scipy.sparse.linalg as spla
 
-from ..flow.jacobian import JacobianPattern, bus_derivatives
+from ..flow.jacobian import JacobianPattern, bus_derivatives, factorize
 from ..flow.newton import load_power
 from ..flow.result import FlowResult
 from ..network.compile import PQ, PV, SLACK
@@ -93,7 +92,7 @@ def linearise(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
     pat = JacobianPattern(y, pvpq, pq)
     dload = c.s_load_i + 2.0 * c.s_load_z * vm
     J = pat.matrix(v, dload)
-    lu = spla.splu(J)
+    lu = factorize(J)
     na = len(pvpq)
 
     # direct change of the computed bus injection S = V conj(Y V) per lever, holding the state
@@ -225,7 +224,7 @@ def loss_gradient(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -
     dl_dva = np.bincount(cols, d_va.real, n)
     dl_dvm = np.bincount(cols, d_vm.real, n) - 2.0 * c.ysh.real * vm
     dl_dx = np.concatenate([dl_dva[pvpq], dl_dvm[pq]])
-    lam = spla.splu(J.tocsc()).solve(dl_dx, trans="T")
+    lam = factorize(J.tocsc()).solve(dl_dx, trans="T")
     shunt_buses = np.asarray(shunt_buses, dtype=np.int64)
     vset_buses = np.asarray(vset_buses, dtype=np.int64)
     xfmr_branches = np.asarray(xfmr_branches, dtype=np.int64)
