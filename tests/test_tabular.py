@@ -223,7 +223,7 @@ def test_read_network_detects_the_format(tmp_path):
     by_folder = read_network(FEEDER)
     same(read_network(FEEDER / "network.toml"), by_folder)
     same(read_network(FEEDER / "lines.csv"), by_folder)
-    cdf_copy = tmp_path / "case14.dat"                             # no telling extension: by content
+    cdf_copy = tmp_path / "fourteen.dat"                            # no telling extension: by content
     cdf_copy.write_bytes((DATA / "ieee14cdf.txt").read_bytes())
     assert len(read_network(cdf_copy).buses) == 14
     write_network(by_folder, tmp_path / "f.cdf", format="cdf")

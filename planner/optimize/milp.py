@@ -181,28 +181,10 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
             for p in pts:
                 b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
         b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + spec.base_mva * float(lev.const))  # MW
-        # voltage and reactive rows with penalised slacks
-        VR = range(len(lev.v_rows))
-        b.sv_lo = pyo.Var(VR, within=pyo.NonNegativeReals)
-        b.sv_hi = pyo.Var(VR, within=pyo.NonNegativeReals)
-        b.v_lo_c = pyo.Constraint(VR, rule=lambda _, i: float(lev.v0[i]) + _lin(lev.dv[i], du)
-                                  >= float(lev.v_lo[i]) - b.sv_lo[i])
-        b.v_hi_c = pyo.Constraint(VR, rule=lambda _, i: float(lev.v0[i]) + _lin(lev.dv[i], du)
-                                  <= float(lev.v_hi[i]) + b.sv_hi[i])
-        QR = range(len(lev.q_rows))
-        b.sq_lo = pyo.Var(QR, within=pyo.NonNegativeReals)
-        b.sq_hi = pyo.Var(QR, within=pyo.NonNegativeReals)
-        b.q_lo_c = pyo.Constraint(QR, rule=lambda _, i: float(lev.q0[i]) + _lin(lev.dq[i], du)
-                                  >= float(lev.q_lo[i]) - b.sq_lo[i])
-        b.q_hi_c = pyo.Constraint(QR, rule=lambda _, i: float(lev.q0[i]) + _lin(lev.dq[i], du)
-                                  <= float(lev.q_hi[i]) + b.sq_hi[i])
-        SR = range(0 if lev.s_rows is None else len(lev.s_rows))
-        b.ss_hi = pyo.Var(SR, within=pyo.NonNegativeReals)
-        b.s_hi_c = pyo.Constraint(SR, rule=lambda _, i: float(lev.s0[i]) + _lin(lev.ds[i], du)
-                                  <= float(lev.s_hi[i]) + b.ss_hi[i])
-        viol = (pyo.quicksum(b.sv_lo[i] + b.sv_hi[i] for i in VR)
-                + pyo.quicksum(b.sq_lo[i] + b.sq_hi[i] for i in QR)
-                + pyo.quicksum(b.ss_hi[i] for i in SR))
+        # voltage, reactive and loading rows, each with a penalised slack
+        viol = (_limit_rows(b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, du)
+                + _limit_rows(b, "q", lev.q0, lev.dq, lev.q_lo, lev.q_hi, du)
+                + _limit_rows(b, "s", lev.s0, lev.ds, None, lev.s_hi, du))
         obj_terms.append(lev.weight / scale * b.loss + spec.penalty / scale * viol)
         tie.append(pyo.quicksum(m.k[l, s] for s in S))
     obj_terms.append(spec.tie_break * (pyo.quicksum(m.nf[s] + 2 * m.ns[s] for s in S) + pyo.quicksum(tie)))
@@ -261,6 +243,25 @@ def _same_solution(a, b) -> bool:
     return (np.allclose(a.fixed, b.fixed, atol=1e-7, rtol=0) and np.array_equal(a.switched, b.switched)
             and np.array_equal(a.steps, b.steps) and np.array_equal(a.exist, b.exist)
             and np.allclose(a.vset, b.vset, atol=1e-7, rtol=0) and np.allclose(a.tap_change, b.tap_change, atol=1e-7, rtol=0))
+
+
+def _limit_rows(b, tag, x0, slopes, lo, hi, du):
+    """Rows ``lo - slack <= x0 + slopes du <= hi + slack`` on block ``b`` (``lo`` None: upper
+    side only); returns the sum of the slacks for the objective."""
+    rows = range(0 if x0 is None else len(x0))
+    total = 0
+    for side, bound in (("lo", lo), ("hi", hi)):
+        if bound is None:
+            continue
+        slack = pyo.Var(rows, within=pyo.NonNegativeReals)
+        b.add_component(f"{tag}_slack_{side}", slack)
+        if side == "lo":
+            rule = lambda _, i: float(x0[i]) + _lin(slopes[i], du) >= float(bound[i]) - slack[i]  # noqa: E731
+        else:
+            rule = lambda _, i: float(x0[i]) + _lin(slopes[i], du) <= float(bound[i]) + slack[i]  # noqa: E731
+        b.add_component(f"{tag}_limit_{side}", pyo.Constraint(rows, rule=rule))
+        total = total + pyo.quicksum(slack[i] for i in rows)
+    return total
 
 
 def _ordered(bounds):
