@@ -179,6 +179,96 @@ def test_unverified_figures_not_shown_as_results():
     assert "C: four banks" not in bars and bars.count('class="bar"') == 9   # 3 levels x 3 series
 
 
+def _alt_section(page: str, name_html: str) -> str:
+    return page.split(f"{name_html}</h3>")[1].split("<h3")[0]
+
+
+def test_remaining_violations_and_run_line_shown_for_each_alternative():
+    data = sample_data(names={18: "Mill <11>"})
+    c = data["alternatives"][2]
+    c.update(message="limits cannot all be met: 2 violation(s) remain; worst: light: voltage at "
+                     "bus 18: 0.9406 pu against limit 0.9500 pu",
+             status="converged (no further change)", ac_flows=99, milp_solves=6, seconds=5.5388,
+             remaining_violations=["light: voltage at bus 18: 0.9406 pu against limit 0.9500 pu",
+                                   "light: branch 3-4 loading 104.2 % of rating <A&B>"])
+    c["levels"]["light"]["converged"] = True
+    page = render_report(data)
+    sec = _alt_section(page, "C: four banks (not converged)")
+    warn = sec.split('<div class="warn">')[1].split("</div>")[0]
+    # both broken limits, escaped, with the bus name added where the number is known
+    assert "<li>light: voltage at bus 18 (Mill &lt;11&gt;): 0.9406 pu against limit 0.9500 pu</li>" \
+        in warn
+    assert "<li>light: branch 3-4 loading 104.2 % of rating &lt;A&amp;B&gt;</li>" in warn
+    assert "2 limits still broken" in warn and "Optimiser's verdict: limits cannot all be met" in warn
+    # near the top: the box and the run line come before the results table and the bank table
+    run = ("How the optimiser got here: converged (no further change); 99 AC load flows; "
+           "6 mixed-integer (MILP) solves; 5.5 s.")
+    assert run in sec
+    assert sec.index("limits still broken") < sec.index(run) < sec.index('data-table="alternative_levels"') \
+        < sec.index('data-table="banks"')
+    # the comparison table counts them for every plan, verified or not
+    comp = page.split('data-table="comparison"')[1].split("</table>")[0]
+    row = next(r for r in comp.split("<tr") if ">Limits broken<" in r)
+    cells = re.findall(r'<td class="num">([^<]*)</td>', row)
+    assert cells == ["24", "9", "11", "2"]         # base 16 + 8; A, B from their level lists; C given
+    tables = report_tables(data)
+    rv = list(csv.DictReader(io.StringIO(tables["remaining_violations.csv"])))
+    assert [r["violation"] for r in rv if r["alternative"].startswith("C:")] == \
+        c["remaining_violations"]
+    runs = {r["alternative"]: r for r in csv.DictReader(io.StringIO(tables["optimiser_runs.csv"]))}
+    assert runs[c["name"]]["ac_flows"] == "99" and runs[c["name"]]["limits_broken"] == "2"
+    assert runs[c["name"]]["status"] == "converged (no further change)"
+    # a verified plan says so plainly instead
+    a_sec = _alt_section(page, "A: three fixed banks")
+    assert '<div class="good">Confirmed by AC load flow at every load level.</div>' in a_sec
+    assert "How the optimiser got here" not in a_sec           # no run data given for A
+
+
+def test_remaining_violations_built_from_levels_when_not_given():
+    data = sample_data()
+    c = data["alternatives"][2]
+    c["levels"]["light"]["other_violations"] = ["generator G2 reactive output above its limit"]
+    page = render_report(data)
+    warn = _alt_section(page, "C: four banks (not converged)").split('<div class="warn">')[1]
+    warn = warn.split("</div>")[0]
+    peak = c["levels"]["peak"]["violations"]
+    assert warn.count("<li>") == len(peak) + 1 and len(peak) == 9
+    v = peak[0]
+    assert (f"<li>peak: voltage at bus {v['bus']} ({v['name']}): {v['v_pu']:.4f} pu against limit "
+            f"{v['limit']:.4f} pu</li>") in warn
+    assert "<li>light: generator G2 reactive output above its limit</li>" in warn
+    # per level: the unverified light level still shows its count of broken limits
+    rows = _alt_section(page, "C: four banks (not converged)").split(
+        'data-table="alternative_levels"')[1].split("</table>")[0]
+    light = next(r for r in rows.split("<tr") if ">light<" in r)
+    assert re.findall(r'<td class="num">([^<]*)</td>', light)[-1] == "1"
+    # a level whose AC load flow did not solve says so rather than counting
+    c["levels"]["light"]["converged"] = False
+    page = render_report(data)
+    rows = _alt_section(page, "C: four banks (not converged)").split(
+        'data-table="alternative_levels"')[1].split("</table>")[0]
+    light = next(r for r in rows.split("<tr") if ">light<" in r)
+    assert "AC not solved" in light
+
+
+def test_voltage_and_bus_share_a_cell_and_settings_are_pivoted_by_level():
+    data = sample_data(names={18: "Far End 11"})
+    page = render_report(data)
+    base = page.split('data-table="base_case"')[1].split("</table>")[0]
+    lo = data["base"]["peak"]["v_min_pu"]
+    assert f'<td class="txt">{lo:.4f} at 18 (Far End 11)</td>' in base
+    assert "at bus</th>" in base and base.count("<th ") == 8      # no separate bus columns
+    a_sec = _alt_section(page, "A: three fixed banks")
+    sp = a_sec.split('data-table="setpoints"')[1].split("</table>")[0]
+    assert sp.count("<tr>") == 2                                   # header + one generator
+    assert re.findall(r"<th[^>]*>([^<]*)</th>", sp) == ["Generator", "Bus", "peak", "mid", "light"]
+    assert sp.count(">1.0000<") == 3
+    rows = a_sec.split('data-table="alternative_levels"')[1].split("</table>")[0]
+    peak = next(r for r in rows.split("<tr") if ">peak<" in r)
+    red = 0.20267 - 0.13899
+    assert f">{red:.4f} ({100 * red / 0.20267:.1f} %)<" in peak
+
+
 def test_escaping_of_user_strings():
     evil = "<script>alert(1)</script>"
     names = {18: evil, 5: 'Q"uote & <i>'}
@@ -366,6 +456,21 @@ def test_line_chart_geometry_and_band():
     assert float(first[1].split("L")[0]) < float(first[-1])
 
 
+def test_convergence_chart_joins_accepted_steps_only():
+    s = svg.convergence_chart([0, 1, 2, 3], [None, 0.15, 0.16, 0.14], [0.2, 0.15, 0.17, 0.141],
+                              accepted=[True, True, False, True], title="c")
+    root = ET.fromstring(s)
+    ns = "{http://www.w3.org/2000/svg}"
+    paths = {p.get("data-name"): p.get("d") for p in root.findall(f".//{ns}path")}
+    assert set(paths) == {"AC load flow, accepted step", "linear prediction"}
+    assert paths["AC load flow, accepted step"].count("L") == 2          # 3 accepted points
+    rings = [c for c in root.findall(f".//{ns}circle") if c.get("fill") == "#ffffff"]
+    assert len(rings) == 2                                               # the rejected one + legend
+    # integer axis: one tick per iteration, ending at the last one
+    ticks = [t.text for t in root.findall(f".//{ns}g[@class='x-axis']/{ns}text")]
+    assert ticks[:-1] == ["0", "1", "2", "3"] and ticks[-1] == "optimiser iteration"
+
+
 def test_nice_ticks_cover_the_range():
     for lo, hi in [(0.0, 0.2027), (0.9131, 1.0), (12.0, 13.4), (-3.0, 7.0), (5.0, 5.0)]:
         a, b, ticks = svg.nice_ticks(lo, hi)
@@ -423,3 +528,23 @@ def test_browser_renders_report(chromium, tmp_path):
     keep = os.environ.get("PLANNER_KEEP_SCREENSHOT")
     if keep:
         shutil.copy(png, keep)
+
+
+def test_browser_tables_fit_a_laptop_screen(chromium, tmp_path):
+    """Long bus names used to push the per-level results table past the right edge."""
+    Image = pytest.importorskip("PIL.Image")
+    names = {b: f"Ravensholm North Industrial Estate {b} kV busbar" for b in range(1, 34)}
+    folder = tmp_path / "report"
+    write_report(folder, sample_data(names=names))
+    png = tmp_path / "wide.png"
+    shot = chromium(f"--screenshot={png}", "--window-size=1366,16000", "--hide-scrollbars",
+                    (folder / "report.html").as_uri(), timeout=90)
+    assert shot.returncode == 0, shot.stderr[-2000:]
+    im = Image.open(png).convert("L")
+    w, h = im.size
+    # the page column is 1040 px wide and centred: (1366 - 1040) / 2 = 163 px margins
+    right = im.crop((1366 - 150, 0, w, h))
+    left = im.crop((0, 0, 150, h))
+    assert right.getextrema() == (255, 255) and left.getextrema() == (255, 255)
+    body = im.crop((200, 0, 1100, h))
+    assert body.getextrema()[0] < 100                     # the page itself did draw

@@ -177,6 +177,7 @@ h1 { font-size: 26px; margin: 0 0 6px; }
 h2 { font-size: 21px; margin: 34px 0 10px; padding-bottom: 4px; border-bottom: 1px solid #c8c8c8; }
 h3 { font-size: 17px; margin: 26px 0 8px; }
 h3.alt { border-top: 2px solid #9cc3e0; padding-top: 10px; margin-top: 30px; }
+h2 + h3.alt { border-top: none; padding-top: 0; margin-top: 14px; }
 p.meta { color: #444; margin: 2px 0; font-size: 14px; }
 .summary { border: 1px solid #9cc3e0; background: #f3f8fc; padding: 10px 16px; margin: 14px 0; }
 .summary ul { margin: 6px 0; padding-left: 20px; }
@@ -215,7 +216,7 @@ footer { margin-top: 40px; font-size: 12px; color: #555; border-top: 1px solid #
 @media print {
   body { font-size: 10pt; }
   main { max-width: none; padding: 0; }
-  h2.section { break-before: page; page-break-before: always; }
+  h2.newpage { break-before: page; page-break-before: always; }
   table.data { font-size: 8.5pt; }
   table.data.compact { font-size: 8pt; }
   table.data th, table.data td, table.data.compact th, table.data.compact td { padding: 2px 5px; }

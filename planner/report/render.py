@@ -626,8 +626,10 @@ def _pivot(name: str, rows: list[dict], keys: list[tuple], value: str, kind: str
     return Table(name, list(keys) + [(f"lv_{n}", n, kind) for n in names], list(items.values()))
 
 
-def _section(title: str, body: list[str], anchor: str) -> str:
-    return (f'<section id="{esc(anchor)}"><h2 class="section">{esc(title)}</h2>'
+def _section(title: str, body: list[str], anchor: str, new_page: bool = True) -> str:
+    """A report section; in print, ``new_page`` starts it on a fresh page."""
+    cls = "section newpage" if new_page else "section"
+    return (f'<section id="{esc(anchor)}"><h2 class="{cls}">{esc(title)}</h2>'
             + "".join(body) + "</section>")
 
 
@@ -743,7 +745,7 @@ def render_report(data: dict) -> str:
         f"<dd>{esc(r['value'])}</dd>" for r in T["criteria"].rows)
         + "</dl>")
     body.append("<h3>Load levels</h3>" + tab(T["levels"]))
-    sections.append(_section("Study question and criteria", body, "question"))
+    sections.append(_section("Study question and criteria", body, "question", new_page=False))
 
     # 2 comparison, early: it is the page a decision is made from
     comp_cols = [c for c in T["comparison"].columns if c[0] != "alternative"]
@@ -792,7 +794,8 @@ def render_report(data: dict) -> str:
                    "load level</strong>, so its figures are not results: levels without AC "
                    "confirmation show the linear prediction only."]
             if a.get("message"):
-                box.append(f"<br>Optimiser's verdict: {esc(_sentence(a['message']))}")
+                verdict = str(a["message"]).strip()
+                box.append(f"<br>Optimiser's verdict: {esc(verdict.rstrip('.'))}.")
             if lines:
                 box.append(f"<br>{esc(_plural(len(lines), 'limit', 'limits'))} still broken in "
                            "the AC load flow:<ul>"
@@ -820,7 +823,7 @@ def render_report(data: dict) -> str:
             body.append(tab(_pivot("existing_banks", rows, [("bank", "Existing bank", "text"),
                                                             ("bus", "Bus", "text")],
                                    "steps", "int", names),
-                            caption="Existing switched banks: steps in service by load level"))
+                            caption="Existing switched banks: steps in service"))
         rows = [r for r in T["setpoints"].rows if r["alternative"] == an]
         if rows:
             body.append(tab(_pivot("setpoints", rows, [("gen", "Generator", "text"),
@@ -876,7 +879,7 @@ def render_report(data: dict) -> str:
                           value_format=lambda v: f"{v:.{mwd}f}")
     body = [f"<figure>{chart}<figcaption>AC load-flow losses at each load level; alternatives not "
             "confirmed by AC load flow are left out.</figcaption></figure>"]
-    sections.append(_section("Losses by load level", body, "losses"))
+    sections.append(_section("Losses by load level", body, "losses", new_page=False))
 
     # 7 economics
     body = []
