@@ -433,6 +433,10 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
     predicted = dict(zip(names, before.losses_mw))
     seen = {cur.key(): ev.merit}
     status = "iteration limit"
+    # with whole-unit levers only, a shrinking region soon repeats the polish's one-unit moves
+    discrete_only = not len(pb.vset_bus) and not any(s.continuous for s in pb.sites) and \
+        not np.any(pb.tap_step <= 0)
+    rejections = 0
     for it in range(1, options.max_iterations + 1):
         spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c)
         sol, solves = solve_step(spec, time_budget=options.time_limit_s)
@@ -470,6 +474,10 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
                         "violation": new.violation_total, "radius_v": r_v, "radius_units": r_u})
             if progress:
                 progress(log[-1])
+        rejections = 0 if accept else rejections + 1
+        if discrete_only and rejections >= 2:
+            status = "converged (two rejected steps; one-unit moves checked next)"
+            break
         if accept:
             gain = ev.merit - new.merit
             loss_change = float(np.abs(new.losses_mw - ev.losses_mw).max())
