@@ -175,3 +175,18 @@ def flowcheck():
     """Independent dense check of load-flow solutions (see the module docstring)."""
     return SimpleNamespace(from_network=dense_from_network, from_raw=dense_from_raw,
                            check=check_solution, DenseCase=DenseCase)
+
+
+def apply_byte_edits(data: bytes, edits) -> bytes:
+    """Apply (op, position, blob) edits ("set", "insert", "delete") to file bytes; positions wrap
+    around the current length so any generated position lands inside the file."""
+    out = bytearray(data)
+    for op, pos, blob in edits:
+        pos = pos % (len(out) + 1)
+        if op == "set":
+            out[pos:pos + len(blob)] = blob
+        elif op == "insert":
+            out[pos:pos] = blob
+        else:
+            del out[pos:pos + len(blob)]
+    return bytes(out)

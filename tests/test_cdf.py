@@ -10,6 +10,7 @@ import pandas as pd
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
+from conftest import apply_byte_edits
 from planner.errors import InputError, NetworkError
 from planner.network.cdf import read_cdf, write_cdf
 from planner.network.io import read_network
@@ -268,15 +269,7 @@ _CLEAN = IEEE14.read_bytes()
                           st.integers(0, len(_CLEAN) - 1), st.binary(min_size=1, max_size=3)),
                 min_size=1, max_size=6))
 def test_random_corruption_raises_only_input_errors(tmp_path, edits):
-    data = bytearray(_CLEAN)
-    for op, pos, blob in edits:
-        pos = min(pos, len(data))
-        if op == "set":
-            data[pos:pos + len(blob)] = blob
-        elif op == "insert":
-            data[pos:pos] = blob
-        else:
-            del data[pos:pos + len(blob)]
+    data = apply_byte_edits(_CLEAN, edits)
     p = tmp_path / "corrupt.txt"
     p.write_bytes(bytes(data))
     try:

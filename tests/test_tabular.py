@@ -11,6 +11,7 @@ import pandas as pd
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
+from conftest import apply_byte_edits
 from planner.errors import InputError, NetworkError
 from planner.network import tabular
 from planner.network.cdf import read_cdf
@@ -262,15 +263,7 @@ def test_random_corruption_raises_only_input_errors(tmp_path, target, edits):
     if folder.exists():
         shutil.rmtree(folder)
     shutil.copytree(FEEDER, folder)
-    data = bytearray((FEEDER / target).read_bytes())
-    for op, pos, blob in edits:
-        pos = pos % (len(data) + 1)
-        if op == "set":
-            data[pos:pos + len(blob)] = blob
-        elif op == "insert":
-            data[pos:pos] = blob
-        else:
-            del data[pos:pos + len(blob)]
+    data = apply_byte_edits((FEEDER / target).read_bytes(), edits)
     (folder / target).write_bytes(bytes(data))
     try:
         net = read_network(folder)

@@ -28,6 +28,11 @@ def _is_num(v) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool)
 
 
+# kind -> (format spec, unit suffix) for the kinds that need nothing more
+_FORMATS = {"pu": (".4f", ""), "mvar": (".3f", ""), "mwh": (",.1f", ""), "pct": (".1f", " %"),
+            "years": (".1f", ""), "ratio": (".2f", ""), "hours": (",.0f", ""), "scale": (".3f", "")}
+
+
 def fmt(value: Any, kind: str, *, mw_decimals: int = 3, currency: str = "") -> str:
     """Format one value for display (plain text, not yet escaped).
 
@@ -53,29 +58,14 @@ def fmt(value: Any, kind: str, *, mw_decimals: int = 3, currency: str = "") -> s
         return "unbounded" if v > 0 else "-unbounded"
     if kind == "int":
         return f"{int(round(v)):,}"
-    if kind == "pu":
-        return f"{v:.4f}"
     if kind == "mw":
         return f"{v:.{mw_decimals}f}"
-    if kind == "mvar":
-        return f"{v:.3f}"
-    if kind == "mwh":
-        return f"{v:,.1f}"
     if kind == "money":
-        s = f"{v:,.0f}"
-        return f"{currency} {s}".strip()
-    if kind == "pct":
-        return f"{v:.1f} %"
-    if kind == "years":
-        return f"{v:.1f}"
-    if kind == "ratio":
-        return f"{v:.2f}"
+        return f"{currency} {v:,.0f}".strip()
     if kind == "rate":
         return f"{v * 100:.1f} %"
-    if kind == "hours":
-        return f"{v:,.0f}"
-    if kind == "scale":
-        return f"{v:.3f}"
+    if kind in _FORMATS:
+        return format(v, _FORMATS[kind][0]) + _FORMATS[kind][1]
     return f"{v:g}"
 
 
