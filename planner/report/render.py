@@ -818,23 +818,17 @@ def render_report(data: dict) -> str:
                             css_class="data compact", caption="New capacitor banks"))
         elif a.get("banks") is not None:
             body.append(_p("No new capacitor banks in this plan."))
-        rows = [r for r in T["existing_banks"].rows if r["alternative"] == an]
-        if rows:
-            body.append(tab(_pivot("existing_banks", rows, [("bank", "Existing bank", "text"),
-                                                            ("bus", "Bus", "text")],
-                                   "steps", "int", names),
-                            caption="Existing switched banks: steps in service"))
-        rows = [r for r in T["setpoints"].rows if r["alternative"] == an]
-        if rows:
-            body.append(tab(_pivot("setpoints", rows, [("gen", "Generator", "text"),
-                                                       ("bus", "Bus", "text")],
-                                   "v_pu", "pu", names),
-                            caption="Generator voltage set-points (pu) by load level"))
-        rows = [r for r in T["taps"].rows if r["alternative"] == an]
-        if rows:
-            body.append(tab(_pivot("taps", rows, [("branch", "Transformer", "text")],
-                                   "ratio", "pu", names),
-                            caption="Transformer ratios (pu) by load level"))
+        # per-level settings, one row per item and a column per load level
+        for table, keys, value, kind, caption in (
+                ("existing_banks", [("bank", "Existing bank", "text"), ("bus", "Bus", "text")], "steps", "int",
+                 "Existing switched banks: steps in service"),
+                ("setpoints", [("gen", "Generator", "text"), ("bus", "Bus", "text")], "v_pu", "pu",
+                 "Generator voltage set-points (pu) by load level"),
+                ("taps", [("branch", "Transformer", "text")], "ratio", "pu",
+                 "Transformer ratios (pu) by load level")):
+            rows = [r for r in T[table].rows if r["alternative"] == an]
+            if rows:
+                body.append(tab(_pivot(table, rows, keys, value, kind, names), caption=caption))
         av = [r for r in T["violations"].rows if r["case"] == an and r["level"] in ok_levels]
         if av:
             body.append(tab(T["violations"], rows=av,
