@@ -437,6 +437,18 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
     discrete_only = not len(pb.vset_bus) and not any(s.continuous for s in pb.sites) and \
         not np.any(pb.tap_step <= 0)
     rejections = 0
+
+    def record(accepted, evaluation, **extra):
+        # one log entry of the current step (reads the loop's it, pred, cand and radii)
+        entry = {"iteration": it, "accepted": bool(accepted), "predicted_mw": pred,
+                 "ac_mw": dict(zip(names, evaluation.losses_mw)) if evaluation else None,
+                 "merit": evaluation.merit if evaluation else seen[cand.key()],
+                 "violation": evaluation.violation_total if evaluation else None,
+                 "radius_v": r_v, "radius_units": r_u, **extra}
+        log.append(entry)
+        if progress:
+            progress(entry)
+
     for it in range(1, options.max_iterations + 1):
         spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c)
         sol, solves = solve_step(spec, time_budget=options.time_limit_s)
@@ -449,31 +461,17 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
         if cand.key() == cur.key():
             status = "converged (no further change)"
             predicted = pred
-            log.append({"iteration": it, "accepted": False, "predicted_mw": pred,
-                        "ac_mw": dict(zip(names, ev.losses_mw)), "merit": ev.merit,
-                        "violation": ev.violation_total, "radius_v": r_v, "radius_units": r_u})
-            if progress:
-                progress(log[-1])
+            record(False, ev)
             break
         if cand.key() in seen:
             # proposed before and not better then: no load flow needed, shrink the region
-            new = None
             accept = False
-            log.append({"iteration": it, "accepted": False, "repeat": True, "predicted_mw": pred,
-                        "ac_mw": None, "merit": seen[cand.key()], "violation": None,
-                        "radius_v": r_v, "radius_units": r_u})
-            if progress:
-                progress(log[-1])
+            record(False, None, repeat=True)
         else:
             new = pb.evaluate(cand, warm=ev.flows)
             seen[cand.key()] = new.merit
             accept = new.converged and new.merit < ev.merit - 1e-12
-        if new is not None:
-            log.append({"iteration": it, "accepted": bool(accept), "predicted_mw": pred,
-                        "ac_mw": dict(zip(names, new.losses_mw)), "merit": new.merit,
-                        "violation": new.violation_total, "radius_v": r_v, "radius_units": r_u})
-            if progress:
-                progress(log[-1])
+            record(accept, new)
         rejections = 0 if accept else rejections + 1
         if discrete_only and rejections >= 2:
             status = "converged (two rejected steps; one-unit moves checked next)"
