@@ -21,6 +21,9 @@ from .milp import LevelData, StepSpec, solve_step
 from .sensitivity import flow_magnitude_slopes, linearise
 
 
+_SEEDS = 12   # earlier proposals whose loss cuts a new step starts with
+
+
 @dataclass
 class LevelCase:
     """One load level: its network (loads already scaled) and its weight in the objective
@@ -353,7 +356,15 @@ class _Problem:
             v_now=np.abs(fr.v[self.vset_bus]),
         )
 
-    def step_spec(self, st: Settings, flows, radius_v, radius_units, radius_tap, radius_cont=None) -> StepSpec:
+    def lever_changes(self, l: int, st: Settings, to: Settings, flow: FlowResult) -> np.ndarray:
+        """Change of the lever columns at level ``l`` from ``st`` (solved as ``flow``) to ``to``,
+        in the linear model's units (setpoints from the present voltage, as the model has it)."""
+        return np.concatenate([self.unit_pu() * (to.fixed + to.steps[l] - st.fixed - st.steps[l]),
+                               self.exist_step * (to.exist[l] - st.exist[l]),
+                               to.vset[l] - np.abs(flow.v[self.vset_bus]), to.ratio[l] - st.ratio[l]])
+
+    def step_spec(self, st: Settings, flows, radius_v, radius_units, radius_tap, radius_cont=None,
+                  seeds=()) -> StepSpec:
         if radius_cont is None:
             radius_cont = float(radius_units)
         L = len(self.levels)
@@ -384,6 +395,8 @@ class _Problem:
             unit_radius=int(radius_units), v_radius=float(radius_v), tap_radius=tap_radius,
             tangent_points=self.options.tangent_points, penalty=self.penalty(),
             levels=levels, time_limit=self.options.time_limit_s, mip_gap=self.options.mip_gap,
+            seeds=[np.array([self.lever_changes(l, st, p, flows[l]) for l in range(L)]) for p in seeds
+                   if p.key() != st.key()],
         )
 
     def settings_from(self, sol, st: Settings, flows) -> Settings:
@@ -432,6 +445,7 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
     milps = 0
     predicted = dict(zip(names, before.losses_mw))
     seen = {cur.key(): ev.merit}
+    tried = {}            # every MILP round's proposal: later steps start their loss cuts there
     status = "iteration limit"
     # with whole-unit levers only, a shrinking region soon repeats the polish's one-unit moves
     discrete_only = not len(pb.vset_bus) and not any(s.continuous for s in pb.sites) and \
@@ -450,12 +464,16 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
             progress(entry)
 
     for it in range(1, options.max_iterations + 1):
-        spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c)
-        sol, solves = solve_step(spec, time_budget=options.time_limit_s)
+        spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c, seeds=list(tried.values())[-_SEEDS:])
+        sol, solves, rounds = solve_step(spec, time_budget=options.time_limit_s)
         milps += solves
         if not sol.ok:
             status = f"MILP step failed ({sol.status})"
             break
+        for r in rounds:
+            p = pb.settings_from(r, cur, ev.flows)
+            tried.pop(p.key(), None)
+            tried[p.key()] = p           # most recent last
         cand = pb.settings_from(sol, cur, ev.flows)
         pred = dict(zip(names, sol.predicted_loss_pu * pb.base))
         if cand.key() == cur.key():

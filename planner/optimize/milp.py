@@ -80,6 +80,9 @@ class StepSpec:
     time_limit: float = 60.0
     mip_gap: float = 1e-7
     levels: list = field(default_factory=list)   # list[LevelData]
+    # lever changes (one (L, m) array each) at which the loss cuts start out exact: earlier
+    # steps' solutions, so the cut refinement does not have to find that region again
+    seeds: list = field(default_factory=list)
 
 
 def _lin(coefs, terms, rel_tol=1e-9):
@@ -180,6 +183,9 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
             pts = np.unique(np.concatenate([np.linspace(lo, hi, spec.tangent_points), [root * lev.d[k], 0.0]]))
             for p in pts:
                 b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
+        for seed in spec.seeds:
+            for k, p in enumerate(root * (lev.d + lev.R @ seed[l])):
+                b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
         b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + spec.base_mva * float(lev.const))  # MW
         # voltage, reactive and loading rows, each with a penalised slack
         viol = (_limit_rows(b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, du)
@@ -201,12 +207,14 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, t
     The tangent cuts underestimate each square between tangent points. After each solve,
     cuts are added at the solution's own square-term values (an outer-approximation
     refinement) until the cut model agrees with the exact quadratic at the solution within
-    ``rel_tol`` of the losses. Returns (solution, number of MILP solves).
+    ``rel_tol`` of the losses. Returns (solution, number of MILP solves, every round's
+    solution in order).
     """
     m = build_model(spec)
     solver = new_solver()
     solves = 0
     sol = prev = None
+    rounds = []
     t_end = time.perf_counter() + time_budget
     for _ in range(max_rounds):
         left = t_end - time.perf_counter()
@@ -215,7 +223,8 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, t
         sol = solve_model(m, spec, solver, time_limit=max(left, 1.0))
         solves += 1
         if not sol.ok:
-            return sol, solves
+            return sol, solves, rounds
+        rounds.append(sol)
         gap = 0.0
         total = 0.0
         added = False
@@ -236,7 +245,7 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, t
         if not added or gap <= rel_tol * max(total, 1e-12) or same:
             break
         prev = sol
-    return sol, solves
+    return sol, solves, rounds
 
 
 def _same_solution(a, b) -> bool:

@@ -16,7 +16,8 @@ reactive-limit rows then tell the optimiser how far a setpoint may move.
 From dx the module returns what the optimiser needs, all linear in du:
   * bus voltage magnitudes (every bus);
   * reactive output of every generator bus;
-  * series current of every branch, whose squares weighted by resistance are the losses:
+  * series current of every branch (in the frame of its from-bus voltage), whose squares
+    weighted by resistance are the losses:
     ``losses = sum r_b |I_b|^2`` exactly, so ``sum r_b |I_b + dI_b du|^2`` is a convex quadratic
     model of the losses that keeps their curvature in the levers (first order exact).
 The gradient of the losses is also available by one adjoint solve (:func:`loss_gradient`),
@@ -43,8 +44,8 @@ class Sensitivity:
     gen_buses: np.ndarray      # compiled indices of generator (PV and slack) buses
     q0: np.ndarray             # (g,) reactive output at those buses, pu
     dq: np.ndarray             # (g, m)
-    i0: np.ndarray             # (nb,) complex series current of every branch
-    di: np.ndarray             # (nb, m) complex
+    i0: np.ndarray             # (nb,) complex series current of every branch, from-bus voltage frame
+    di: np.ndarray             # (nb, m) complex, same frame
     r: np.ndarray              # (nb,) series resistance seen by the current (pu)
     losses0: float             # pu, sum r |i0|^2
     dv: np.ndarray = None      # (n, m) complex bus voltage slopes
@@ -137,6 +138,17 @@ def linearise(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
         cols = ms + mv + np.arange(mt)
         di[xfmr_branches, cols] += ys[xfmr_branches] * (v[c.f[xfmr_branches]] * dk_f
                                                         - v[c.t[xfmr_branches]] * dk_t)
+    # Express each current in the frame of its from-bus voltage (|I|, hence the losses, do not
+    # depend on the frame). In the slack's frame a large reactive current rotates with the bus
+    # angles, so a linear model of it mixes reactive into active current and misses the
+    # product of the two changes; in the local frame the parts stay close to P/|V| and Q/|V|,
+    # which move nearly linearly with shunt injections.
+    vf = v[c.f]
+    vmf = np.abs(vf)
+    rot = np.where(vmf > 0, np.conj(vf) / np.where(vmf > 0, vmf, 1.0), 1.0)
+    dang_f = np.imag(dv[c.f] / np.where(vmf > 0, vf, 1.0)[:, None])
+    di = rot[:, None] * (di - 1j * i0[:, None] * dang_f)
+    i0 = rot * i0
     return Sensitivity(vm0=vm, dvm=dvm, gen_buses=gen_buses, q0=q0, dq=dq, i0=i0, di=di, r=r,
                        losses0=float(np.sum(r * np.abs(i0) ** 2)), dv=dv)
 
