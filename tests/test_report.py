@@ -17,7 +17,7 @@ import pytest
 
 from planner.report import atomic, svg
 from planner.report.atomic import MARKER, write_report_folder
-from planner.report.render import render_report, report_files, report_json, report_tables, \
+from planner.report.render import render_report, report_json, report_tables, \
     write_report
 from planner.study.economics import Economics, evaluate
 

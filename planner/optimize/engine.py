@@ -128,6 +128,8 @@ class _Problem:
         # new bank sites
         self.sites = list(levers.sites)
         self.site_bus = c0.index_of([s.bus for s in self.sites]) if self.sites else np.zeros(0, np.int64)
+        # candidate sites on buses joined by a branch: the final search may move a bank to one
+        self.site_next = self._adjacent_sites(c0)
         # existing switchable banks
         sh = net0.shunts
         if levers.existing_shunts and len(sh):
@@ -169,6 +171,20 @@ class _Problem:
         # limits per bus
         self.vlim = [self._voltage_limits(c0, lc) for lc in levels]
         self.flows_run = 0
+
+    def _adjacent_sites(self, c):
+        by_bus = {}
+        for s, i in enumerate(self.site_bus):
+            by_bus.setdefault(int(i), []).append(s)
+        out = [[] for _ in self.sites]
+        is_site = np.zeros(c.n, bool)
+        is_site[self.site_bus] = True
+        both = is_site[c.f] & is_site[c.t]          # only branches between two candidate buses
+        for a, b in zip(c.f[both], c.t[both]):
+            for x, y in ((int(a), int(b)), (int(b), int(a))):
+                for s in by_bus.get(x, ()):
+                    out[s].extend(t for t in by_bus.get(y, ()) if t not in out[s])
+        return out
 
     # ---- limits ----------------------------------------------------------------------------
     def _voltage_limits(self, c, level: LevelCase):
@@ -491,8 +507,10 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
             accept = new.converged and new.merit < ev.merit - 1e-12
             record(accept, new)
         rejections = 0 if accept else rejections + 1
-        if discrete_only and rejections >= 2:
-            status = "converged (two rejected steps; one-unit moves checked next)"
+        if discrete_only and rejections >= 1:
+            # the model cannot rank the nearby plans better than its own error: the AC-checked
+            # search over one-unit moves and moves to the next bus takes over
+            status = "converged (step rejected; one-step moves checked next)"
             break
         if accept:
             gain = ev.merit - new.merit
@@ -523,7 +541,8 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
 
 def _neighbours(pb: _Problem, st: Settings):
     """Settings one integer step away: a unit more or less at a used site (fixed, switched, or
-    switched-on at one level), an existing bank's step, a tap step at one level."""
+    switched-on at one level), a used site's bank moved to an adjacent candidate bus, an
+    existing bank's step, a tap step at one level."""
     L, S = st.steps.shape
     used = np.flatnonzero(st.fixed + st.switched > 0)
     for s in used:
@@ -549,6 +568,18 @@ def _neighbours(pb: _Problem, st: Settings):
                     n.steps[l, s] += dlt
                     if 0 <= n.steps[l, s] <= n.switched[s]:
                         yield n
+        # the whole bank moved to a candidate bus next door (same unit size and bank types)
+        for t in pb.site_next[s]:
+            other = pb.sites[t]
+            if (st.fixed[t] + st.switched[t] or other.unit_mvar != site.unit_mvar or other.continuous
+                    or st.fixed[s] + st.switched[s] > other.max_units
+                    or (st.fixed[s] and "fixed" not in other.kinds)
+                    or (st.switched[s] and "switched" not in other.kinds)):
+                continue
+            n = st.copy()
+            n.fixed[t], n.switched[t], n.steps[:, t] = st.fixed[s], st.switched[s], st.steps[:, s]
+            n.fixed[s], n.switched[s], n.steps[:, s] = 0, 0, 0
+            yield n
     for e in range(st.exist.shape[1]):
         for l in range(L):
             for dlt in (-1, 1):

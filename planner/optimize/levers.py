@@ -79,5 +79,5 @@ class Options:
     penalty: float = 1e4                  # MW of losses (at the heaviest level) per pu of violation
     polish: bool = True                   # AC-checked one-unit moves after the loop
     max_polish_flows: int = 400
-    mip_gap: float = 1e-4
+    mip_gap: float = 5e-4
     time_limit_s: float = 30.0            # per optimiser step (all its MILP solves); best found is used
