@@ -242,6 +242,13 @@ def test_infeasible_limits_give_the_least_violation_plan(f33):
     after = sum(v.excess for v in plan.violations)
     assert after < before - 0.05
     assert placement(plan) == [(18, 2)]               # the whole bank helps
+    # the iteration log names the worst breach of each AC-checked point: at the start the
+    # lowest voltage (bus 18, the feeder end); the last accepted point is the final plan
+    first = plan.log[0]["worst_violation"]
+    assert first.startswith("base: voltage at bus 18:")
+    checked = [e for e in plan.log if e["accepted"] and e["worst_violation"]]
+    worst_excess = max(v.excess for v in plan.violations)
+    assert f"by {worst_excess:.4f} pu" in checked[-1]["worst_violation"]
 
 
 # --- sensitivities ---------------------------------------------------------------------------
@@ -390,3 +397,32 @@ def test_final_search_moves_a_bank_to_the_next_candidate_bus(f33):
     units = sorted(int(n.fixed[13 - 2]) for n in _neighbours(pb, st) if np.count_nonzero(n.fixed) == 1
                    and n.fixed[13 - 2] > 0)
     assert units == [2, 4]
+
+
+def test_voltage_rows_move_inside_the_band_where_ac_broke_it(f33):
+    # after an AC point breaks the band at a bus, that bus's linear row aims inside the band
+    # by the breach (plus 5e-5 pu, capped at 0.01 pu); a bus inside the band is never held
+    # tighter than its present voltage, so the present point stays feasible in the model
+    from planner.optimize.engine import _Problem
+    from planner.optimize.levers import Options
+    limits = Limits(v_min=0.92, v_max=1.05)
+    pb = _Problem([LevelCase("base", f33)], Levers(sites=sites_at([18])), limits, Objective(), Options())
+    st = pb.initial_settings()
+    ev = pb.evaluate(st)
+    vm = ev.flows[0].vm
+    low = np.flatnonzero(vm < 0.92)
+    assert len(low) >= 5                                 # the feeder end is below 0.92 pu
+    pb.learn_voltage_margins(ev)
+    margin = pb.v_margin[0][0]
+    np.testing.assert_allclose(margin[low], np.minimum(0.92 - vm[low] + 5e-5, 0.01))
+    assert not margin[vm >= 0.92].any()
+    rows = pb.level_data(0, st, ev.flows[0], 0.05, 10)
+    lo = dict(zip(rows.v_rows, rows.v_lo))
+    for i in low:
+        assert lo[i] == pytest.approx(0.92 + margin[i])
+    # a bus that broke the band once but is inside it now is held at most at its voltage
+    pb.v_margin[0][0][:] = 0.005
+    inside = int(np.flatnonzero((vm > 0.92) & (vm < 0.925))[0])
+    rows = pb.level_data(0, st, ev.flows[0], 0.05, 10)
+    lo = dict(zip(rows.v_rows, rows.v_lo))
+    assert lo[inside] == pytest.approx(vm[inside])

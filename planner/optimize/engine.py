@@ -22,6 +22,8 @@ from .sensitivity import flow_magnitude_slopes, linearise
 
 
 _SEEDS = 12   # earlier proposals whose loss cuts a new step starts with
+_MARGIN_STEP = 5e-5   # pu added to a voltage row's margin beyond the breach that AC showed
+_MARGIN_CAP = 0.01    # pu: the most a row is moved inside the band
 
 
 @dataclass
@@ -170,6 +172,8 @@ class _Problem:
         self.tap_step = tr["ratio_step_pu"].to_numpy(float)[tr_rows] if len(tr_rows) else np.zeros(0)
         # limits per bus
         self.vlim = [self._voltage_limits(c0, lc) for lc in levels]
+        # per level and bus: how far inside the band the linear voltage rows aim (lower, upper)
+        self.v_margin = [(np.zeros(c0.n), np.zeros(c0.n)) for _ in levels]
         self.flows_run = 0
 
     def _adjacent_sites(self, c):
@@ -322,6 +326,26 @@ class _Problem:
                 total += (s[k] - c.rating[k]) / c.base_mva
         return out, total
 
+    def learn_voltage_margins(self, ev: Evaluation):
+        """Tighten the voltage rows at buses where an AC check broke the band.
+
+        A linear row can sit exactly on its limit while the AC voltage lands a little past it;
+        every such point then pays the violation penalty and the step is wasted. Each breach
+        moves that bus's row inside the band by the breach plus a little (capped), a usual
+        remedy in successive linear programming.
+        """
+        if not ev.converged:
+            return
+        for l, fr in enumerate(ev.flows):
+            vmin, vmax = self.vlim[l]
+            lo, hi = self.v_margin[l]
+            vm = np.abs(fr.v)
+            alive = fr.compiled.alive
+            below = alive & (vm < vmin)
+            above = alive & (vm > vmax)
+            lo[below] = np.minimum(lo[below] + (vmin - vm)[below] + _MARGIN_STEP, _MARGIN_CAP)
+            hi[above] = np.minimum(hi[above] + (vm - vmax)[above] + _MARGIN_STEP, _MARGIN_CAP)
+
     # ---- linear model ---------------------------------------------------------------------
     def level_data(self, l: int, st: Settings, fr: FlowResult, radius_v: float, radius_units: int) -> LevelData:
         c = fr.compiled
@@ -343,6 +367,12 @@ class _Problem:
         reach = np.abs(sens.dvm) @ span_units if sens.dvm.shape[1] else np.zeros(c.n)
         vm = sens.vm0
         vmin, vmax = self.vlim[l]
+        # the model's rows hold each bus inside its band less the margin its AC results needed,
+        # but never exclude the present point where it is inside the band itself (or a step
+        # that only moves back inside the margin would look better than it is)
+        lo_m, hi_m = vmin + self.v_margin[l][0], vmax - self.v_margin[l][1]
+        vmin = np.where(vm >= vmin, np.minimum(lo_m, vm), lo_m)
+        vmax = np.where(vm <= vmax, np.maximum(hi_m, vm), hi_m)
         near = c.alive & ((vm - reach <= vmin + 1e-3) | (vm + reach >= vmax - 1e-3))
         near[self.vset_bus] = False   # held by the setpoint bounds directly
         v_rows = np.flatnonzero(near)
@@ -450,7 +480,8 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
     ev = before
     log = [{"iteration": 0, "accepted": True, "predicted_mw": dict(zip(names, before.losses_mw)),
             "ac_mw": dict(zip(names, before.losses_mw)), "merit": before.merit,
-            "violation": before.violation_total, "radius_v": options.voltage_radius_pu,
+            "violation": before.violation_total, "worst_violation": _worst(before),
+            "radius_v": options.voltage_radius_pu,
             "radius_units": None}]
     if progress:
         progress(log[-1])
@@ -474,6 +505,7 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
                  "ac_mw": dict(zip(names, evaluation.losses_mw)) if evaluation else None,
                  "merit": evaluation.merit if evaluation else seen[cand.key()],
                  "violation": evaluation.violation_total if evaluation else None,
+                 "worst_violation": _worst(evaluation) if evaluation else None,
                  "radius_v": r_v, "radius_units": r_u, **extra}
         log.append(entry)
         if progress:
@@ -504,6 +536,7 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
         else:
             new = pb.evaluate(cand, warm=ev.flows)
             seen[cand.key()] = new.merit
+            pb.learn_voltage_margins(new)
             accept = new.converged and new.merit < ev.merit - 1e-12
             record(accept, new)
         rejections = 0 if accept else rejections + 1
@@ -537,6 +570,13 @@ def optimise(levels: list, levers: Levers, limits: Limits | None = None, objecti
         cur, ev = _polish(pb, cur, ev, options, log, progress)
     final = pb.evaluate(cur, warm=ev.flows, tables=True)
     return _result(pb, names, cur, before, final, predicted, log, milps, status, "", True, t0)
+
+
+def _worst(ev: Evaluation):
+    """The largest limit breach of an AC evaluation, as text (None when every limit holds)."""
+    if not ev.violations:
+        return None
+    return max(ev.violations, key=lambda v: v.excess).text()
 
 
 def _neighbours(pb: _Problem, st: Settings):
@@ -630,7 +670,8 @@ def _polish(pb: _Problem, cur: Settings, ev: Evaluation, options: Options, log, 
             improved = True
             log.append({"iteration": len(log), "accepted": True, "polish": True,
                         "predicted_mw": None, "ac_mw": dict(zip([lc.name for lc in pb.levels], ev.losses_mw)),
-                        "merit": ev.merit, "violation": ev.violation_total, "radius_v": None,
+                        "merit": ev.merit, "violation": ev.violation_total,
+                        "worst_violation": _worst(ev), "radius_v": None,
                         "radius_units": None})
             if progress:
                 progress(log[-1])
@@ -665,9 +706,8 @@ def _result(pb: _Problem, names, st: Settings, before: Evaluation, final: Evalua
         if not final.converged:
             message = "the final AC load flow did not converge at every level"
         elif final.violations:
-            worst = max(final.violations, key=lambda v: v.excess)
             message = (f"limits cannot all be met with the levers available: {len(final.violations)} "
-                       f"violation(s) remain in the least-violation plan; worst: {worst.text()}")
+                       f"violation(s) remain in the least-violation plan; worst: {_worst(final)}")
         else:
             message = "every level verified by AC load flow; all limits hold"
     return PlanResult(

@@ -56,7 +56,7 @@ Input schema (a JSON-like dict; units in the key names; ``?`` marks optional key
           "status"?: str, "ac_flows"?: int, "milp_solves"?: int, "seconds"?: float,
           "existing_steps"?: {level: [{"shunt_id", "bus", "steps"}]},  # existing switched banks
           "convergence"?: [{"iteration": int, "predicted_mw": float | None, "ac_mw": float | None,
-                            "trust"?: float, "accepted"?: bool}],   # losses as the optimiser
+                            "trust"?: float, "accepted"?: bool, "worst_violation"?: str}],   # losses as the optimiser
                                        # weighs them: hour-weighted mean over the levels
           "economics"?: planner.study.economics.EconomicResult.as_dict(),
         }, ...
@@ -353,7 +353,8 @@ def _build(data: dict) -> dict[str, Table]:
         for c in a.get("convergence") or []:
             conv.append({"alternative": an, "iteration": c.get("iteration"),
                          "predicted_mw": _f(c.get("predicted_mw")), "ac_mw": _f(c.get("ac_mw")),
-                         "trust": _f(c.get("trust")), "accepted": c.get("accepted")})
+                         "trust": _f(c.get("trust")), "accepted": c.get("accepted"),
+                         "worst_violation": c.get("worst_violation") or ""})
         e = a.get("economics") or {}
         capital = _f(e.get("capital_cost", a.get("capital_cost")))
         if e:
@@ -426,7 +427,8 @@ def _build(data: dict) -> dict[str, Table]:
     T["convergence"] = Table("convergence", [
         ("alternative", "Alternative", "text"), ("iteration", "Iteration", "int"),
         ("predicted_mw", "Linear prediction (MW)", "mw"), ("ac_mw", "AC load flow (MW)", "mw"),
-        ("trust", "Trust region", "scale"), ("accepted", "Accepted", "bool")], conv)
+        ("trust", "Trust region", "scale"), ("accepted", "Accepted", "bool"),
+        ("worst_violation", "Worst limit breach", "text")], conv)
     T["economics"] = Table("economics", [
         ("alternative", "Alternative", "text"), ("level", "Load level", "text"),
         ("energy_before_mwh", "Loss energy before (MWh/yr)", "mwh"),

@@ -244,7 +244,8 @@ def _alternative_data(spec, alt, plan: PlanResult, cases, c0, names_by_bus, hour
         mean = lambda d: (float(sum(d[n] * hours[n] for n in names) / total_h)  # noqa: E731
                           if d is not None and all(np.isfinite(d[n]) for n in names) else None)
         conv.append({"iteration": int(e["iteration"]), "predicted_mw": mean(pred), "ac_mw": mean(ac),
-                     "trust": e.get("radius_v"), "accepted": bool(e["accepted"])})
+                     "trust": e.get("radius_v"), "accepted": bool(e["accepted"]),
+                     "worst_violation": e.get("worst_violation")})
     out = {
         "name": alt.name, "description": alt.description, "verified": bool(plan.verified),
         "message": plan.message, "status": plan.status, "capital_cost": plan.capital_cost,
