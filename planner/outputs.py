@@ -13,9 +13,10 @@ def write_text_atomic(path, text: str) -> Path:
     """Write ``text`` to ``path`` so that readers see the old file or the new one, never a part.
 
     >>> import tempfile, pathlib
-    >>> p = pathlib.Path(tempfile.mkdtemp()) / "out.txt"
-    >>> _ = write_text_atomic(p, "hello")
-    >>> p.read_text()
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     p = pathlib.Path(d) / "out.txt"
+    ...     _ = write_text_atomic(p, "hello")
+    ...     p.read_text()
     'hello'
     """
     target = Path(path)

@@ -39,6 +39,7 @@ found: a mismatch means a record was lost or added, and is an error.
 >>> back = read_cdf(path)
 >>> back.buses.kind.tolist(), float(back.generators.v_set_pu[0]), float(back.loads.p_mw[0])
 (['slack', 'PQ'], 1.02, 50.0)
+>>> import shutil; shutil.rmtree(os.path.dirname(path))
 """
 from __future__ import annotations
 

@@ -22,6 +22,7 @@ format is an ``InputError`` naming the path.
 >>> write_network(net, os.path.join(d, "two.cdf"), format="cdf")
 >>> [float(read_network(os.path.join(d, p)).loads.p_mw.sum()) for p in ("two", "two.cdf")]
 [50.0, 50.0]
+>>> import shutil; shutil.rmtree(d)
 """
 from __future__ import annotations
 

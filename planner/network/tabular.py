@@ -36,6 +36,7 @@ target, then swapped in).
 ['buses.csv', 'generators.csv', 'lines.csv']
 >>> read_tables(folder).lines.x_pu.tolist()
 [0.2]
+>>> import shutil; shutil.rmtree(os.path.dirname(folder))
 """
 from __future__ import annotations
 

@@ -44,10 +44,11 @@ def write_report_folder(folder: str | os.PathLike, files: Mapping[str, str | byt
     Returns the folder path.
 
     >>> import tempfile, pathlib
-    >>> d = pathlib.Path(tempfile.mkdtemp()) / "report"
-    >>> _ = write_report_folder(d, {"a.txt": "one"})
-    >>> _ = write_report_folder(d, {"b.txt": b"two"})
-    >>> sorted(p.name for p in d.iterdir() if not p.name.startswith("."))
+    >>> with tempfile.TemporaryDirectory() as top:
+    ...     d = pathlib.Path(top) / "report"
+    ...     _ = write_report_folder(d, {"a.txt": "one"})
+    ...     _ = write_report_folder(d, {"b.txt": b"two"})
+    ...     sorted(p.name for p in d.iterdir() if not p.name.startswith("."))
     ['b.txt']
     """
     target = Path(folder)

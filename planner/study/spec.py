@@ -211,6 +211,7 @@ def read_study(path) -> StudySpec:
     ... except Exception as e:
     ...     print(e)
     bad.toml: levels[0].hours: must be a positive number, got -5.0
+    >>> import shutil; shutil.rmtree(d)
     """
     file = Path(path)
     try:
