@@ -48,10 +48,10 @@ def dense_from_network(net) -> DenseCase:
     gs = np.zeros(n)
     for row in net.buses.itertuples(index=False):
         k = pos[int(row.bus)]
-        y[k, k] += (row.gs_mw + 1j * row.bs_mvar) / base
-        gs[k] += row.gs_mw / base
+        y[k, k] += (row.shunt_draw_mw + 1j * row.shunt_supply_mvar) / base
+        gs[k] += row.shunt_draw_mw / base
     for row in net.shunts.itertuples(index=False):
-        if row.in_service:
+        if row.energised:
             y[pos[int(row.bus)], pos[int(row.bus)]] += 1j * row.mvar_per_step * row.steps_on / base
 
     def add_branch(i, j, r, x, b, a):
@@ -63,10 +63,10 @@ def dense_from_network(net) -> DenseCase:
         y[j, i] += -ys / a
 
     for row in net.lines.itertuples(index=False):
-        if row.in_service:
+        if row.energised:
             add_branch(pos[int(row.from_bus)], pos[int(row.to_bus)], row.r_pu, row.x_pu, row.b_pu, 1.0)
     for row in net.transformers.itertuples(index=False):
-        if not row.in_service:
+        if not row.energised:
             continue
         a = row.ratio_pu * np.exp(1j * np.deg2rad(row.shift_deg))
         i, j = pos[int(row.from_bus)], pos[int(row.to_bus)]
@@ -79,22 +79,22 @@ def dense_from_network(net) -> DenseCase:
     has_gen = np.zeros(n, bool)
     vset = np.ones(n)
     for row in net.generators.itertuples(index=False):
-        if not row.in_service:
+        if not row.energised:
             continue
         k = pos[int(row.bus)]
         if not has_gen[k]:
             vset[k] = row.v_set_pu          # the first in-service generator sets the voltage
         has_gen[k] = True
-        p_gen[k] += row.p_mw / base
-        q_gen[k] += row.q_mvar / base
+        p_gen[k] += row.mw / base
+        q_gen[k] += row.mvar / base
         qmin[k] += row.q_min_mvar / base
         qmax[k] += row.q_max_mvar / base
     load_p, load_i, load_z = (np.zeros(n, complex) for _ in range(3))
     for row in net.loads.itertuples(index=False):
-        if not row.in_service:
+        if not row.energised:
             continue
         k = pos[int(row.bus)]
-        p, q = row.p_mw / base, row.q_mvar / base
+        p, q = row.mw / base, row.mvar / base
         load_p[k] += p * (1 - row.p_share_i - row.p_share_z) + 1j * q * (1 - row.q_share_i - row.q_share_z)
         load_i[k] += p * row.p_share_i + 1j * q * row.q_share_i
         load_z[k] += p * row.p_share_z + 1j * q * row.q_share_z

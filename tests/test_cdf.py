@@ -49,18 +49,18 @@ def test_ieee14_published_case():
     t = net.transformers.set_index("xfmr_id")
     assert t.loc[["4-7", "4-9", "5-6"], "ratio_pu"].tolist() == [0.978, 0.969, 0.932]
     assert (t.tap_side == "from").all() and not t.adjustable.any()
-    assert net.loads.p_mw.sum() == pytest.approx(259.0, abs=1e-9)
-    assert net.loads.q_mvar.sum() == pytest.approx(73.5, abs=1e-9)
+    assert net.loads.mw.sum() == pytest.approx(259.0, abs=1e-9)
+    assert net.loads.mvar.sum() == pytest.approx(73.5, abs=1e-9)
     b = net.buses.set_index("bus")
-    assert b.loc[9, "bs_mvar"] == pytest.approx(19.0, abs=1e-12)
-    assert (b.bs_mvar.drop(9) == 0).all()
+    assert b.loc[9, "shunt_supply_mvar"] == pytest.approx(19.0, abs=1e-12)
+    assert (b.shunt_supply_mvar.drop(9) == 0).all()
     assert b.kind.to_dict() == {1: "slack", 2: "PV", 3: "PV", 4: "PQ", 5: "PQ", 6: "PV", 7: "PQ",
                                 8: "PV", 9: "PQ", 10: "PQ", 11: "PQ", 12: "PQ", 13: "PQ", 14: "PQ"}
     # Stored solution of the published case.
     assert (b.loc[14, "v_pu"], b.loc[14, "angle_deg"]) == (1.036, -16.04)
     g = net.generators.set_index("gen_id")
     assert list(g.index) == ["G1", "G2", "G3", "G6", "G8"]
-    assert g.loc["G1", "p_mw"] == 232.4
+    assert g.loc["G1", "mw"] == 232.4
     assert (g.loc["G2", "q_min_mvar"], g.loc["G2", "q_max_mvar"], g.loc["G2", "v_set_pu"]) == (-40.0, 50.0, 1.045)
     # The slack bus of the file gives 0/0 reactive limits: read as unlimited.
     assert (g.loc["G1", "q_min_mvar"], g.loc["G1", "q_max_mvar"]) == (-9999.0, 9999.0)
@@ -74,14 +74,14 @@ def test_ieee30_published_case():
     assert len(net.buses) == 30
     assert len(net.lines) + len(net.transformers) == 41
     assert sorted(net.transformers.ratio_pu) == [0.932, 0.968, 0.969, 0.978]
-    assert net.loads.p_mw.sum() == pytest.approx(283.4, abs=1e-9)
-    assert net.loads.q_mvar.sum() == pytest.approx(126.2, abs=1e-9)
+    assert net.loads.mw.sum() == pytest.approx(283.4, abs=1e-9)
+    assert net.loads.mvar.sum() == pytest.approx(126.2, abs=1e-9)
     b = net.buses.set_index("bus")
-    assert b.loc[10, "bs_mvar"] == pytest.approx(19.0) and b.loc[24, "bs_mvar"] == pytest.approx(4.3)
+    assert b.loc[10, "shunt_supply_mvar"] == pytest.approx(19.0) and b.loc[24, "shunt_supply_mvar"] == pytest.approx(4.3)
     assert b.loc[9, "base_kv"] == 1.0 and b.loc[1, "base_kv"] == 132.0
     assert b.loc[1, "name"] == "Glen Lyn 132"
     g = net.generators.set_index("gen_id")
-    assert (g.loc["G2", "q_max_mvar"], g.loc["G2", "q_mvar"]) == (50.0, 50.0)
+    assert (g.loc["G2", "q_max_mvar"], g.loc["G2", "mvar"]) == (50.0, 50.0)
 
 
 def test_read_network_validates_the_published_cases():
@@ -117,7 +117,7 @@ def test_tape_line_short_lines_and_blank_fields(tmp_path):
     lines = lines[: end + 1] + ["END OF DATA"]
     net = read_cdf(write_variant(tmp_path, lines))
     b = net.buses.set_index("bus")
-    assert b.loc[4, "angle_deg"] == 0.0 and b.loc[4, "v_pu"] == 1.019 and b.loc[4, "bs_mvar"] == 0.0
+    assert b.loc[4, "angle_deg"] == 0.0 and b.loc[4, "v_pu"] == 1.019 and b.loc[4, "shunt_supply_mvar"] == 0.0
     ln = net.lines.set_index("line_id")
     assert tuple(ln.loc["1-2", ["r_pu", "x_pu", "b_pu", "rating_mva"]]) == (0.01938, 0.05917, 0.0528, 0.0)
     assert len(net.lines) == 17 and len(net.transformers) == 3
@@ -233,11 +233,11 @@ def test_writer_keeps_ids_taps_and_parallel_circuits(tmp_path):
     net = Network(base_mva=50.0, name="edge cases",
         buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack", "name": "Alpha"},
                                    {"bus": 2, "base_kv": 20.0, "kind": "PV"},
-                                   {"bus": 3, "base_kv": 20.0, "kind": "PQ", "bs_mvar": 2.5}]),
-        generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0, "v_set_pu": 1.03},
-                                             {"gen_id": "G2", "bus": 2, "p_mw": 12.5, "v_set_pu": 1.01,
+                                   {"bus": 3, "base_kv": 20.0, "kind": "PQ", "shunt_supply_mvar": 2.5}]),
+        generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "mw": 0.0, "v_set_pu": 1.03},
+                                             {"gen_id": "G2", "bus": 2, "mw": 12.5, "v_set_pu": 1.01,
                                               "q_min_mvar": -5.0, "q_max_mvar": 8.0}]),
-        loads=make_table("loads", [{"load_id": "D3", "bus": 3, "p_mw": 20.0, "q_mvar": 7.25}]),
+        loads=make_table("loads", [{"load_id": "D3", "bus": 3, "mw": 20.0, "mvar": 7.25}]),
         lines=make_table("lines", [{"line_id": "2-3#1", "from_bus": 2, "to_bus": 3, "r_pu": 0.02, "x_pu": 0.06},
                                    {"line_id": "2-3#2", "from_bus": 2, "to_bus": 3, "r_pu": 0.025, "x_pu": 0.07,
                                     "b_pu": 0.003, "rating_mva": 40.0}]),

@@ -136,8 +136,8 @@ def test_flow_does_not_import_pyomo():
 
 def test_flow_not_converged_exits_nonzero_with_worst_bus(tmp_path):
     net = read_network(CDF14).copy()
-    net.loads["p_mw"] *= 20.0
-    net.loads["q_mvar"] *= 20.0
+    net.loads["mw"] *= 20.0
+    net.loads["mvar"] *= 20.0
     write_network(net, tmp_path / "heavy14")
     p = run_cli("flow", tmp_path / "heavy14", "--json", tmp_path / "heavy.json")
     assert p.returncode != 0
@@ -178,7 +178,7 @@ BAD_INPUTS = {
     "tabular unknown column": (lambda t: _tables_with(t, "lines.csv", 1, "r_ohm", "r_ohms"),
                                ["lines.csv", "r_ohms"]),
     "tabular letter in number": (lambda t: _tables_with(t, "loads.csv", 4, "120", "1x0"),
-                                 ["loads.csv:4", "p_kw", "1x0"]),
+                                 ["loads.csv:4", "kw", "1x0"]),
     # branch record 1-2 (line 19) made to start at bus 99, which the file does not have
     "cdf branch to unknown bus": (lambda t: _cdf_with(t, "orphan14.txt", 19, "   1    2", "  99    2"),
                                   ["orphan14.txt", "'99-2'", "from_bus", "99"]),
@@ -207,7 +207,7 @@ def _with_banks(net, mvar_by_bus):
     """A copy of ``net`` with capacitor banks added as bus shunts (Mvar at 1.0 pu)."""
     out = net.copy()
     for bus, mvar in mvar_by_bus.items():
-        out.buses.loc[out.buses["bus"] == bus, "bs_mvar"] += mvar
+        out.buses.loc[out.buses["bus"] == bus, "shunt_supply_mvar"] += mvar
     return out
 
 

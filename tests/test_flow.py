@@ -48,9 +48,9 @@ def build_feeder33() -> Network:
                                   "r_pu": ohm_to_pu(r.r_ohm, FEEDER_KV, FEEDER_BASE_MVA),
                                   "x_pu": ohm_to_pu(r.x_ohm, FEEDER_KV, FEEDER_BASE_MVA)}
                                  for r in br.itertuples()])
-    loads = make_table("loads", [{"load_id": f"D{r.bus}", "bus": r.bus, "p_mw": kw_to_mw(r.p_kw),
-                                  "q_mvar": kvar_to_mvar(r.q_kvar)} for r in ld.itertuples()])
-    gens = make_table("generators", [{"gen_id": "S1", "bus": 1, "p_mw": 0.0, "v_set_pu": 1.0}])
+    loads = make_table("loads", [{"load_id": f"D{r.bus}", "bus": r.bus, "mw": kw_to_mw(r.kw),
+                                  "mvar": kvar_to_mvar(r.kvar)} for r in ld.itertuples()])
+    gens = make_table("generators", [{"gen_id": "S1", "bus": 1, "mw": 0.0, "v_set_pu": 1.0}])
     return Network(base_mva=FEEDER_BASE_MVA, name="feeder33", buses=buses, lines=lines, loads=loads,
                    generators=gens)
 
@@ -71,8 +71,8 @@ def net33():
 
 def two_bus(*, load=(50.0, 20.0), r=0.0, x=0.1, shares=None, gen2=None, kind2="PQ", v1=1.0) -> Network:
     """Slack bus 1 at ``v1`` feeding bus 2 through one line; optional generator(s) at bus 2."""
-    ld = {"load_id": "D2", "bus": 2, "p_mw": load[0], "q_mvar": load[1], **(shares or {})}
-    gens = [{"gen_id": "G1", "bus": 1, "p_mw": 0.0, "v_set_pu": v1}] + list(gen2 or [])
+    ld = {"load_id": "D2", "bus": 2, "mw": load[0], "mvar": load[1], **(shares or {})}
+    gens = [{"gen_id": "G1", "bus": 1, "mw": 0.0, "v_set_pu": v1}] + list(gen2 or [])
     return Network(base_mva=100.0,
                    buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack"},
                                               {"bus": 2, "base_kv": 110.0, "kind": kind2}]),
@@ -118,7 +118,7 @@ def test_ieee30_with_reactive_limits_matches_cdf(net30, flowcheck):
     # IEEE CDF file (and its data notes): bus 2 sits at its upper limit, 50 Mvar
     assert res.limited_buses == [2]
     g2 = res.generators.set_index("gen_id").loc["G2"]
-    assert g2.q_mvar == pytest.approx(50.0, abs=1e-6) and g2.at_limit == "max"
+    assert g2.mvar == pytest.approx(50.0, abs=1e-6) and g2.at_limit == "max"
     assert b.loc[2, "kind"] == "PQ" and b.loc[2, "v_pu"] < 1.045
     flowcheck.check(res, flowcheck.from_raw(raw))
 
@@ -129,7 +129,7 @@ def test_ieee30_without_limits_losses(net30, flowcheck):
     # total active losses 17.557 MW, limits not enforced (from memory)
     assert res.losses_mw == pytest.approx(17.557, abs=0.001)
     g2 = res.generators.set_index("gen_id").loc["G2"]
-    assert g2.q_mvar > 50.0                      # what bus 2 would need to hold 1.045 pu
+    assert g2.mvar > 50.0                      # what bus 2 would need to hold 1.045 pu
     assert res.buses.set_index("bus").loc[2, "v_pu"] == pytest.approx(1.045, abs=1e-12)
     flowcheck.check(res, flowcheck.from_raw(raw_cases.ieee30()), limits=False)
 
@@ -216,7 +216,7 @@ LOAD2 = (40.0, 50.0)          # MW, Mvar at bus 2
 
 
 def gen_at_2(q_max, q_min=-9999.0, v_set=1.0):
-    return [{"gen_id": "G2", "bus": 2, "p_mw": 0.0, "v_set_pu": v_set, "q_min_mvar": q_min,
+    return [{"gen_id": "G2", "bus": 2, "mw": 0.0, "v_set_pu": v_set, "q_min_mvar": q_min,
              "q_max_mvar": q_max}]
 
 
@@ -227,7 +227,7 @@ def test_pv_bus_over_its_maximum_becomes_pq_at_the_limit(flowcheck):
     b = res.buses.set_index("bus").loc[2]
     assert b.kind == "PQ" and b.q_gen_mvar == pytest.approx(20.0, abs=1e-9)
     assert res.generators.set_index("gen_id").loc["G2", "at_limit"] == "max"
-    assert res.generators.set_index("gen_id").loc["G2", "q_mvar"] == pytest.approx(20.0, abs=1e-9)
+    assert res.generators.set_index("gen_id").loc["G2", "mvar"] == pytest.approx(20.0, abs=1e-9)
     # closed form: constant-power load 40 + j(50 - 20) behind R + jX
     v_exact = pq_voltage(1.0, R2, X2, 0.4, 0.3)
     assert b.v_pu == pytest.approx(v_exact, abs=1e-10) and b.v_pu < 1.0
@@ -311,10 +311,10 @@ def test_warm_start_keeps_a_limit_that_still_binds(flowcheck):
 # --- several generators, out-of-service elements ----------------------------------------------
 
 def test_several_generators_share_q_in_proportion_to_their_ranges(flowcheck):
-    gens = [{"gen_id": "A", "bus": 2, "p_mw": 10.0, "v_set_pu": 1.0, "q_min_mvar": -10.0, "q_max_mvar": 60.0},
-            {"gen_id": "B", "bus": 2, "p_mw": 5.0, "v_set_pu": 1.0, "q_min_mvar": -10.0, "q_max_mvar": 20.0},
-            {"gen_id": "C", "bus": 2, "p_mw": 7.0, "v_set_pu": 1.0, "q_min_mvar": 0.0, "q_max_mvar": 0.0,
-             "in_service": False}]
+    gens = [{"gen_id": "A", "bus": 2, "mw": 10.0, "v_set_pu": 1.0, "q_min_mvar": -10.0, "q_max_mvar": 60.0},
+            {"gen_id": "B", "bus": 2, "mw": 5.0, "v_set_pu": 1.0, "q_min_mvar": -10.0, "q_max_mvar": 20.0},
+            {"gen_id": "C", "bus": 2, "mw": 7.0, "v_set_pu": 1.0, "q_min_mvar": 0.0, "q_max_mvar": 0.0,
+             "energised": False}]
     net = two_bus(load=LOAD2, r=R2, x=X2, kind2="PV", gen2=gens)
     res = solve_flow(net)
     assert res.converged and res.limited_buses == []
@@ -323,24 +323,24 @@ def test_several_generators_share_q_in_proportion_to_their_ranges(flowcheck):
     assert "C" not in g.index
     # result.py generator_table: Q_g = Qmin_g + (Q_bus - Qmin_bus) * range_g / range_bus
     assert 40.0 < q_bus < 80.0                   # both generators produce, neither at a limit
-    assert g.loc["A", "q_mvar"] == pytest.approx(-10.0 + (q_bus + 20.0) * 70.0 / 100.0, abs=1e-9)
-    assert g.loc["B", "q_mvar"] == pytest.approx(-10.0 + (q_bus + 20.0) * 30.0 / 100.0, abs=1e-9)
-    assert g.loc[["A", "B"], "q_mvar"].sum() == pytest.approx(q_bus, abs=1e-9)
+    assert g.loc["A", "mvar"] == pytest.approx(-10.0 + (q_bus + 20.0) * 70.0 / 100.0, abs=1e-9)
+    assert g.loc["B", "mvar"] == pytest.approx(-10.0 + (q_bus + 20.0) * 30.0 / 100.0, abs=1e-9)
+    assert g.loc[["A", "B"], "mvar"].sum() == pytest.approx(q_bus, abs=1e-9)
     assert list(g.at_limit) == ["", "", ""]
-    assert g.loc["A", "p_mw"] == 10.0 and g.loc["B", "p_mw"] == 5.0
+    assert g.loc["A", "mw"] == 10.0 and g.loc["B", "mw"] == 5.0
     assert res.buses.set_index("bus").loc[2, "p_gen_mw"] == pytest.approx(15.0, abs=1e-12)
     flowcheck.check(res, flowcheck.from_network(net))
 
 
 def test_several_generators_at_the_summed_limit_each_at_its_own_limit(flowcheck):
-    gens = [{"gen_id": "A", "bus": 2, "p_mw": 0.0, "v_set_pu": 1.0, "q_min_mvar": -10.0, "q_max_mvar": 12.0},
-            {"gen_id": "B", "bus": 2, "p_mw": 0.0, "v_set_pu": 1.0, "q_min_mvar": -4.0, "q_max_mvar": 8.0}]
+    gens = [{"gen_id": "A", "bus": 2, "mw": 0.0, "v_set_pu": 1.0, "q_min_mvar": -10.0, "q_max_mvar": 12.0},
+            {"gen_id": "B", "bus": 2, "mw": 0.0, "v_set_pu": 1.0, "q_min_mvar": -4.0, "q_max_mvar": 8.0}]
     net = two_bus(load=LOAD2, r=R2, x=X2, kind2="PV", gen2=gens)
     res = solve_flow(net)
     assert res.limited_buses == [2]
     g = res.generators.set_index("gen_id")
-    assert g.loc["A", "q_mvar"] == pytest.approx(12.0, abs=1e-9)
-    assert g.loc["B", "q_mvar"] == pytest.approx(8.0, abs=1e-9)
+    assert g.loc["A", "mvar"] == pytest.approx(12.0, abs=1e-9)
+    assert g.loc["B", "mvar"] == pytest.approx(8.0, abs=1e-9)
     assert list(g.loc[["A", "B"], "at_limit"]) == ["max", "max"] and g.loc["G1", "at_limit"] == ""
     assert res.buses.set_index("bus").loc[2, "v_pu"] == pytest.approx(
         pq_voltage(1.0, R2, X2, 0.4, 0.3), abs=1e-10)
@@ -355,12 +355,12 @@ def triangle(**line_service) -> Network:
         {"line_id": "L12", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.08, "b_pu": 0.02},
         {"line_id": "L13", "from_bus": 1, "to_bus": 3, "r_pu": 0.02, "x_pu": 0.10, "b_pu": 0.02},
         {"line_id": "L23", "from_bus": 2, "to_bus": 3, "r_pu": 0.015, "x_pu": 0.09, "b_pu": 0.02,
-         "in_service": line_service.get("L23", True)}])
+         "energised": line_service.get("L23", True)}])
     gens = make_table("generators", [
-        {"gen_id": "G1", "bus": 1, "p_mw": 0.0, "v_set_pu": 1.02},
-        {"gen_id": "G2", "bus": 2, "p_mw": 40.0, "v_set_pu": 1.01, "in_service": line_service.get("G2", True)}])
-    loads = make_table("loads", [{"load_id": "D2", "bus": 2, "p_mw": 20.0, "q_mvar": 10.0},
-                                 {"load_id": "D3", "bus": 3, "p_mw": 60.0, "q_mvar": 25.0}])
+        {"gen_id": "G1", "bus": 1, "mw": 0.0, "v_set_pu": 1.02},
+        {"gen_id": "G2", "bus": 2, "mw": 40.0, "v_set_pu": 1.01, "energised": line_service.get("G2", True)}])
+    loads = make_table("loads", [{"load_id": "D2", "bus": 2, "mw": 20.0, "mvar": 10.0},
+                                 {"load_id": "D3", "bus": 3, "mw": 60.0, "mvar": 25.0}])
     return Network(buses=buses, lines=lines, generators=gens, loads=loads)
 
 
@@ -405,8 +405,8 @@ def test_network_is_not_modified_by_a_solve(net14):
 
 def test_heavily_overloaded_case_fails_cleanly(net14):
     over = net14.copy()
-    over.loads["p_mw"] *= 20.0
-    over.loads["q_mvar"] *= 20.0
+    over.loads["mw"] *= 20.0
+    over.loads["mvar"] *= 20.0
     res = solve_flow(over)
     assert res.converged is False and res.status != 0
     assert res.message and not res.message.startswith("converged in")

@@ -66,14 +66,14 @@ def networks(draw):
     for k in range(n):
         kind = "slack" if k == 0 else ("PV" if draw(st.integers(0, 4)) == 0 else "PQ")
         buses.append({"bus": k, "base_kv": 110.0, "kind": kind,
-                      "gs_mw": draw(st.sampled_from([0.0, 0.0, 0.0, 2.0])),
-                      "bs_mvar": draw(st.sampled_from([0.0, 0.0, 0.0, 10.0, -5.0])),
+                      "shunt_draw_mw": draw(st.sampled_from([0.0, 0.0, 0.0, 2.0])),
+                      "shunt_supply_mvar": draw(st.sampled_from([0.0, 0.0, 0.0, 10.0, -5.0])),
                       "angle_deg": draw(st.floats(-20.0, 20.0)) if k == 0 else 0.0})
         if k and draw(st.booleans()):
             p = draw(st.floats(0.0, 40.0))
             pi = draw(st.floats(0.0, 0.5))
             pz = draw(st.floats(0.0, 0.5))
-            loads.append({"load_id": f"D{k}", "bus": k, "p_mw": p, "q_mvar": p * draw(st.floats(-0.2, 0.6)),
+            loads.append({"load_id": f"D{k}", "bus": k, "mw": p, "mvar": p * draw(st.floats(-0.2, 0.6)),
                           "p_share_i": pi, "p_share_z": pz, "q_share_i": pz, "q_share_z": pi})
         if kind != "PQ":
             v_set = draw(st.floats(0.98, 1.05))
@@ -81,11 +81,11 @@ def networks(draw):
             q_max = 9999.0 if wide else draw(st.floats(10.0, 100.0))
             q_min = -9999.0 if wide else -draw(st.floats(0.0, 50.0))
             p_gen = 0.0 if kind == "slack" else draw(st.floats(0.0, 50.0))
-            gens.append({"gen_id": f"G{k}", "bus": k, "p_mw": p_gen, "v_set_pu": v_set,
+            gens.append({"gen_id": f"G{k}", "bus": k, "mw": p_gen, "v_set_pu": v_set,
                          "q_min_mvar": q_min, "q_max_mvar": q_max})
             if kind == "PV" and draw(st.integers(0, 3)) == 0:
                 # a second unit on the same bus, same setpoint
-                gens.append({"gen_id": f"G{k}b", "bus": k, "p_mw": draw(st.floats(0.0, 20.0)),
+                gens.append({"gen_id": f"G{k}b", "bus": k, "mw": draw(st.floats(0.0, 20.0)),
                              "v_set_pu": v_set, "q_min_mvar": -20.0, "q_max_mvar": 30.0})
         if k and draw(st.integers(0, 5)) == 0:
             shunts.append({"shunt_id": f"S{k}", "bus": k, "mvar_per_step": 3.0, "steps_max": 4,
@@ -95,19 +95,19 @@ def networks(draw):
     # (sum over tree branches of |z| x power carried, all of it assumed to flow one way) is small
     power = np.zeros(n)
     for d in loads:
-        power[d["bus"]] += abs(complex(d["p_mw"], d["q_mvar"])) / BASE
+        power[d["bus"]] += abs(complex(d["mw"], d["mvar"])) / BASE
     for g in gens:
-        power[g["bus"]] += g["p_mw"] / BASE
+        power[g["bus"]] += g["mw"] / BASE
     below = power.copy()
     for child in range(n - 1, 0, -1):      # parents have lower numbers: one backward sweep
         below[parent[child - 1]] += below[child]
     drop = float((z_tree * below)[1:].sum())
     scale = min(1.0, TARGET_DROP_PU / drop) if drop > 0 else 1.0
     for d in loads:
-        d["p_mw"] *= scale
-        d["q_mvar"] *= scale
+        d["mw"] *= scale
+        d["mvar"] *= scale
     for g in gens:
-        g["p_mw"] *= scale
+        g["mw"] *= scale
 
     return Network(base_mva=BASE, name=f"random{n}",
                    buses=make_table("buses", buses), lines=make_table("lines", lines),
@@ -127,9 +127,9 @@ def test_random_network_solves_and_balances(net, flowcheck):
     b = res.buses.set_index("bus")
     assert b.loc[slack.bus, "angle_deg"] == pytest.approx(slack.angle_deg, abs=1e-9)
     # generators on one bus add up to the bus generation
-    g = res.generators.groupby("bus")[["p_mw", "q_mvar"]].sum()
-    np.testing.assert_allclose(g.q_mvar, b.loc[g.index, "q_gen_mvar"], atol=1e-9)
-    np.testing.assert_allclose(g.p_mw, b.loc[g.index, "p_gen_mw"], atol=1e-9)
+    g = res.generators.groupby("bus")[["mw", "mvar"]].sum()
+    np.testing.assert_allclose(g.mvar, b.loc[g.index, "q_gen_mvar"], atol=1e-9)
+    np.testing.assert_allclose(g.mw, b.loc[g.index, "p_gen_mw"], atol=1e-9)
 
 
 def renumbered(net: Network, new_ids, rng: random.Random) -> Network:
@@ -166,4 +166,4 @@ def test_renumbering_buses_leaves_the_solution_unchanged(net, data):
     assert sorted(b.limited_buses) == sorted(dict(zip(net.buses.bus, new_ids))[k] for k in a.limited_buses)
     ga = a.generators.set_index("gen_id").sort_index()
     gb = b.generators.set_index("gen_id").loc[ga.index]
-    np.testing.assert_allclose(gb.q_mvar, ga.q_mvar, atol=1e-7, rtol=0)
+    np.testing.assert_allclose(gb.mvar, ga.mvar, atol=1e-7, rtol=0)

@@ -53,8 +53,8 @@ def scaled(net, k):
     """A copy of ``net`` with every load scaled by ``k`` (the input is not modified)."""
     out = copy.deepcopy(net)
     out.loads = out.loads.copy()
-    out.loads["p_mw"] = out.loads["p_mw"] * k
-    out.loads["q_mvar"] = out.loads["q_mvar"] * k
+    out.loads["mw"] = out.loads["mw"] * k
+    out.loads["mvar"] = out.loads["mvar"] * k
     return out
 
 

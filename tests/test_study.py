@@ -314,10 +314,10 @@ CANDIDATES = {14, 18, 30, 33}
 def solve_level(level, mvar_by_bus=None):
     """Independent AC load flow of the feeder at a level: loads scaled here, banks as bus shunts."""
     net = read_network(FEEDER).copy()
-    net.loads["p_mw"] = net.loads["p_mw"] * SCALE[level]
-    net.loads["q_mvar"] = net.loads["q_mvar"] * SCALE[level]
+    net.loads["mw"] = net.loads["mw"] * SCALE[level]
+    net.loads["mvar"] = net.loads["mvar"] * SCALE[level]
     for bus, mvar in (mvar_by_bus or {}).items():
-        net.buses.loc[net.buses["bus"] == bus, "bs_mvar"] += mvar
+        net.buses.loc[net.buses["bus"] == bus, "shunt_supply_mvar"] += mvar
     res = solve_flow(net)
     assert res.converged
     return res

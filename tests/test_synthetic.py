@@ -24,8 +24,8 @@ def n_components(net):
     """Connected components of the in-service branch graph, counting isolated buses."""
     ids = net.buses.bus.to_numpy()
     pos = pd.Index(ids)
-    br = pd.concat([net.lines[net.lines.in_service][["from_bus", "to_bus"]],
-                    net.transformers[net.transformers.in_service][["from_bus", "to_bus"]]])
+    br = pd.concat([net.lines[net.lines.energised][["from_bus", "to_bus"]],
+                    net.transformers[net.transformers.energised][["from_bus", "to_bus"]]])
     f = pos.get_indexer(br.from_bus)
     t = pos.get_indexer(br.to_bus)
     assert (f >= 0).all() and (t >= 0).all(), "branch to an unknown bus"
@@ -43,7 +43,7 @@ def check_wellformed(net):
     assert n_components(net) == 1
     # every PV or slack bus has an in-service plant
     ctrl = set(b.bus[b.kind != "PQ"])
-    assert ctrl <= set(net.generators.bus[net.generators.in_service])
+    assert ctrl <= set(net.generators.bus[net.generators.energised])
     assert (net.lines.x_pu > 0).all() and (net.lines.r_pu >= 0).all()
 
 
@@ -72,9 +72,9 @@ def test_meshed_grid_size_and_structure():
     assert net.lines.x_pu.min() >= 15 * 0.38 / zb - 1e-9
     assert net.lines.x_pu.max() <= 45 * 1.4143 * 0.42 / zb + 1e-9
     # dispatch covers load and a margin for losses
-    assert net.loads.p_mw.sum() < g.p_mw.sum() < 1.03 * net.loads.p_mw.sum()
+    assert net.loads.mw.sum() < g.mw.sum() < 1.03 * net.loads.mw.sum()
     assert (g.q_max_mvar > 0).all() and (g.q_min_mvar < 0).all()
-    pf = net.loads.p_mw / np.hypot(net.loads.p_mw, net.loads.q_mvar)
+    pf = net.loads.mw / np.hypot(net.loads.mw, net.loads.mvar)
     assert pf.between(0.899, 0.971).all()
 
 
@@ -144,8 +144,8 @@ def test_tiled_demo_base_offset():
     check_wellformed(big)
     # converted slack plant schedules at least its copy's load less the other plants
     g = big.generators.set_index("gen_id")
-    need = demo.loads.p_mw.sum() - demo.generators.p_mw[demo.buses.set_index("bus").kind[demo.generators.bus].to_numpy() != "slack"].sum()
-    assert g.loc["G-WRENFOLD/2", "p_mw"] >= need
+    need = demo.loads.mw.sum() - demo.generators.mw[demo.buses.set_index("bus").kind[demo.generators.bus].to_numpy() != "slack"].sum()
+    assert g.loc["G-WRENFOLD/2", "mw"] >= need
 
 
 def test_tiled_rejects_bad_input(ieee30):
@@ -168,7 +168,7 @@ def test_meshed_grid_thousand_buses_solves():
     v = res.buses.v_pu
     assert v.between(0.9, 1.1).all()
     # losses of a 132 kV mesh: a small positive share of the load
-    load = net.loads.p_mw.sum()
+    load = net.loads.mw.sum()
     assert 0.005 * load < res.losses_mw < 0.05 * load
 
 

@@ -20,11 +20,11 @@ def base_net() -> Network:
                                    {"bus": 2, "base_kv": 110.0, "kind": "PQ"},
                                    {"bus": 3, "base_kv": 110.0, "kind": "PV"},
                                    {"bus": 4, "base_kv": 20.0, "kind": "PQ"}]),
-        generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0},
-                                             {"gen_id": "G3", "bus": 3, "p_mw": 30.0, "v_set_pu": 1.02,
+        generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "mw": 0.0},
+                                             {"gen_id": "G3", "bus": 3, "mw": 30.0, "v_set_pu": 1.02,
                                               "q_min_mvar": -10.0, "q_max_mvar": 20.0}]),
-        loads=make_table("loads", [{"load_id": "D2", "bus": 2, "p_mw": 40.0, "q_mvar": 10.0},
-                                   {"load_id": "D4", "bus": 4, "p_mw": 20.0, "q_mvar": 5.0}]),
+        loads=make_table("loads", [{"load_id": "D2", "bus": 2, "mw": 40.0, "mvar": 10.0},
+                                   {"load_id": "D4", "bus": 4, "mw": 20.0, "mvar": 5.0}]),
         lines=make_table("lines", [{"line_id": "1-2", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.1},
                                    {"line_id": "2-3", "from_bus": 2, "to_bus": 3, "r_pu": 0.01, "x_pu": 0.1},
                                    {"line_id": "3-1", "from_bus": 3, "to_bus": 1, "r_pu": 0.01, "x_pu": 0.1}]),
@@ -66,12 +66,12 @@ def add(table, record):
     (set_("generators", 1, bus=6), "generators 'G3': bus: unknown bus 6"),
     (set_("shunts", 0, bus=5), "shunts 'C4': bus: unknown bus 5"),
     (add("buses", {"bus": 2, "base_kv": 110.0, "kind": "PQ"}), "buses 2: bus: duplicate id"),
-    (add("loads", {"load_id": "D2", "bus": 4, "p_mw": 1.0, "q_mvar": 0.0}), "loads 'D2': load_id: duplicate id"),
+    (add("loads", {"load_id": "D2", "bus": 4, "mw": 1.0, "mvar": 0.0}), "loads 'D2': load_id: duplicate id"),
     (add("transformers", {"xfmr_id": "1-2", "from_bus": 1, "to_bus": 4, "x_pu": 0.1}),
      "transformers '1-2': xfmr_id: same id as a line (branch ids must be unique)"),
     (set_("lines", 0, r_pu=0.0, x_pu=0.0), "lines '1-2': r_pu, x_pu: zero impedance (r = x = 0)"),
     (set_("lines", 2, to_bus=3), "lines '3-1': from_bus, to_bus: connects bus 3 to itself"),
-    (set_("loads", 1, q_mvar=np.inf), "loads 'D4': q_mvar: not a finite number (inf)"),
+    (set_("loads", 1, mvar=np.inf), "loads 'D4': mvar: not a finite number (inf)"),
     (set_("buses", 1, v_max_pu=np.nan), "buses 2: v_max_pu: not a finite number (nan)"),
     (set_("buses", 3, base_kv=-20.0), "buses 4: base_kv: must be positive, got -20.0"),
     (set_("lines", 0, x_pu=150.0), "lines '1-2': x_pu: |x_pu| = 150.0 pu is absurd (> 100)"),
@@ -87,9 +87,9 @@ def add(table, record):
     (set_("buses", 1, v_min_pu=1.1), "buses 2: v_min_pu, v_max_pu: lower limit 1.1 is not below upper limit 1.05"),
     (set_("loads", 0, p_share_z=0.7, p_share_i=0.5), "loads 'D2': p_share_i, p_share_z: shares 0.5 and 0.7 must be >= 0 with sum <= 1"),
     (set_("buses", 0, kind="PQ"), "buses: kind: no slack bus in the network"),
-    (set_("generators", 0, in_service=False), "buses 1: kind: slack bus with no in-service generator"),
-    (set_("generators", 1, in_service=False), "buses 3: kind: PV bus with no in-service generator"),
-    (set_("transformers", 0, in_service=False), "island of 1 bus with no slack bus: buses 4"),
+    (set_("generators", 0, energised=False), "buses 1: kind: slack bus with no in-service generator"),
+    (set_("generators", 1, energised=False), "buses 3: kind: PV bus with no in-service generator"),
+    (set_("transformers", 0, energised=False), "island of 1 bus with no slack bus: buses 4"),
 ])
 def test_each_problem_is_named(edit, expected):
     net = base_net()
@@ -125,9 +125,9 @@ def test_large_island_names_first_buses_and_count():
 
 def test_out_of_service_elements_are_skipped():
     net = base_net()
-    net.loads.loc[0, ["bus", "in_service"]] = [99, False]
-    net.lines.loc[0, ["x_pu", "r_pu", "in_service"]] = [0.0, 0.0, False]
-    net.shunts.loc[0, ["steps_on", "in_service"]] = [-4, False]
+    net.loads.loc[0, ["bus", "energised"]] = [99, False]
+    net.lines.loc[0, ["x_pu", "r_pu", "energised"]] = [0.0, 0.0, False]
+    net.shunts.loc[0, ["steps_on", "energised"]] = [-4, False]
     assert validate(net, include_warnings=True) == []
     # ... but their ids still count
     net.lines.loc[0, "line_id"] = "2-3"
@@ -136,7 +136,7 @@ def test_out_of_service_elements_are_skipped():
 
 def test_out_of_service_branch_splits_the_network():
     net = base_net()
-    net.lines.loc[[0, 2], "in_service"] = False    # bus 1 now stands alone with its slack
+    net.lines.loc[[0, 2], "energised"] = False    # bus 1 now stands alone with its slack
     assert validate(net) == ["island of 3 buses with no slack bus: buses 2, 3, 4"]
 
 
@@ -152,11 +152,11 @@ def test_warnings_are_separate_and_do_not_fail_check():
     # two slack buses in one island: a warning too
     net.buses.loc[1, "kind"] = "slack"
     net.generators = make_table("generators", list(net.generators.to_dict("records")) +
-                                [{"gen_id": "G2", "bus": 2, "p_mw": 0.0}])
+                                [{"gen_id": "G2", "bus": 2, "mw": 0.0}])
     assert "warning: island with 2 slack buses: 1, 2" in validate(net, include_warnings=True)
     # an isolated bus that has a load is a real problem
     net.loads = make_table("loads", list(net.loads.to_dict("records")) +
-                           [{"load_id": "D9", "bus": 9, "p_mw": 1.0, "q_mvar": 0.0}])
+                           [{"load_id": "D9", "bus": 9, "mw": 1.0, "mvar": 0.0}])
     assert "island of 1 bus with no slack bus: buses 9" in validate(net)
 
 

@@ -68,8 +68,8 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
     >>> net = Network(base_mva=100.0,
     ...     buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack"},
     ...                                {"bus": 2, "base_kv": 110.0, "kind": "PQ"}]),
-    ...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0, "v_set_pu": 1.0}]),
-    ...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "p_mw": 50.0, "q_mvar": 20.0}]),
+    ...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "mw": 0.0, "v_set_pu": 1.0}]),
+    ...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "mw": 50.0, "mvar": 20.0}]),
     ...     lines=make_table("lines", [{"line_id": "L1", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.1}]))
     >>> res = solve_flow(net)
     >>> res.converged, res.iterations

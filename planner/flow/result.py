@@ -131,8 +131,8 @@ def build_result(c: Compiled, y, v, kind, q_fixed, at_limit, *, status, message,
         res.branches = pd.DataFrame({
             "branch_id": c.branch_ids, "element": c.branch_element,
             "from_bus": c.bus_ids[c.f], "to_bus": c.bus_ids[c.t],
-            "p_from_mw": s_from.real * base, "q_from_mvar": s_from.imag * base,
-            "p_to_mw": s_to.real * base, "q_to_mvar": s_to.imag * base,
+            "from_end_mw": s_from.real * base, "from_end_mvar": s_from.imag * base,
+            "to_end_mw": s_to.real * base, "to_end_mvar": s_to.imag * base,
             "loss_mw": loss.real * base, "loss_mvar": loss.imag * base,
             "rating_mva": rating,
             "loading_pct": np.where(rating > 0, 100.0 * s_max / np.where(rating > 0, rating, 1.0), np.nan),
@@ -170,6 +170,6 @@ def generator_table(c: Compiled, kind, p_gen_bus, q_gen_bus, at_limit) -> pd.Dat
     state = np.where(at_limit[gb] > 0, "max", np.where(at_limit[gb] < 0, "min", ""))
     return pd.DataFrame({
         "gen_id": c.gen_ids, "bus": c.bus_ids[gb] if ng else np.array([], np.int64),
-        "p_mw": p * base, "q_mvar": q * base,
+        "mw": p * base, "mvar": q * base,
         "q_min_mvar": c.gen_q_min * base, "q_max_mvar": c.gen_q_max * base, "at_limit": state,
     })

@@ -14,7 +14,7 @@ Mapping to the model:
 * a generator ``G<bus>`` where there is generation or the bus is type 2 or 3; its setpoint is the
   desired voltage (the final voltage if that is 0); type 2 and 3 buses take their reactive limits
   from the max/min Mvar fields (both 0 means no limits given: +/-9999 Mvar);
-* shunt G and B (pu on the system base) -> ``gs_mw``/``bs_mvar`` of the bus;
+* shunt G and B (pu on the system base) -> ``shunt_draw_mw``/``shunt_supply_mvar`` of the bus;
 * branch type 0 with ratio 0 (and no phase shift) -> a line; anything else -> a transformer whose
   ratio sits on the tap bus (``tap_side="from"``, ``from_bus`` = tap bus); ratio 0 means 1.0;
   tap limits from the min/max tap fields (0.9/1.1 when both are 0 or for phase shifters); the
@@ -31,13 +31,13 @@ found: a mismatch means a record was lost or added, and is an error.
 >>> net = Network(base_mva=100.0, name="two-bus",
 ...     buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack"},
 ...                                {"bus": 2, "base_kv": 110.0, "kind": "PQ"}]),
-...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0, "v_set_pu": 1.02}]),
-...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "p_mw": 50.0, "q_mvar": 20.0}]),
+...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "mw": 0.0, "v_set_pu": 1.02}]),
+...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "mw": 50.0, "mvar": 20.0}]),
 ...     lines=make_table("lines", [{"line_id": "1-2", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.1}]))
 >>> path = os.path.join(tempfile.mkdtemp(), "two.cdf")
 >>> write_cdf(net, path)
 >>> back = read_cdf(path)
->>> back.buses.kind.tolist(), float(back.generators.v_set_pu[0]), float(back.loads.p_mw[0])
+>>> back.buses.kind.tolist(), float(back.generators.v_set_pu[0]), float(back.loads.mw[0])
 (['slack', 'PQ'], 1.02, 50.0)
 >>> import shutil; shutil.rmtree(os.path.dirname(path))
 """
@@ -233,15 +233,15 @@ def read_cdf(path) -> Network:
         kind = {0: "PQ", 1: "PQ", 2: "PV", 3: "slack"}[btype]
         v_final = f["v"] if f["v"] > 0 else 1.0   # 0 (blank) is no stored solution: start at 1 pu
         buses.append({"bus": n, "name": f["name"], "base_kv": f["base_kv"], "kind": kind,
-                      "gs_mw": f["g"] * base_mva, "bs_mvar": f["b"] * base_mva, "area": f["area"],
+                      "shunt_draw_mw": f["g"] * base_mva, "shunt_supply_mvar": f["b"] * base_mva, "area": f["area"],
                       "v_pu": v_final, "angle_deg": f["angle"]})
         if f["load_mw"] != 0 or f["load_mvar"] != 0:
-            loads.append({"load_id": f"D{n}", "bus": n, "p_mw": f["load_mw"], "q_mvar": f["load_mvar"]})
+            loads.append({"load_id": f"D{n}", "bus": n, "mw": f["load_mw"], "mvar": f["load_mvar"]})
         if btype in (2, 3) or f["gen_mw"] != 0 or f["gen_mvar"] != 0:
             q_min, q_max = -_WIDE_Q, _WIDE_Q
             if btype in (2, 3) and (f["q_max"] != 0 or f["q_min"] != 0):
                 q_min, q_max = f["q_min"], f["q_max"]
-            gens.append({"gen_id": f"G{n}", "bus": n, "p_mw": f["gen_mw"], "q_mvar": f["gen_mvar"],
+            gens.append({"gen_id": f"G{n}", "bus": n, "mw": f["gen_mw"], "mvar": f["gen_mvar"],
                          "v_set_pu": f["v_desired"] if f["v_desired"] > 0 else v_final,
                          "q_min_mvar": q_min, "q_max_mvar": q_max})
 
@@ -353,11 +353,11 @@ def write_cdf(net: Network, path) -> None:
     """
     base = float(net.base_mva)
     buses = net.buses
-    loads = net.loads[net.loads.in_service]
-    gens = net.generators[net.generators.in_service]
-    shunts = net.shunts[net.shunts.in_service]
-    ld = loads.groupby("bus")[["p_mw", "q_mvar"]].sum()
-    gp = gens.groupby("bus")[["p_mw", "q_mvar", "q_min_mvar", "q_max_mvar"]].sum()
+    loads = net.loads[net.loads.energised]
+    gens = net.generators[net.generators.energised]
+    shunts = net.shunts[net.shunts.energised]
+    ld = loads.groupby("bus")[["mw", "mvar"]].sum()
+    gp = gens.groupby("bus")[["mw", "mvar", "q_min_mvar", "q_max_mvar"]].sum()
     gv = gens.groupby("bus")["v_set_pu"].first()
     sh = (shunts.mvar_per_step * shunts.steps_on).groupby(shunts.bus).sum()
 
@@ -368,10 +368,10 @@ def write_cdf(net: Network, path) -> None:
         btype = {"PQ": 0, "PV": 2, "slack": 3}.get(row.kind, 0)
         vals = {"bus": n, "name": row.name, "area": row.area, "zone": 1, "type": btype,
                 "v": row.v_pu, "angle": row.angle_deg, "base_kv": row.base_kv,
-                "g": row.gs_mw / base, "b": (row.bs_mvar + sh.get(n, 0.0)) / base, "remote": 0,
-                "load_mw": ld.p_mw.get(n, 0.0), "load_mvar": ld.q_mvar.get(n, 0.0)}
+                "g": row.shunt_draw_mw / base, "b": (row.shunt_supply_mvar + sh.get(n, 0.0)) / base, "remote": 0,
+                "load_mw": ld.mw.get(n, 0.0), "load_mvar": ld.mvar.get(n, 0.0)}
         if n in gp.index:
-            vals.update(gen_mw=gp.p_mw[n], gen_mvar=gp.q_mvar[n], v_desired=gv[n])
+            vals.update(gen_mw=gp.mw[n], gen_mvar=gp.mvar[n], v_desired=gv[n])
             if btype in (2, 3):
                 lo, hi = gp.q_min_mvar[n], gp.q_max_mvar[n]
                 wide = lo <= -_WIDE_Q and hi >= _WIDE_Q
@@ -380,11 +380,11 @@ def write_cdf(net: Network, path) -> None:
     out.append("-999")
 
     branches = []
-    for row in net.lines[net.lines.in_service].itertuples(index=False):
+    for row in net.lines[net.lines.energised].itertuples(index=False):
         branches.append({"tap_bus": row.from_bus, "z_bus": row.to_bus, "type": 0, "r": row.r_pu,
                          "x": row.x_pu, "b": row.b_pu, "rating1": row.rating_mva, "ratio": 0.0,
                          "shift": 0.0, "id": row.line_id})
-    for row in net.transformers[net.transformers.in_service].itertuples(index=False):
+    for row in net.transformers[net.transformers.energised].itertuples(index=False):
         a, b = (row.from_bus, row.to_bus) if row.tap_side == "from" else (row.to_bus, row.from_bus)
         branches.append({"tap_bus": a, "z_bus": b, "type": 2 if row.adjustable else 1,
                          "r": row.r_pu, "x": row.x_pu, "b": row.b_pu, "rating1": row.rating_mva,

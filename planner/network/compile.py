@@ -148,7 +148,7 @@ def compile_network(net: Network) -> Compiled:
     >>> from planner.network.model import Network, make_table
     >>> net = Network(buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack"},
     ...                                          {"bus": 2, "base_kv": 110.0, "kind": "PQ"}]),
-    ...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0}]),
+    ...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "mw": 0.0}]),
     ...     lines=make_table("lines", [{"line_id": "L1", "from_bus": 1, "to_bus": 2, "r_pu": 0.0, "x_pu": 0.1}]))
     >>> c = compile_network(net)
     >>> c.ybus().toarray().round(3).tolist()
@@ -170,10 +170,10 @@ def compile_network(net: Network) -> Compiled:
     kind = kind.astype(np.int64)
 
     # generators in service
-    g = net.generators[net.generators["in_service"].astype(bool)]
+    g = net.generators[net.generators["energised"].astype(bool)]
     g_bus = idx(g["bus"])
-    gen_p = g["p_mw"].to_numpy(float) / base
-    gen_q = g["q_mvar"].to_numpy(float) / base
+    gen_p = g["mw"].to_numpy(float) / base
+    gen_q = g["mvar"].to_numpy(float) / base
     gq_min = g["q_min_mvar"].to_numpy(float) / base
     gq_max = g["q_max_mvar"].to_numpy(float) / base
     has_gen = np.bincount(g_bus, minlength=n) > 0
@@ -190,10 +190,10 @@ def compile_network(net: Network) -> Compiled:
     s_gen = np.bincount(g_bus, gen_p, n) + 1j * np.where(controlled, 0.0, np.bincount(g_bus, gen_q, n))
 
     # loads
-    ld = net.loads[net.loads["in_service"].astype(bool)]
+    ld = net.loads[net.loads["energised"].astype(bool)]
     l_bus = idx(ld["bus"])
-    p = ld["p_mw"].to_numpy(float) / base
-    q = ld["q_mvar"].to_numpy(float) / base
+    p = ld["mw"].to_numpy(float) / base
+    q = ld["mvar"].to_numpy(float) / base
     pi, pz = ld["p_share_i"].to_numpy(float), ld["p_share_z"].to_numpy(float)
     qi, qz = ld["q_share_i"].to_numpy(float), ld["q_share_z"].to_numpy(float)
 
@@ -205,16 +205,16 @@ def compile_network(net: Network) -> Compiled:
     s_load_z = per_bus(p * pz) + 1j * per_bus(q * qz)
 
     # shunts: bus columns plus banks in service (Mvar at 1 pu = susceptance in pu x base)
-    ysh = (b["gs_mw"].to_numpy(float) + 1j * b["bs_mvar"].to_numpy(float)) / base
-    sh = net.shunts[net.shunts["in_service"].astype(bool)]
+    ysh = (b["shunt_draw_mw"].to_numpy(float) + 1j * b["shunt_supply_mvar"].to_numpy(float)) / base
+    sh = net.shunts[net.shunts["energised"].astype(bool)]
     if len(sh):
         ysh = ysh + 1j * np.bincount(idx(sh["bus"]), sh["mvar_per_step"].to_numpy(float)
                                      * sh["steps_on"].to_numpy(float), n) / base
 
     # branches
-    ln = net.lines[net.lines["in_service"].astype(bool)]
+    ln = net.lines[net.lines["energised"].astype(bool)]
     tr_all = net.transformers
-    tr_mask = tr_all["in_service"].astype(bool).to_numpy()
+    tr_mask = tr_all["energised"].astype(bool).to_numpy()
     tr = tr_all[tr_mask]
     f = np.concatenate([idx(ln["from_bus"]), idx(tr["from_bus"])]).astype(np.int64)
     t = np.concatenate([idx(ln["to_bus"]), idx(tr["to_bus"])]).astype(np.int64)
@@ -249,7 +249,7 @@ def compile_network(net: Network) -> Compiled:
         branch_ids=branch_ids, branch_element=element, rating=rating, xfmr_rows=xfmr_rows,
         gen_ids=g["gen_id"].astype(str).to_numpy(), gen_bus=g_bus.astype(np.int64), gen_p=gen_p,
         gen_q=gen_q, gen_q_min=gq_min, gen_q_max=gq_max,
-        gen_rows=np.flatnonzero(net.generators["in_service"].astype(bool).to_numpy()),
+        gen_rows=np.flatnonzero(net.generators["energised"].astype(bool).to_numpy()),
     )
 
 

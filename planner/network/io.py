@@ -14,13 +14,13 @@ format is an ``InputError`` naming the path.
 >>> net = Network(base_mva=100.0, name="two-bus",
 ...     buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack"},
 ...                                {"bus": 2, "base_kv": 110.0, "kind": "PQ"}]),
-...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0}]),
-...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "p_mw": 50.0, "q_mvar": 20.0}]),
+...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "mw": 0.0}]),
+...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "mw": 50.0, "mvar": 20.0}]),
 ...     lines=make_table("lines", [{"line_id": "1-2", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.1}]))
 >>> d = tempfile.mkdtemp()
 >>> write_network(net, os.path.join(d, "two"))
 >>> write_network(net, os.path.join(d, "two.cdf"), format="cdf")
->>> [float(read_network(os.path.join(d, p)).loads.p_mw.sum()) for p in ("two", "two.cdf")]
+>>> [float(read_network(os.path.join(d, p)).loads.mw.sum()) for p in ("two", "two.cdf")]
 [50.0, 50.0]
 >>> import shutil; shutil.rmtree(d)
 """

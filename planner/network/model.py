@@ -26,8 +26,8 @@ BUS_COLUMNS = {
     "kind": "object",        # "PQ", "PV" or "slack"
     "v_min_pu": "float64",   # planning limits for this bus
     "v_max_pu": "float64",
-    "gs_mw": "float64",      # fixed shunt conductance, MW drawn at 1.0 pu
-    "bs_mvar": "float64",    # fixed shunt susceptance, Mvar produced at 1.0 pu (capacitive > 0)
+    "shunt_draw_mw": "float64",      # fixed shunt conductance, MW drawn at 1.0 pu
+    "shunt_supply_mvar": "float64",    # fixed shunt susceptance, Mvar produced at 1.0 pu (capacitive > 0)
     "area": "int64",
     "v_pu": "float64",       # voltage magnitude of a stored solution (or start value)
     "angle_deg": "float64",
@@ -35,25 +35,25 @@ BUS_COLUMNS = {
 LOAD_COLUMNS = {
     "load_id": "object",
     "bus": "int64",
-    "p_mw": "float64",       # demand at 1.0 pu voltage
-    "q_mvar": "float64",
+    "mw": "float64",       # demand at 1.0 pu voltage
+    "mvar": "float64",
     # Voltage dependence (ZIP): share of constant current and constant impedance; the rest is
     # constant power. P(V) = P0 (1 - pi - pz + pi V + pz V^2), same form for Q.
     "p_share_i": "float64",
     "p_share_z": "float64",
     "q_share_i": "float64",
     "q_share_z": "float64",
-    "in_service": "bool",
+    "energised": "bool",
 }
 GEN_COLUMNS = {
     "gen_id": "object",
     "bus": "int64",
-    "p_mw": "float64",
-    "q_mvar": "float64",     # output used when the bus is PQ (and the stored solution otherwise)
+    "mw": "float64",
+    "mvar": "float64",     # output used when the bus is PQ (and the stored solution otherwise)
     "v_set_pu": "float64",   # voltage setpoint held at its bus while within reactive limits
     "q_min_mvar": "float64",
     "q_max_mvar": "float64",
-    "in_service": "bool",
+    "energised": "bool",
 }
 LINE_COLUMNS = {
     "line_id": "object",
@@ -63,7 +63,7 @@ LINE_COLUMNS = {
     "x_pu": "float64",
     "b_pu": "float64",       # total line charging, split half to each end
     "rating_mva": "float64", # 0 = no rating given
-    "in_service": "bool",
+    "energised": "bool",
 }
 TRANSFORMER_COLUMNS = {
     "xfmr_id": "object",
@@ -80,7 +80,7 @@ TRANSFORMER_COLUMNS = {
     "ratio_step_pu": "float64",  # 0 = continuous
     "adjustable": "bool",    # the optimiser may move the ratio
     "rating_mva": "float64",
-    "in_service": "bool",
+    "energised": "bool",
 }
 SHUNT_COLUMNS = {
     "shunt_id": "object",
@@ -89,7 +89,7 @@ SHUNT_COLUMNS = {
     "steps_max": "int64",
     "steps_on": "int64",         # steps in service now
     "switchable": "bool",        # steps may change with the load level
-    "in_service": "bool",
+    "energised": "bool",
 }
 
 TABLES = {
@@ -102,17 +102,17 @@ TABLES = {
 }
 
 DEFAULTS = {
-    "buses": {"name": "", "v_min_pu": 0.95, "v_max_pu": 1.05, "gs_mw": 0.0, "bs_mvar": 0.0,
+    "buses": {"name": "", "v_min_pu": 0.95, "v_max_pu": 1.05, "shunt_draw_mw": 0.0, "shunt_supply_mvar": 0.0,
               "area": 1, "v_pu": 1.0, "angle_deg": 0.0},
     "loads": {"p_share_i": 0.0, "p_share_z": 0.0, "q_share_i": 0.0, "q_share_z": 0.0,
-              "in_service": True},
-    "generators": {"q_mvar": 0.0, "v_set_pu": 1.0, "q_min_mvar": -9999.0, "q_max_mvar": 9999.0,
-                   "in_service": True},
-    "lines": {"b_pu": 0.0, "rating_mva": 0.0, "in_service": True},
+              "energised": True},
+    "generators": {"mvar": 0.0, "v_set_pu": 1.0, "q_min_mvar": -9999.0, "q_max_mvar": 9999.0,
+                   "energised": True},
+    "lines": {"b_pu": 0.0, "rating_mva": 0.0, "energised": True},
     "transformers": {"r_pu": 0.0, "b_pu": 0.0, "ratio_pu": 1.0, "tap_side": "from", "shift_deg": 0.0,
                      "ratio_min_pu": 0.9, "ratio_max_pu": 1.1, "ratio_step_pu": 0.0,
-                     "adjustable": False, "rating_mva": 0.0, "in_service": True},
-    "shunts": {"steps_max": 1, "steps_on": 1, "switchable": False, "in_service": True},
+                     "adjustable": False, "rating_mva": 0.0, "energised": True},
+    "shunts": {"steps_max": 1, "steps_on": 1, "switchable": False, "energised": True},
 }
 
 BUS_KINDS = ("PQ", "PV", "slack")
@@ -130,7 +130,7 @@ def make_table(kind: str, records) -> pd.DataFrame:
     Raises ``KeyError`` naming the first missing required column.
 
     >>> t = make_table("lines", [{"line_id": "L1", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.1}])
-    >>> float(t.loc[0, "b_pu"]), bool(t.loc[0, "in_service"])
+    >>> float(t.loc[0, "b_pu"]), bool(t.loc[0, "energised"])
     (0.0, True)
     """
     cols = TABLES[kind]
@@ -157,8 +157,8 @@ class Network:
     >>> net = Network(base_mva=100.0, name="two-bus",
     ...     buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack"},
     ...                                {"bus": 2, "base_kv": 110.0, "kind": "PQ"}]),
-    ...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0, "v_set_pu": 1.0}]),
-    ...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "p_mw": 50.0, "q_mvar": 20.0}]),
+    ...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "mw": 0.0, "v_set_pu": 1.0}]),
+    ...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "mw": 50.0, "mvar": 20.0}]),
     ...     lines=make_table("lines", [{"line_id": "L1", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.1}]))
     >>> len(net.buses)
     2
@@ -206,9 +206,9 @@ def siemens_to_pu(b_s, base_kv: float, base_mva: float):
     return b_s * z_base_ohm(base_kv, base_mva)
 
 
-def kw_to_mw(p_kw):
-    return p_kw / 1000.0
+def kw_to_mw(kw):
+    return kw / 1000.0
 
 
-def kvar_to_mvar(q_kvar):
-    return q_kvar / 1000.0
+def kvar_to_mvar(kvar):
+    return kvar / 1000.0

@@ -107,17 +107,17 @@ def tiled_network(base: Network, copies: int, *, ties_per_copy: int = 2, seed: i
     buses = tables["buses"]
     other_slacks = (buses.kind == "slack").to_numpy() & (buses.bus.to_numpy() >= offset)
     buses.loc[other_slacks, "kind"] = "PV"
-    g = base.generators[base.generators.in_service]
-    ld = base.loads[base.loads.in_service]
+    g = base.generators[base.generators.energised]
+    ld = base.loads[base.loads.energised]
     at_slack = g.bus.to_numpy() == slack[0]
-    balance = float(ld.p_mw.sum() - g.p_mw[~at_slack].sum())
+    balance = float(ld.mw.sum() - g.mw[~at_slack].sum())
     gens = tables["generators"]
     gslack = (gens.bus.to_numpy() % offset == slack[0]) & (gens.bus.to_numpy() >= offset) \
-        & gens.in_service.to_numpy()
+        & gens.energised.to_numpy()
     n_at_slack = max(int(at_slack.sum()), 1)
     # a slack's stored output usually includes its copy's losses; otherwise allow some
     need = balance * (1.0 + LOSS_ALLOWANCE) / n_at_slack
-    gens.loc[gslack, "p_mw"] = np.maximum(gens.loc[gslack, "p_mw"].to_numpy(), need)
+    gens.loc[gslack, "mw"] = np.maximum(gens.loc[gslack, "mw"].to_numpy(), need)
 
     ties = _tie_lines(base, copies, offset, ties_per_copy, seed)
     tables["lines"] = pd.concat([tables["lines"], ties], ignore_index=True)
@@ -156,7 +156,7 @@ def _tie_lines(base: Network, copies: int, offset: int, ties_per_copy: int, seed
     return make_table("lines", pd.DataFrame({
         "line_id": ids.astype(object), "from_bus": from_bus, "to_bus": to_bus,
         "r_pu": np.round(r, 6), "x_pu": np.round(x, 6), "b_pu": np.round(bch, 6),
-        "rating_mva": TIE_RATING_MVA, "in_service": True}))
+        "rating_mva": TIE_RATING_MVA, "energised": True}))
 
 
 def meshed_grid(rows: int, cols: int, seed: int = 0) -> Network:
@@ -177,7 +177,7 @@ def meshed_grid(rows: int, cols: int, seed: int = 0) -> Network:
     >>> net = meshed_grid(4, 5, seed=1)
     >>> len(net.buses), int((net.buses.kind == "slack").sum())
     (20, 1)
-    >>> bool(net.generators.p_mw.sum() >= 0.9 * net.loads.p_mw.sum())
+    >>> bool(net.generators.mw.sum() >= 0.9 * net.loads.mw.sum())
     True
     """
     rows, cols = int(rows), int(cols)
@@ -231,7 +231,7 @@ def meshed_grid(rows: int, cols: int, seed: int = 0) -> Network:
     pf = rng.uniform(0.90, 0.97, len(lb))
     q = np.round(p * np.tan(np.arccos(pf)), 2)
     zip_ = rng.random(len(lb)) < 1 / 3
-    loads = pd.DataFrame({"load_id": [f"D{bus_ids[i]}" for i in lb], "bus": bus_ids[lb], "p_mw": p, "q_mvar": q,
+    loads = pd.DataFrame({"load_id": [f"D{bus_ids[i]}" for i in lb], "bus": bus_ids[lb], "mw": p, "mvar": q,
                           "p_share_i": np.where(zip_, 0.3, 0.0), "p_share_z": np.where(zip_, 0.2, 0.0),
                           "q_share_i": np.where(zip_, 0.1, 0.0), "q_share_z": np.where(zip_, 0.5, 0.0)})
 
@@ -241,7 +241,7 @@ def meshed_grid(rows: int, cols: int, seed: int = 0) -> Network:
     pg = np.bincount(nearest, p, len(gbus)) * (1.0 + GRID_LOSS_SHARE)
     rating = pg * rng.uniform(1.2, 1.6, len(gbus)) + 10.0
     pg = np.round(pg, 2)
-    gens = pd.DataFrame({"gen_id": [f"G{bus_ids[i]}" for i in gbus], "bus": bus_ids[gbus], "p_mw": pg,
+    gens = pd.DataFrame({"gen_id": [f"G{bus_ids[i]}" for i in gbus], "bus": bus_ids[gbus], "mw": pg,
                          "v_set_pu": np.round(rng.uniform(1.02, 1.05, len(gbus)), 3),
                          "q_min_mvar": np.round(-0.3 * rating, 1), "q_max_mvar": np.round(0.6 * rating, 1)})
     kind = np.full(n, "PQ", dtype=object)

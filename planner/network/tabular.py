@@ -15,7 +15,7 @@ accepts, in place of the per-unit column (never both):
 
 * lines and transformers: ``r_ohm``, ``x_ohm`` (on the from-bus base kV and the system base) and
   ``b_us`` (total charging, microsiemens);
-* loads and generators: ``p_kw``, ``q_kvar``;
+* loads and generators: ``kw``, ``kvar``;
 * shunts: ``kvar_per_step``.
 
 Every error names the file, the data row (1-based) with its CSV line number, and the column.
@@ -28,7 +28,7 @@ target, then swapped in).
 >>> net = Network(base_mva=10.0, name="two-bus",
 ...     buses=make_table("buses", [{"bus": 1, "base_kv": 12.66, "kind": "slack"},
 ...                                {"bus": 2, "base_kv": 12.66, "kind": "PQ"}]),
-...     generators=make_table("generators", [{"gen_id": "S1", "bus": 1, "p_mw": 0.0}]),
+...     generators=make_table("generators", [{"gen_id": "S1", "bus": 1, "mw": 0.0}]),
 ...     lines=make_table("lines", [{"line_id": "1-2", "from_bus": 1, "to_bus": 2, "r_pu": 0.1, "x_pu": 0.2}]))
 >>> folder = os.path.join(tempfile.mkdtemp(), "two")
 >>> write_tables(net, folder)
@@ -65,8 +65,8 @@ _OHM, _MICROSIEMENS, _KILO = "ohm", "microsiemens", "kilo"
 UNIT_COLUMNS = {
     "lines": {"r_ohm": ("r_pu", _OHM), "x_ohm": ("x_pu", _OHM), "b_us": ("b_pu", _MICROSIEMENS)},
     "transformers": {"r_ohm": ("r_pu", _OHM), "x_ohm": ("x_pu", _OHM), "b_us": ("b_pu", _MICROSIEMENS)},
-    "loads": {"p_kw": ("p_mw", _KILO), "q_kvar": ("q_mvar", _KILO)},
-    "generators": {"p_kw": ("p_mw", _KILO), "q_kvar": ("q_mvar", _KILO)},
+    "loads": {"kw": ("mw", _KILO), "kvar": ("mvar", _KILO)},
+    "generators": {"kw": ("mw", _KILO), "kvar": ("mvar", _KILO)},
     "shunts": {"kvar_per_step": ("mvar_per_step", _KILO)},
     "buses": {},
 }

@@ -22,8 +22,8 @@ an island with more than one slack bus, and buses whose base kV is 0 (CDF for "n
 >>> from planner.network.model import Network, make_table
 >>> net = Network(buses=make_table("buses", [{"bus": 1, "base_kv": 110.0, "kind": "slack"},
 ...                                          {"bus": 2, "base_kv": 110.0, "kind": "PQ"}]),
-...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "p_mw": 0.0}]),
-...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "p_mw": 5.0, "q_mvar": 1.0}]),
+...     generators=make_table("generators", [{"gen_id": "G1", "bus": 1, "mw": 0.0}]),
+...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "mw": 5.0, "mvar": 1.0}]),
 ...     lines=make_table("lines", [{"line_id": "1-2", "from_bus": 1, "to_bus": 3, "r_pu": 0.0, "x_pu": 0.0}]))
 >>> for p in validate(net): print(p)
 lines '1-2': to_bus: unknown bus 3
@@ -85,7 +85,7 @@ def _problems_and_warnings(net: Network):
           "same id as a line (branch ids must be unique)")
 
     # Non-finite numbers in every float column of the records that are checked.
-    active = {kind: (net.table(kind) if kind == "buses" else net.table(kind)[net.table(kind).in_service])
+    active = {kind: (net.table(kind) if kind == "buses" else net.table(kind)[net.table(kind).energised])
               for kind in TABLES}
     for kind, cols in TABLES.items():
         df = active[kind]
@@ -181,7 +181,7 @@ def _islands(net, active, slack, problems, warns):
     attached = set()
     for k in ("loads", "generators", "shunts"):
         attached |= set(active[k].bus.tolist())
-    has_fixed_shunt = ((b.gs_mw != 0) | (b.bs_mvar != 0)).to_numpy()
+    has_fixed_shunt = ((b.shunt_draw_mw != 0) | (b.shunt_supply_mvar != 0)).to_numpy()
     slack_count = np.bincount(label, weights=slack.astype(float), minlength=ncomp)
     size = np.bincount(label, minlength=ncomp)
     for c in np.flatnonzero(slack_count == 0):

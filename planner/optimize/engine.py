@@ -135,7 +135,7 @@ class _Problem:
         # existing switchable banks
         sh = net0.shunts
         if levers.existing_shunts and len(sh):
-            mask = (sh["in_service"] & sh["switchable"]).to_numpy(bool)
+            mask = (sh["energised"] & sh["switchable"]).to_numpy(bool)
         else:
             mask = np.zeros(len(sh), bool)
         self.exist_rows = np.flatnonzero(mask)

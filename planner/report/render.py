@@ -31,7 +31,7 @@ Input schema (a JSON-like dict; units in the key names; ``?`` marks optional key
           "v_min_pu": float, "v_min_bus": int|str, "v_max_pu": float, "v_max_bus": int|str,
           "converged"?: bool,
           "violations"?: [{"bus", "name"?, "v_pu", "limit"}],   # limit = the broken limit, pu
-          "gens_at_limit"?: [{"gen", "bus", "q_mvar", "limit"}], # limit = "q_min" | "q_max" | text
+          "gens_at_limit"?: [{"gen", "bus", "mvar", "limit"}], # limit = "q_min" | "q_max" | text
           "profile"?: [{"bus", "name"?, "v_pu"}],
         }
       },
@@ -269,7 +269,7 @@ def _build(data: dict) -> dict[str, Table]:
                          "limit_pu": _f(v.get("limit"))})
         for g in b.get("gens_at_limit") or []:
             gens.append({"case": "base case", "level": n, "gen": g.get("gen"), "bus": g.get("bus"),
-                         "q_mvar": _f(g.get("q_mvar")), "limit": g.get("limit", "")})
+                         "mvar": _f(g.get("mvar")), "limit": g.get("limit", "")})
         for p in b.get("profile") or []:
             prof.append({"case": "base case", "level": n, "bus": p["bus"],
                          "name": p.get("name", ""), "v_pu": _f(p.get("v_pu"))})
@@ -420,7 +420,7 @@ def _build(data: dict) -> dict[str, Table]:
         ("name", "Bus name", "text"), ("v_pu", "V (pu)", "pu"), ("limit_pu", "Limit (pu)", "pu")], viol)
     T["generators_at_limit"] = Table("generators_at_limit", [
         ("case", "Case", "text"), ("level", "Load level", "text"), ("gen", "Generator", "text"),
-        ("bus", "Bus", "text"), ("q_mvar", "Q (Mvar)", "mvar"), ("limit", "Limit", "text")], gens)
+        ("bus", "Bus", "text"), ("mvar", "Q (Mvar)", "mvar"), ("limit", "Limit", "text")], gens)
     T["profiles"] = Table("profiles", [("case", "Case", "text"), ("level", "Load level", "text"),
                                        ("bus", "Bus", "text"), ("name", "Bus name", "text"),
                                        ("v_pu", "V (pu)", "pu")], prof)
@@ -773,7 +773,7 @@ def render_report(data: dict) -> str:
     bg = [r for r in T["generators_at_limit"].rows if r["case"] == "base case"]
     if bg:
         body.append(tab(T["generators_at_limit"], rows=bg,
-                        show=["level", "gen", "bus", "q_mvar", "limit"],
+                        show=["level", "gen", "bus", "mvar", "limit"],
                         caption="Generators held at a reactive limit, base case"))
     sections.append(_section("Base case", body, "base"))
 

@@ -28,8 +28,8 @@ def scaled_network(net, p_scale=1.0, q_scale=1.0, bus_scale=None):
 
     >>> from planner.network.model import Network, make_table
     >>> net = Network(buses=make_table("buses", [{"bus": 1, "base_kv": 11.0, "kind": "slack"}]),
-    ...               loads=make_table("loads", [{"load_id": "D", "bus": 1, "p_mw": 2.0, "q_mvar": 1.0}]))
-    >>> float(scaled_network(net, 0.5, 0.4).loads.loc[0, "q_mvar"]), float(net.loads.loc[0, "q_mvar"])
+    ...               loads=make_table("loads", [{"load_id": "D", "bus": 1, "mw": 2.0, "mvar": 1.0}]))
+    >>> float(scaled_network(net, 0.5, 0.4).loads.loc[0, "mvar"]), float(net.loads.loc[0, "mvar"])
     (0.4, 1.0)
     """
     out = net.copy()
@@ -37,8 +37,8 @@ def scaled_network(net, p_scale=1.0, q_scale=1.0, bus_scale=None):
     factor = np.ones(len(ld))
     if bus_scale:
         factor = ld["bus"].map(lambda b: bus_scale.get(int(b), 1.0)).to_numpy(float)
-    ld["p_mw"] = ld["p_mw"].to_numpy(float) * p_scale * factor
-    ld["q_mvar"] = ld["q_mvar"].to_numpy(float) * q_scale * factor
+    ld["mw"] = ld["mw"].to_numpy(float) * p_scale * factor
+    ld["mvar"] = ld["mvar"].to_numpy(float) * q_scale * factor
     return out
 
 
@@ -111,7 +111,7 @@ def _flow_summary(res, limits_lo, limits_hi, names_by_bus):
     if res.generators is not None:
         for g in res.generators.itertuples():
             if g.at_limit:
-                gens.append({"gen": str(g.gen_id), "bus": int(g.bus), "q_mvar": float(g.q_mvar),
+                gens.append({"gen": str(g.gen_id), "bus": int(g.bus), "mvar": float(g.mvar),
                              "limit": "q_max" if g.at_limit == "max" else "q_min"})
     return {
         "converged": bool(res.converged), "losses_mw": float(res.losses_mw),

@@ -164,7 +164,7 @@ def _kinds(r: _Reader, kinds):
 def check_buses(spec: "StudySpec", net) -> None:
     """Every bus the study names must be in the network (generator ranges at generator buses)."""
     known = set(int(b) for b in net.buses["bus"])
-    gens = set(int(b) for b in net.generators.loc[net.generators["in_service"].astype(bool), "bus"])
+    gens = set(int(b) for b in net.generators.loc[net.generators["energised"].astype(bool), "bus"])
     where = spec.network_path.name
 
     def bad(key, bus, what="is not in the network"):

@@ -182,7 +182,7 @@ def feeder33(base_mva: float = 10.0, kv: float = 12.66) -> RawCase:
     """33-bus radial feeder (Baran and Wu 1989): 12.66 kV, bus 1 slack at 1.0 pu."""
     d = DATA_DIR / "feeder33"
     br = _read_csv(d / "branches.csv", ["from_bus", "to_bus", "r_ohm", "x_ohm"])
-    ld = _read_csv(d / "loads.csv", ["bus", "p_kw", "q_kvar"])
+    ld = _read_csv(d / "loads.csv", ["bus", "kw", "kvar"])
     zbase = kv ** 2 / base_mva
     num = np.unique(np.concatenate([br[:, 0], br[:, 1]]).astype(int))
     pos = {b_: i for i, b_ in enumerate(num)}

@@ -9,7 +9,7 @@ not the tool's hot path).
 
 Public functions
 ----------------
-sweep_feeder33(q_mvar, tol)  -> batched load flow, q_mvar shape [cases, buses]
+sweep_feeder33(mvar, tol)  -> batched load flow, mvar shape [cases, buses]
 enumerate_feeder33(sites, unit_mvar, max_units) -> exhaustive best bank placement
 
 Import layout: ``tests/`` is not a package; use ``from reference.sweep import ...``
@@ -51,10 +51,10 @@ def _tree(case):
     return root, parent, pbranch, np.array(order)
 
 
-def sweep_feeder33(q_mvar=None, tol=1e-10, max_iter=100, case=None):
+def sweep_feeder33(mvar=None, tol=1e-10, max_iter=100, case=None):
     """Backward/forward sweep of the 33-bus feeder for many capacitor settings at once.
 
-    ``q_mvar``: array [cases, buses] of shunt bank ratings (Mvar at 1.0 pu, injecting
+    ``mvar``: array [cases, buses] of shunt bank ratings (Mvar at 1.0 pu, injecting
     Q V^2, i.e. constant impedance), columns in bus order 1..33; None means one base case.
     Iterates until the largest voltage change of every case is below ``tol`` pu.
 
@@ -63,9 +63,9 @@ def sweep_feeder33(q_mvar=None, tol=1e-10, max_iter=100, case=None):
     """
     case = feeder33() if case is None else case
     n = case.n
-    q = np.zeros((1, n)) if q_mvar is None else np.atleast_2d(np.asarray(q_mvar, float))
+    q = np.zeros((1, n)) if mvar is None else np.atleast_2d(np.asarray(mvar, float))
     if q.shape[1] != n:
-        raise ValueError(f"q_mvar must have {n} columns (one per bus), got {q.shape[1]}")
+        raise ValueError(f"mvar must have {n} columns (one per bus), got {q.shape[1]}")
     root, parent, pbranch, order = _tree(case)
     z = case.r + 1j * case.x
     # Work in [buses, cases] so every per-bus row is contiguous.
