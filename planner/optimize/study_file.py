@@ -14,7 +14,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
     """
     from ..errors import InputError
     from ..outputs import write_json_atomic
-    from ..study.run import plan_to_dict, run_study
+    from ..study.run import plan_alternatives, plan_to_dict
     from ..study.spec import AlternativeSpec, read_study
 
     spec = read_study(path)
@@ -29,7 +29,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
     spec.alternatives = [AlternativeSpec(name="plan", description="every lever the study file enables")]
     show = (not quiet) and sys.stderr.isatty()
     progress = (lambda text: print(text, file=sys.stderr, flush=True)) if show else None
-    _, plans = run_study(spec, progress=progress)
+    plans = plan_alternatives(spec, progress=progress, jobs=1)
     plan = plans[0][1]
     out = Path(json_path) if json_path else Path(path).with_suffix(".plan.json")
     write_json_atomic(out, plan_to_dict(plan))

@@ -321,7 +321,10 @@ def run_study_file(path, out_dir=None, quiet=False) -> int:
     spec = read_study(path)
     show = (not quiet) and sys.stderr.isatty()
     progress = (lambda text: print(text, file=sys.stderr, flush=True)) if show else None
-    data, plans = run_study(spec, progress=progress)
+    result = run_study(spec, progress=progress)
+    from ..report.convert import report_data
+    data = report_data(result)
+    plans = [(a.spec, a.plan) for a in result.alternatives]
     files = report_files(data)
     files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
     folder = write_report_folder(report_folder(spec, out_dir), files)
