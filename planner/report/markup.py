@@ -221,6 +221,7 @@ table.data.compact th, table.data.compact td { padding: 3px 6px; }
 table.data th { background: #eef1f4; font-weight: 600; }
 table.data td.num, table.data th.num { text-align: right; }
 table.data td.num { white-space: nowrap; }
+table.data.compact td.txt:first-child { white-space: nowrap; }
 table.data td.txt, table.data th.txt { text-align: left; }
 table.data.wide td:first-child { white-space: normal; min-width: 12em; }
 table.data tr.unverified td { color: #666; font-style: italic; }

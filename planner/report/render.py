@@ -441,7 +441,7 @@ def build_tables(data: dict) -> dict[str, Table]:
                      "npv": _f(e.get("npv")) if priced else None,
                      "bcr": _f(e.get("bcr")) if priced else None,
                      "note": (_npv_note(e) if priced else
-                              "" if ok else "limits still broken: no money figures")})
+                              "" if ok else "limits still broken, so no money figures")})
 
     site_cols = [("alternative", "Alternative", "text"), ("bus", "Bus", "int"), ("name", "Bus name", "text"),
                  ("base_kv", "kV", "kv"), ("unit_mvar", "Unit (Mvar)", "mvar"),
@@ -583,6 +583,7 @@ class Context:
     comp: dict        # alternative -> comparison row
     best: dict | None        # comparison row of the recommended alternative
     runner_up: dict | None   # next verified alternative by NPV
+    controlled: frozenset = frozenset()   # generator and supply buses (voltage held at a set-point)
 
     def table(self, t: Table, **kw) -> str:
         return html_table(t, mw_decimals=self.mwd, mvar_decimals=self.qd, currency=self.cur, **kw)
@@ -668,6 +669,8 @@ def _margin(ctx: Context, alt_name: str):
     for r in ctx.T["profiles"].rows:
         if r["case"] != alt_name or r["v_pu"] is None or r["v_min_pu"] is None:
             continue
+        if r["bus"] in ctx.controlled:
+            continue        # a generator bus sits at its set-point, by choice
         m = min(r["v_pu"] - r["v_min_pu"], r["v_max_pu"] - r["v_pu"])
         if best is None or m < best[0]:
             best = (m, r["bus"], r["name"], r["level"], "low" if r["v_pu"] - r["v_min_pu"] <= r["v_max_pu"] - r["v_pu"]
@@ -692,25 +695,22 @@ def _changes(ctx: Context, table: str, alt: str, key: str, before: str, after: s
 
 
 def _sites_display(ctx: Context, alt: str) -> Table:
-    rows = []
-    for r in ctx.T["bank_sites"].rows:
-        if r["alternative"] != alt:
-            continue
+    """One row per bank site: bus and name, unit size, fixed and switched units, switched units on."""
+    rows = [r for r in ctx.T["bank_sites"].rows if r["alternative"] == alt]
+    any_switched = any(r["switched_units"] for r in rows)
+    cols = [("bus", "Bus", "int"), ("name", "Name", "text"), ("base_kv", "kV", "kv"),
+            ("unit_mvar", "Unit (Mvar)", "mvar"), ("fixed_units", "Fixed units", "int"),
+            ("switched_units", "Switched units", "int"), ("mvar", "Total (Mvar)", "mvar")]
+    if any_switched:
+        cols += [(f"switched_on_{n}", f"On at {n}", "int") for n in ctx.names]
+    out = []
+    for r in rows:
         d = dict(r)
-        d["bus_text"] = _bus_text(r["bus"], r["name"])
-        parts = []
-        if r["fixed_units"]:
-            parts.append(f"{ctx.fmt(r['fixed_units'], 'int')} fixed")
-        if r["switched_units"]:
-            parts.append(f"{ctx.fmt(r['switched_units'], 'int')} switched")
-        d["units_text"] = " + ".join(parts) + f" × {ctx.fmt(r['unit_mvar'], 'mvar')} Mvar"
-        d["steps"] = " / ".join(ctx.fmt(r.get(f"switched_on_{n}"), "int") for n in ctx.names) \
-            if r["switched_units"] else ""
-        rows.append(d)
-    return Table("bank_sites", [("bus_text", "Bus", "text"), ("base_kv", "kV", "kv"),
-                                ("units_text", "Units", "text"), ("fixed_mvar", "Fixed (Mvar)", "mvar"),
-                                ("switched_mvar", "Switched (Mvar)", "mvar"), ("mvar", "Total (Mvar)", "mvar"),
-                                ("steps", "Switched units on, " + " / ".join(ctx.names), "pre")], rows)
+        if not r["switched_units"]:
+            for n in ctx.names:
+                d[f"switched_on_{n}"] = "–"
+        out.append(d)
+    return Table("bank_sites", cols, out)
 
 
 # ---- sections --------------------------------------------------------------------------------
@@ -749,8 +749,8 @@ def _recommendation(ctx: Context) -> list:
     m = _margin(ctx, rn)
     bits = []
     if m is not None:
-        bits.append(f"Smallest margin to a bus's own band: {ctx.fmt(m[0], 'pu')} pu ({m[4]} side) at bus "
-                    f"{_bus_text(m[1], m[2])}, {m[3]} level.")
+        bits.append(f"Smallest margin of a load bus to its own band: {ctx.fmt(m[0], 'pu')} pu ({m[4]} side) "
+                    f"at bus {_bus_text(m[1], m[2])}, {m[3]} level.")
     c = ctx.comp[rn]
     if c.get("capital_cost") is not None and ctx.money:
         bits.append(f"Capital {ctx.fmt(c['capital_cost'], 'money')}; NPV {ctx.fmt(c['npv'], 'money')}; "
@@ -775,9 +775,13 @@ def _recommendation(ctx: Context) -> list:
         body.append(ctx.table(inc, css_class="data compact", caption="Against the runner-up"))
         if dcap > 0:
             body.append(_p(f"The extra capital of {ctx.fmt(dcap, 'money')} over {ru['alternative']} buys "
-                           f"{ctx.fmt(dnpv, 'money')} more net present value "
-                           f"(incremental return {ctx.fmt(dnpv / dcap, 'ratio')} per unit of extra capital, "
-                           "over and above paying it back)."))
+                           f"{ctx.fmt(dnpv, 'money')} more net present value: each extra unit of capital returns "
+                           f"{ctx.fmt(dnpv / dcap, 'ratio')} of net present value on top of itself. "
+                           f"{ru['alternative']} has the higher benefit/cost ratio"
+                           + (" but leaves that value unclaimed." if (ru["bcr"] or 0) > (best["bcr"] or 0)
+                              else ".") if (ru["bcr"] or 0) > (best["bcr"] or 0) else
+                           f"The extra capital of {ctx.fmt(dcap, 'money')} over {ru['alternative']} buys "
+                           f"{ctx.fmt(dnpv, 'money')} more net present value."))
         else:
             body.append(_p(f"It needs {ctx.fmt(-dcap, 'money')} less capital than {ru['alternative']} "
                            f"and yields {ctx.fmt(dnpv, 'money')} more net present value."))
@@ -802,10 +806,13 @@ def _question(ctx: Context) -> list:
 
 def _comparison(ctx: Context) -> list:
     rows = ctx.T["comparison"].rows
-    cols = [c for c in ctx.T["comparison"].columns if c[0] not in ("alternative",)]
+    cols = [c for c in ctx.T["comparison"].columns if c[0] not in ("alternative", "note")]
     if not ctx.money:
         cols = [c for c in cols if c[0] not in ("capital_cost", "annual_saving", "payback_years", "npv", "bcr")]
     body = [ctx.table(_transposed("comparison", rows, cols, ctx), css_class="data wide")]
+    notes = [f"{r['alternative']}: {r['note']}" for r in rows if r.get("note")]
+    if notes:
+        body.append("<ul class=\"note\">" + "".join(f"<li>{esc(t)}</li>" for t in notes) + "</ul>")
     body.append(_p("Losses and voltages are AC load-flow figures for every plan whose load flows solved, "
                    "including plans that still break limits (marked \"no\" in the first row); money figures "
                    "are given only for plans that meet every limit. Limits broken counts bus voltages outside "
@@ -1159,7 +1166,8 @@ def _economics(ctx: Context) -> list:
                  "high_text": f"{lab(r, 'high')}: {ctx.fmt(r['npv_high'], 'money')}"} for r in mine]
         chart = svg.tornado_chart(rows, mine[0]["npv_base"], title=f"NPV sensitivity, {rec}",
                                   value_format=lambda v: ctx.fmt(v, "money_axis"))
-        body.append(f"<figure>{chart}<figcaption>Net present value with one input moved at a time (vertical line: "
+        body.append(f"<figure>{chart}<figcaption>Net present value with one input moved at a time (blue: the input's "
+                    "low value, orange: its high value; vertical line: "
                     f"as studied, {esc(ctx.fmt(mine[0]['npv_base'], 'money'))}); every plan's figures are in "
                     "npv_sensitivity.csv. The load row is an approximation (see Assumptions)."
                     "</figcaption></figure>")
@@ -1248,7 +1256,9 @@ def _context(data: dict, tables: dict) -> Context:
     comp = {r["alternative"]: r for r in tables["comparison"].rows}
     ranked = sorted((r for r in tables["comparison"].rows if r["alternative"] != "base case"
                      and r["meets_limits"] and r["npv"] is not None), key=lambda r: -r["npv"])
-    return Context(data=data, T=tables, names=names, cur=str(data.get("currency", "") or ""),
+    nd = data.get("network_drawing") or {}
+    controlled = frozenset(list(nd.get("generator_buses") or []) + list(nd.get("slack_buses") or []))
+    return Context(data=data, T=tables, names=names, cur=str(data.get("currency", "") or ""), controlled=controlled,
                    mwd=_mw_decimals(data), qd=_mvar_decimals(data), comp=comp,
                    best=ranked[0] if ranked else None, runner_up=ranked[1] if len(ranked) > 1 else None)
 

@@ -508,7 +508,7 @@ def profile_chart(groups: Sequence[tuple[str, Sequence[str]]], series: Sequence[
 
 
 def tornado_chart(rows: Sequence[dict], base: float, *, title: str, value_format=None,
-                  width: int = 760) -> str:
+                  width: int = 900) -> str:
     """Horizontal bars from ``base`` to each input's low and high result.
 
     ``rows``: ``[{"label", "low", "high", "low_text", "high_text"}]``.
@@ -525,11 +525,15 @@ def tornado_chart(rows: Sequence[dict], base: float, *, title: str, value_format
     f = _Frame(width, height, top=44, left=left, right=40, bottom=40)
     vals = [base] + [r[k] for r in rows for k in ("low", "high") if r.get(k) is not None]
     lo, hi, ticks = nice_ticks(min(vals), max(vals), count=5)
-    f.set_x(lo, hi)
+    # room beside the bars for their value labels
+    text_px = max([_text_width(r.get(k + "_text", ""), 11) for r in rows for k in ("low", "high")] + [0]) + 8
+    plot_px = width - left - 40
+    pad = (hi - lo) * text_px / max(plot_px - 2 * text_px, 1.0)
+    f.set_x(lo - pad, hi + pad)
     out = _open_svg(width, height, title)
     for t in ticks:
-        out.append(f'<line x1="{_num(f.px(t))}" y1="{_num(f.y0)}" x2="{_num(f.px(t))}" y2="{_num(f.y1)}" '
-                   f'stroke="#e2e2e2"/>')
+        out.append(f'<line class="tick" x1="{_num(f.px(t))}" y1="{_num(f.y0)}" x2="{_num(f.px(t))}" '
+                   f'y2="{_num(f.y1)}" stroke="#e2e2e2"/>')
         out.append(f'<text x="{_num(f.px(t))}" y="{_num(f.y1 + 16)}" font-size="{_TICK_PX}" '
                    f'text-anchor="middle">{_e(fmtv(t))}</text>')
     for i, r in enumerate(rows):

@@ -117,7 +117,7 @@ def _levers(spec: StudySpec, alt, sites) -> Levers:
         taps=spec.taps and alt.taps, setpoints_per_level=spec.setpoints_per_level)
 
 
-def _progress_line(alt_name: str, entry: dict, currency: str = "", objective: str = "") -> str:
+def _progress_line(alt_name: str, entry: dict) -> str:
     """One progress line per optimiser step: AC losses per level in MW and the worst limit breach
     (the optimiser's merit mixes money with a penalty for breaches, which means nothing to a reader)."""
     ac = entry.get("ac_mw") or {}
@@ -131,13 +131,22 @@ def _progress_line(alt_name: str, entry: dict, currency: str = "", objective: st
             f"{'accepted' if entry['accepted'] else 'rejected'}: {what}")
 
 
+_QUEUE = None       # progress queue of a worker process (set by _worker_init)
+
+
+def _worker_init(queue):
+    global _QUEUE
+    _QUEUE = queue
+
+
 def _optimize_one(args):
     """Worker: optimise one alternative (runs in a child process when ``jobs > 1``)."""
-    cases, levers, limits, objective, options, alt_name, queue, currency, kind = args
+    cases, levers, limits, objective, options, alt_name = args
+    queue = _QUEUE
     log = None
     if queue is not None:
         def log(entry):
-            queue.put(_progress_line(alt_name, entry, currency, kind))
+            queue.put(_progress_line(alt_name, entry))
     return optimise(cases, levers, limits, objective, options, progress=log)
 
 
@@ -179,7 +188,7 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
         for k, alt in enumerate(alts):
             say(f"alternative {k + 1}/{len(alts)}: {alt.name}")
             plan = optimise(cases, _levers(spec, alt, sites), limits, objective, options,
-                            progress=lambda e, _n=alt.name: say(_progress_line(_n, e, spec.currency, spec.objective)))
+                            progress=lambda e, _n=alt.name: say(_progress_line(_n, e)))
             plans.append((alt, plan))
         return plans
     return list(zip(alts, _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say)))
@@ -190,29 +199,40 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
     import queue as _queue
     from concurrent.futures import ProcessPoolExecutor, wait, FIRST_COMPLETED
 
-    ctx = mp.get_context("spawn")      # no fork of a possibly threaded parent (solver threads)
-    with mp.Manager() as manager, ProcessPoolExecutor(max_workers=jobs, mp_context=ctx) as pool:
-        q = manager.Queue()
-        futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
-                                               alt.name, q, spec.currency, spec.objective)): k
-                   for k, alt in enumerate(alts)}
-        results = [None] * len(alts)
-        pending = set(futures)
+    # Not fork: a parent that has already solved holds solver threads, and a forked copy of a
+    # threaded process can deadlock. A fork server (one clean process that has imported the
+    # optimiser) starts workers quickly where it exists; elsewhere spawn. Either way a script
+    # calling run_study with jobs > 1 needs the usual ``if __name__ == "__main__":`` guard.
+    if "forkserver" in mp.get_all_start_methods():
+        ctx = mp.get_context("forkserver")
+        ctx.set_forkserver_preload(["planner.study.run"])
+    else:
+        ctx = mp.get_context("spawn")
+    q = ctx.Queue()
+    try:
+        with ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init,
+                                 initargs=(q,)) as pool:
+            futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
+                                                   alt.name)): k for k, alt in enumerate(alts)}
+            results = [None] * len(alts)
+            pending = set(futures)
 
-        def drain():
-            while True:
-                try:
-                    say(q.get_nowait())
-                except _queue.Empty:
-                    return
-        while pending:
-            done, pending = wait(pending, timeout=0.5, return_when=FIRST_COMPLETED)
+            def drain():
+                while True:
+                    try:
+                        say(q.get_nowait())
+                    except _queue.Empty:
+                        return
+            while pending:
+                done, pending = wait(pending, timeout=0.3, return_when=FIRST_COMPLETED)
+                drain()
+                for f in sorted(done, key=lambda f: futures[f]):
+                    k = futures[f]
+                    results[k] = f.result()
+                    say(f"alternative {k + 1}/{len(alts)} done: {alts[k].name}")
             drain()
-            for f in done:
-                k = futures[f]
-                results[k] = f.result()
-                say(f"alternative {k + 1}/{len(alts)} done: {alts[k].name}")
-        drain()
+    finally:
+        q.close()
     return results
 
 
