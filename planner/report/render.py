@@ -283,8 +283,9 @@ def build_tables(data: dict) -> dict[str, Table]:
                              "v_pu": _f(v.get("v_pu")), "limit_pu": _f(v.get("limit_pu"))})
             for v in r.get("other_limits_broken") or []:
                 other.append({"case": case, "level": n, "kind": v.get("kind"), "element": v.get("element"),
-                              "value": _f(v.get("value")), "limit": _f(v.get("limit")),
-                              "excess": _f(v.get("excess"))})
+                              "value": _f(v.get("value")), "limit_value": _f(v.get("limit")),
+                              "excess": _f(v.get("excess")),
+                              "unit": {"loading": "% of rating", "reactive": "Mvar"}.get(v.get("kind"), "")})
             for g in r.get("generators") or []:
                 gens.append({"case": case, "level": n, "gen_id": g.get("gen"), "bus": g.get("bus"),
                              "supply_point": bool(g.get("supply_point")), "mw": _f(g.get("mw")),
@@ -318,8 +319,8 @@ def build_tables(data: dict) -> dict[str, Table]:
         ("name", "Bus name", "text"), ("v_pu", "V (pu)", "pu"), ("limit_pu", "Limit broken (pu)", "pu")], viol)
     T["other_breaches"] = Table("other_breaches", [
         ("case", "Case", "text"), ("level", "Load level", "text"), ("kind", "Limit", "text"),
-        ("element", "Element", "text"), ("value", "Value", "num"), ("limit", "Limit value", "num"),
-        ("excess", "Excess", "num")], other)
+        ("element", "Element", "text"), ("value", "Value", "num"), ("limit_value", "Limit value", "num"),
+        ("excess", "Excess", "num"), ("unit", "Unit", "text")], other)
     T["generators"] = Table("generators", [
         ("case", "Case", "text"), ("level", "Load level", "text"), ("gen_id", "Generator", "text"),
         ("bus", "Bus", "int"), ("supply_point", "Supply point", "bool"), ("mw", "MW", "mw"),
@@ -882,8 +883,8 @@ def _base(ctx: Context) -> list:
         body.append(_p("Every bus voltage is inside its own band."))
     ob = [r for r in ctx.T["other_breaches"].rows if r["case"] == "base case"]
     if ob:
-        body.append(ctx.table(ctx.T["other_breaches"], rows=ob, show=["level", "kind", "element", "value", "limit"],
-                              css_class="data compact", caption="Other limits broken (loading in %, Mvar)"))
+        body.append(ctx.table(ctx.T["other_breaches"], rows=ob, show=["level", "kind", "element", "value", "limit_value", "unit"],
+                              css_class="data compact", caption="Other limits broken"))
     return body
 
 
