@@ -132,7 +132,7 @@ def test_precision_and_names_in_csv(data):
             for old in ("scale_p", "limit", "violations", "branch", "gen", "steps", "verified"):
                 assert old not in header, (name, old)
     base = _csv(files, "base_case.csv")
-    assert base[0]["v_min_bus"] == "18" and base[0]["v_min_bus_name"] != ""
+    assert base[0]["v_min_bus"] == "18" and "v_min_bus_name" in base[0]     # number and name apart
     html = files["report.html"]
     # money to three significant figures, energy whole MWh
     best = max((a for a in data["alternatives"] if a["verified"]), key=lambda a: a["economics"]["npv"])
