@@ -8,7 +8,7 @@ from planner.errors import NetworkError
 from planner.network.cdf import read_cdf
 from planner.network.model import Network, make_table
 from planner.network.tabular import read_tables
-from planner.network.validate import check, validate
+from planner.network.validate import check, model_warnings, validate
 
 DATA = Path(__file__).parent / "data"
 
@@ -146,14 +146,24 @@ def test_warnings_are_separate_and_do_not_fail_check():
                            [{"bus": 9, "base_kv": 0.0, "kind": "PQ"}])   # isolated, nothing on it, no kV
     assert validate(net) == []
     assert validate(net, include_warnings=True) == [
-        "warning: buses 9: base_kv: not given (0); conversions to kV and ohms are not available for them",
-        "warning: buses 9: isolated bus with nothing connected to it"]
+        "warning: buses 9: isolated bus with nothing connected to it",
+        "warning: buses 9: base_kv: not given (0); conversions to kV and ohms are not available for them"]
+    assert model_warnings(net) == ["buses 9: isolated bus with nothing connected to it"]   # no format notes
     check(net)
     # two slack buses in one island: a warning too
     net.buses.loc[1, "kind"] = "slack"
     net.generators = make_table("generators", list(net.generators.to_dict("records")) +
                                 [{"gen_id": "G2", "bus": 2, "mw": 0.0}])
-    assert "warning: island with 2 slack buses: 1, 2" in validate(net, include_warnings=True)
+    assert "warning: island with 2 slack buses: 1, 2 (they share the balancing)" in \
+        validate(net, include_warnings=True)
+    # ... which says so when they hold different voltages or angles (issue: two slacks disagree)
+    net.generators.loc[net.generators.gen_id == "G2", "v_set_pu"] = 1.03
+    net.buses.loc[1, "angle_deg"] = -5.0
+    assert [w for w in model_warnings(net) if "slack" in w] == [
+        "island with 2 slack buses: 1, 2 at different voltages 1, 1.03 pu and angles 0, -5 deg: "
+        "they will exchange power to hold both"]
+    net.generators.loc[net.generators.gen_id == "G2", "v_set_pu"] = 1.0
+    net.buses.loc[1, "angle_deg"] = 0.0
     # an isolated bus that has a load is a real problem
     net.loads = make_table("loads", list(net.loads.to_dict("records")) +
                            [{"load_id": "D9", "bus": 9, "mw": 1.0, "mvar": 0.0}])

@@ -43,14 +43,13 @@ found: a mismatch means a record was lost or added, and is an error.
 """
 from __future__ import annotations
 
-import os
 import re
-import tempfile
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from planner.atomic import write_file
 from planner.errors import InputError, PlannerError
 from planner.network.model import Network, make_table
 
@@ -402,13 +401,5 @@ def write_cdf(net: Network, path) -> None:
 
 
 def _atomic_write_text(path, text: str) -> None:
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent or ".")
-    try:
-        with os.fdopen(fd, "w", encoding="latin-1", errors="replace", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    # CDF files are Latin-1 text; characters outside it are written as '?'
+    write_file(path, text, encoding="latin-1")

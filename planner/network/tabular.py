@@ -43,16 +43,13 @@ from __future__ import annotations
 import csv
 import io
 import math
-import os
 import re
-import shutil
-import tempfile
 import tomllib
-import uuid
 from pathlib import Path
 
 import pandas as pd
 
+from planner.atomic import write_folder
 from planner.errors import InputError
 from planner.network.model import DEFAULTS, TABLES, Network, make_table
 
@@ -293,25 +290,5 @@ def write_tables(net: Network, folder) -> None:
         if extra:
             raise InputError(f"folder holds files that are not network tables ({extra[0]!r}): "
                              "refusing to replace it", file=target)
-    parent = target.parent
-    parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=parent))
-    try:
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(tmp, (target.stat().st_mode & 0o7777) if target.exists() else (0o777 & ~mask))
-        _write_into(net, tmp)
-        if target.exists():
-            old = parent / f".{target.name}.old-{uuid.uuid4().hex[:8]}"
-            os.rename(target, old)
-            try:
-                os.rename(tmp, target)
-            except BaseException:
-                os.rename(old, target)
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, target)
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
+    # the lookup of _write_into at call time keeps it replaceable in tests
+    write_folder(target, lambda tmp: _write_into(net, tmp), own_names=_OUR_FILES)

@@ -67,13 +67,15 @@ def _bus_list(buses) -> str:
 
 
 def _problems_and_warnings(net: Network):
-    problems, warns = [], []
+    """(problems, warnings, notes): warnings are likely modelling mistakes that a person should
+    hear about; notes are facts of the format (CDF's base kV 0) that need no action."""
+    problems, warns, notes = [], [], []
     if not (np.isfinite(net.base_mva) and net.base_mva > 0):
         problems.append(f"network: base_mva: must be a positive number, got {net.base_mva}")
     b = net.buses
     if b.empty:
         problems.append("buses: no buses")
-        return problems, warns
+        return problems, warns, notes
 
     # Ids: unique within each table, and across lines and transformers (both are branches).
     for kind, idcol in ID_COLUMN.items():
@@ -101,7 +103,7 @@ def _problems_and_warnings(net: Network):
     _flag(problems, "buses", b, b.base_kv < 0, "base_kv", lambda r: f"must be positive, got {r.base_kv}")
     no_kv = b.bus[b.base_kv == 0].tolist()
     if no_kv:
-        warns.append(f"buses {_bus_list(no_kv)}: base_kv: not given (0); conversions to kV and ohms "
+        notes.append(f"buses {_bus_list(no_kv)}: base_kv: not given (0); conversions to kV and ohms "
                      "are not available for them")
     _flag(problems, "buses", b, b.v_min_pu >= b.v_max_pu, "v_min_pu, v_max_pu",
           lambda r: f"lower limit {r.v_min_pu} is not below upper limit {r.v_max_pu}")
@@ -138,6 +140,14 @@ def _problems_and_warnings(net: Network):
           lambda r: f"setpoint {r.v_set_pu} pu outside 0.5-1.5")
     _flag(problems, "generators", g, g.q_min_mvar > g.q_max_mvar, "q_min_mvar, q_max_mvar",
           lambda r: f"q_min {r.q_min_mvar} is above q_max {r.q_max_mvar}")
+    # Two generators on one bus hold one voltage: the first in-service one decides (compile).
+    if len(g) > 1:
+        first = g.groupby("bus", sort=False)[["gen_id", "v_set_pu"]].transform("first")
+        differs = (g.v_set_pu - first.v_set_pu).abs().to_numpy() > 1e-9
+        _flag(warns, "generators", g, differs, "v_set_pu",
+              lambda r: f"setpoint {r.v_set_pu:g} pu differs from {first.loc[r.name, 'v_set_pu']:g} pu of "
+                        f"generator {first.loc[r.name, 'gen_id']!r} on the same bus {r.bus}; the first one "
+                        f"({first.loc[r.name, 'gen_id']!r}) is used")
 
     ld = active["loads"]
     for q in ("p", "q"):
@@ -161,7 +171,7 @@ def _problems_and_warnings(net: Network):
     if not slack.any():
         problems.append("buses: kind: no slack bus in the network")
     _islands(net, active, slack, problems, warns)
-    return problems, warns
+    return problems, warns, notes
 
 
 def _islands(net, active, slack, problems, warns):
@@ -191,9 +201,20 @@ def _islands(net, active, slack, problems, warns):
             continue
         noun = "bus" if size[c] == 1 else "buses"
         problems.append(f"island of {size[c]} {noun} with no slack bus: buses {_bus_list(members)}")
+    g = active["generators"]
+    vset = g.groupby("bus", sort=False).v_set_pu.first()
     for c in np.flatnonzero(slack_count > 1):
-        warns.append(f"island with {int(slack_count[c])} slack buses: "
-                     f"{_bus_list(bus_ids[(label == c) & slack])}")
+        members = bus_ids[(label == c) & slack]
+        volts = [float(vset.get(m, np.nan)) for m in members]
+        angles = b.angle_deg.to_numpy(float)[(label == c) & slack]
+        detail = []
+        if np.nanmax(volts) - np.nanmin(volts) > 1e-9:
+            detail.append("voltages " + ", ".join(f"{v:g}" for v in volts) + " pu")
+        if angles.max() - angles.min() > 1e-9:
+            detail.append("angles " + ", ".join(f"{a:g}" for a in angles) + " deg")
+        tail = (f" at different {' and '.join(detail)}: they will exchange power to hold both"
+                if detail else " (they share the balancing)")
+        warns.append(f"island with {int(slack_count[c])} slack buses: {_bus_list(members)}{tail}")
 
 
 def validate(net: Network, include_warnings: bool = False) -> list[str]:
@@ -202,10 +223,27 @@ def validate(net: Network, include_warnings: bool = False) -> list[str]:
     With ``include_warnings=True`` the warnings follow the problems, each starting ``"warning: "``.
     An empty list means the network is fit to compile.
     """
-    problems, warns = _problems_and_warnings(net)
+    problems, warns, notes = _problems_and_warnings(net)
     if include_warnings:
-        problems = problems + [f"warning: {w}" for w in warns]
+        problems = problems + [f"warning: {w}" for w in warns + notes]
     return problems
+
+
+def model_warnings(net: Network) -> list[str]:
+    """Legal but suspicious features of a network, one line each (no ``"warning: "`` prefix):
+    the commands print them as warning lines and a report can list them. Empty when the
+    network looks as intended. Notes about the format (base kV 0 in CDF files) are left out.
+
+    >>> from planner.network.model import Network, make_table
+    >>> net = Network(buses=make_table("buses", [{"bus": 1, "base_kv": 11.0, "kind": "slack"},
+    ...                                          {"bus": 2, "base_kv": 11.0, "kind": "PQ"}]),
+    ...     generators=make_table("generators", [{"gen_id": "A", "bus": 1, "mw": 0.0, "v_set_pu": 1.02},
+    ...                                          {"gen_id": "B", "bus": 1, "mw": 0.0, "v_set_pu": 1.05}]))
+    >>> for w in model_warnings(net): print(w)
+    generators 'B': v_set_pu: setpoint 1.05 pu differs from 1.02 pu of generator 'A' on the same bus 1; the first one ('A') is used
+    buses 2: isolated bus with nothing connected to it
+    """
+    return _problems_and_warnings(net)[1]
 
 
 def check(net: Network) -> Network:
