@@ -29,6 +29,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from planner.errors import InputError
+from planner.inputs import check_regular
 from planner.network.cdf import read_cdf, write_cdf
 from planner.network.model import Network
 from planner.network.tabular import FILES, TOML_NAME, read_tables, write_tables
@@ -45,6 +46,7 @@ def _detect(path: Path) -> str:
         return "tables"
     if path.name == TOML_NAME or path.name in FILES.values():
         return "tables"
+    check_regular(path, "network file")     # a pipe or device would block the sniffing read
     try:
         with open(path, "rb") as fh:
             head = fh.read(_SNIFF_BYTES)

@@ -44,13 +44,13 @@ import csv
 import io
 import math
 import re
-import tomllib
 from pathlib import Path
 
 import pandas as pd
 
 from planner.atomic import write_folder
 from planner.errors import InputError
+from planner.inputs import parse_toml, read_input_bytes
 from planner.network.model import DEFAULTS, TABLES, Network, make_table
 
 TOML_NAME = "network.toml"
@@ -77,10 +77,7 @@ _CANONICAL = {"kind": {"pq": "PQ", "pv": "PV", "slack": "slack"},
 # --- reading --------------------------------------------------------------------------------
 
 def _read_text(path: Path) -> str:
-    try:
-        data = path.read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read file: {exc.strerror or exc}", file=path) from None
+    data = read_input_bytes(path, what="table file")
     try:
         return data.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
@@ -189,8 +186,9 @@ def _ohm_or_us_to_pu(value, how, rec, bus_kv, base_mva, path, lno, rno):
     if bus not in bus_kv:
         raise InputError(f"unknown bus {bus}: its base kV is needed to convert ohms to per unit", **where)
     kv = bus_kv[bus]
-    if not (math.isfinite(kv) and kv > 0):
-        raise InputError(f"bus {bus} has base_kv {kv}: cannot convert ohms to per unit", **where)
+    if not (math.isfinite(kv) and 0.01 <= kv <= 2000):   # below 10 V kV^2 would underflow the base
+        raise InputError(f"bus {bus} has base_kv {kv}: cannot convert ohms to per unit "
+                         "(base kV must be 0.01-2000)", **where)
     z_base = kv * kv / base_mva
     return value / z_base if how == _OHM else value * 1e-6 * z_base
 
@@ -198,10 +196,7 @@ def _ohm_or_us_to_pu(value, how, rec, bus_kv, base_mva, path, lno, rno):
 def _read_toml(path: Path, folder: Path):
     if not path.exists():
         return 100.0, folder.name
-    try:
-        doc = tomllib.loads(_read_text(path))
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(str(exc), file=path) from None
+    doc = parse_toml(_read_text(path), path)
     for key in doc:
         if key not in ("base_mva", "name"):
             raise InputError(f"unknown key {key!r} (expected base_mva, name)", file=path)
