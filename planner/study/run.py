@@ -186,7 +186,7 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
             taps=spec.taps and alt.taps, setpoints_per_level=spec.setpoints_per_level)
 
         def log(entry, _alt=alt):
-            worth = _merit_text(spec, entry["merit"], weights)
+            worth = _merit_text(spec, entry, weights)
             if entry.get("polish"):
                 say(f"  {_alt.name}: local check of one-unit moves, {worth}")
             else:
@@ -206,16 +206,20 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
     return data, plans
 
 
-def _merit_text(spec: StudySpec, merit, weights) -> str:
+def _merit_text(spec: StudySpec, entry, weights) -> str:
     """The optimiser's objective in the units it has: money a year, or hour-weighted mean MW.
-    (Limit breaches add a penalty expressed in the same units.)"""
+    While limits are broken a penalty in the same units is part of it, and the text says so."""
+    merit = entry["merit"]
     if not np.isfinite(merit):
         return "no converged load flow"
     if spec.objective == "cost":
         cur = f"{spec.currency} " if spec.currency else ""
-        return f"cost {cur}{merit:,.0f} a year (losses valued + annualised capital)"
-    hours = float(np.sum(weights)) or 1.0
-    return f"losses {merit / hours:.4f} MW (mean over the year)"
+        text = f"objective {cur}{merit:,.0f} a year"
+    else:
+        text = f"objective {merit / (float(np.sum(weights)) or 1.0):.4f} MW mean losses"
+    if (entry.get("violation") or 0) > 1e-9:
+        text += ", limits broken (penalty included)"
+    return text
 
 
 def _alternative_data(spec, alt, plan: PlanResult, cases, c0, names_by_bus, hours, econ):
