@@ -27,6 +27,10 @@ def _flow(args) -> int:
     if args.csv:
         from .report.atomic import write_report_folder
         write_report_folder(args.csv, flow_tables(res))
+    if args.xlsx:
+        from .network.workbook import write_tables_workbook
+        write_tables_workbook(args.xlsx, {"buses": res.buses, "generators": res.generators,
+                                          "branches": res.branches})
     if not res.converged:
         print(f"error: load flow did not converge: {res.message}; worst bus {res.worst_bus}, "
               f"mismatch {res.worst_mismatch_mva:.4g} MVA", file=sys.stderr)
@@ -50,9 +54,11 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True)
 
     f = sub.add_parser("flow", help="solve the AC load flow of a network file")
-    f.add_argument("model", help="IEEE CDF file, or a folder (or network.toml) in the tabular format")
+    f.add_argument("model", help="IEEE CDF file, .xlsx workbook, or a folder (or network.toml) in the tabular format")
     f.add_argument("--json", metavar="FILE", help="write the full results as JSON")
     f.add_argument("--csv", metavar="FOLDER", help="write bus, generator and branch tables as CSV")
+    f.add_argument("--xlsx", metavar="FILE", help="write bus, generator and branch tables as one workbook "
+                   "(needs openpyxl)")
     f.add_argument("--no-q-limits", action="store_true", help="do not hold generators within reactive limits")
     f.add_argument("--start", choices=["flat", "dc", "stored"], default="flat", help="initial voltages")
     f.add_argument("--max-iter", type=int, default=30, help="Newton iteration limit (default 30)")

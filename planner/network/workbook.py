@@ -239,36 +239,41 @@ def _cell(ws, value, cell_type):
 def workbook_bytes(frames: Mapping[str, pd.DataFrame]) -> bytes:
     """The .xlsx file content of ``frames`` (sheet name -> table): one sheet per table in the
     given order, the column names as a bold, frozen header row, numbers at full precision,
-    NaN and infinities as empty cells, text always as text."""
+    NaN and infinities as empty cells, text always as text. Raises ``ValueError`` for a name
+    a workbook cannot hold (sheet name, or text with control characters)."""
     openpyxl = _openpyxl("writing")
     from openpyxl.cell import WriteOnlyCell
+    from openpyxl.cell.cell import ILLEGAL_CHARACTERS_RE
     from openpyxl.styles import Font
-    from openpyxl.utils.exceptions import IllegalCharacterError
 
-    bold = Font(bold=True)
-    wb = openpyxl.Workbook(write_only=True)
-    seen = set()
-    for name, df in frames.items():
+    sheets, seen = [], set()
+    for name, df in frames.items():   # check everything before the first byte is written
         if not name or len(name) > 31 or set(name) & _BAD_SHEET_CHARS or name.lower() in seen:
             raise ValueError(f"workbook: {name!r} cannot be a sheet name (1-31 characters, none of "
                              "[]:*?/\\, names differing in more than case)")
         seen.add(name.lower())
+        rows = [[str(c) for c in df.columns]]
+        rows += [[_plain(v) for v in row] for row in df.itertuples(index=False, name=None)]
+        for r, row in enumerate(rows, start=1):
+            for k, v in enumerate(row):
+                if isinstance(v, str) and ILLEGAL_CHARACTERS_RE.search(v):
+                    raise ValueError(f"workbook: sheet {name!r} row {r} column {_letter(k)}: text with a "
+                                     "control character that a workbook cannot hold")
+        sheets.append((name, rows))
+
+    bold = Font(bold=True)
+    wb = openpyxl.Workbook(write_only=True)
+    for name, rows in sheets:
         ws = wb.create_sheet(name)
         ws.freeze_panes = "A2"
-        for k, col in enumerate(df.columns):
-            ws.column_dimensions[_letter(k)].width = max(10, len(str(col)) + 2)
-        head = []
-        for col in df.columns:
-            c = _cell(ws, str(col), WriteOnlyCell)
+        for k, col in enumerate(rows[0]):
+            ws.column_dimensions[_letter(k)].width = max(10, len(col) + 2)
+        head = [_cell(ws, col, WriteOnlyCell) for col in rows[0]]
+        for c in head:
             c.font = bold
-            head.append(c)
         ws.append(head)
-        for r, row in enumerate(df.itertuples(index=False, name=None), start=2):
-            try:
-                ws.append([_cell(ws, _plain(v), WriteOnlyCell) for v in row])
-            except IllegalCharacterError:
-                raise ValueError(f"workbook: sheet {name!r} row {r}: text with a control character "
-                                 "that a workbook cannot hold") from None
+        for row in rows[1:]:
+            ws.append([_cell(ws, v, WriteOnlyCell) for v in row])
     out = io.BytesIO()
     wb.save(out)
     return out.getvalue()
