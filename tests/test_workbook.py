@@ -313,3 +313,17 @@ def test_missing_openpyxl_gives_a_clear_error(tmp_path, no_openpyxl, capsys):
     err = capsys.readouterr().err
     assert err == "error: reading .xlsx needs openpyxl: pip install 'planner[xlsx]'\n"
     assert main(["flow", str(FEEDER), "-q"]) == 0                     # the default path needs none
+
+
+def test_csv_tables_of_an_output_folder_as_one_workbook():
+    from planner.network.workbook import csv_files_workbook
+    import io
+    files = {"report.html": "<p>not a table</p>",
+             "levels.csv": "level,hours,losses_mw,note\npeak,1000,0.20267,\nlight,7760,0.0473,NA\n",
+             "banks.csv": "bus,kvar\n30,900\n"}
+    sheets = pd.read_excel(io.BytesIO(csv_files_workbook(files)), sheet_name=None, keep_default_na=False)
+    assert list(sheets) == ["banks", "levels"]
+    assert sheets["levels"].losses_mw.tolist() == [0.20267, 0.0473]
+    assert sheets["levels"].hours.tolist() == [1000, 7760]
+    assert sheets["levels"].note.tolist() == ["", "NA"]          # "NA" is text, not a missing value
+    assert sheets["banks"].to_dict("records") == [{"bus": 30, "kvar": 900}]

@@ -321,6 +321,34 @@ def write_tables_workbook(path, frames: Mapping[str, pd.DataFrame]) -> Path:
     return _write_atomic(path, workbook_bytes(frames))
 
 
+def have_openpyxl() -> bool:
+    """Whether workbooks can be written here (openpyxl installed), for outputs that are extras."""
+    try:
+        _openpyxl("writing")
+    except MissingExtra:
+        return False
+    return True
+
+
+def csv_files_workbook(files: Mapping[str, str]) -> bytes:
+    """One workbook of every ``<table>.csv`` in ``files`` (file name -> CSV text; other files
+    are ignored), a sheet per table named after the file, the values exactly as in the CSV
+    (text that looks like a number becomes a number). For output folders that carry CSV tables,
+    so the workbook beside them says the same thing.
+
+    >>> import pandas as pd
+    >>> data = csv_files_workbook({"losses.csv": "level,losses_mw\\npeak,0.2027\\n", "report.html": "<p>"})
+    >>> import io; pd.read_excel(io.BytesIO(data), sheet_name=None)["losses"].losses_mw.tolist()
+    [0.2027]
+    """
+    frames = {}
+    for name in sorted(files):
+        if name.endswith(".csv"):
+            frames[name[:-4][:31]] = pd.read_csv(io.StringIO(files[name]), keep_default_na=False,
+                                                 na_values=[""])
+    return workbook_bytes(frames)
+
+
 def network_frames(net: Network) -> dict:
     """The sheets of a network workbook: settings, then every table with its canonical columns."""
     frames = {SETTINGS_SHEET: pd.DataFrame({"key": ["name", "base_mva"],
