@@ -247,7 +247,7 @@ def test_failed_write_keeps_the_old_file_and_leaves_no_temporary(tmp_path):
     assert stat.S_IMODE(os.stat(target).st_mode) == 0o640           # the old file's permissions kept
     assert pd.read_excel(target, sheet_name="b").y.tolist()[2] == 2.0
     ws = openpyxl.load_workbook(target)["b"]
-    assert [ws["A2"].value, ws["A3"].value] == [None, None]         # no number to show: empty
+    assert [ws["A2"].value, ws["A3"].value] == [None, "inf"]        # NaN: empty; inf: said in words
     assert ws["A1"].font.b and ws.freeze_panes == "A2"
 
 
@@ -327,3 +327,29 @@ def test_csv_tables_of_an_output_folder_as_one_workbook():
     assert sheets["levels"].hours.tolist() == [1000, 7760]
     assert sheets["levels"].note.tolist() == ["", "NA"]          # "NA" is text, not a missing value
     assert sheets["banks"].to_dict("records") == [{"bus": 30, "kvar": 900}]
+
+
+def test_same_tables_give_the_same_bytes(tmp_path):
+    from planner.network.workbook import workbook_bytes
+    frames = {"buses": pd.DataFrame({"bus": [1, 2], "v_pu": [1.0, 0.1 + 0.2], "name": ["a", "=b"]})}
+    first = workbook_bytes(frames)
+    import time
+    time.sleep(1.1)      # the zip format stores times to 2 s; the save time must not show
+    assert workbook_bytes(frames) == first
+
+
+def test_study_folder_has_results_workbook_with_every_csv_table(tmp_path):
+    from planner.commands.study import run_study_file
+    study = ROOT / "tests" / "data" / "studies" / "feeder33_plan.toml"
+    assert run_study_file(study, out_dir=tmp_path, quiet=True) == 0
+    folder = tmp_path / "feeder33-plan"
+    sheets = pd.read_excel(folder / "results.xlsx", sheet_name=None, keep_default_na=False,
+                           na_values=[""])
+    csvs = sorted(folder.glob("*.csv"))
+    assert csvs and list(sheets) == [p.stem[:31] for p in csvs]
+    for p in csvs:
+        want = pd.read_csv(p, keep_default_na=False, na_values=[""])
+        got = sheets[p.stem[:31]]
+        assert list(got.columns) == list(want.columns), p.name
+        got = got.replace({"inf": math.inf, "-inf": -math.inf})      # text cells for infinities
+        pd.testing.assert_frame_equal(got, want, check_dtype=False, obj=p.name)

@@ -31,6 +31,9 @@ def run_study_file(path, out_dir=None, quiet=False) -> int:
     data, plans = run_study(spec, progress=progress)
     files = report_files(data)
     files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
+    from ..network.workbook import csv_files_workbook, have_openpyxl
+    if have_openpyxl():   # an extra: the same tables as the CSV files, one sheet each
+        files["results.xlsx"] = csv_files_workbook(files)
     folder = write_report_folder(report_folder(spec, out_dir), files)
     if not quiet:
         for alt in data["alternatives"]:

@@ -40,7 +40,9 @@ from __future__ import annotations
 import io
 import math
 import os
+import re
 import tempfile
+import zipfile
 from pathlib import Path
 from typing import Mapping
 
@@ -220,7 +222,9 @@ def _plain(v):
         return int(v)
     if isinstance(v, (float, np.floating)):
         v = float(v)
-        return v if math.isfinite(v) else None   # no number to show: an empty cell
+        if math.isnan(v):
+            return None                            # no number to show: an empty cell
+        return v if math.isfinite(v) else ("inf" if v > 0 else "-inf")   # e.g. a payback never reached
     return str(v)
 
 
@@ -239,7 +243,7 @@ def _cell(ws, value, cell_type):
 def workbook_bytes(frames: Mapping[str, pd.DataFrame]) -> bytes:
     """The .xlsx file content of ``frames`` (sheet name -> table): one sheet per table in the
     given order, the column names as a bold, frozen header row, numbers at full precision,
-    NaN and infinities as empty cells, text always as text. Raises ``ValueError`` for a name
+    NaN as an empty cell, infinities as the text ``inf`` / ``-inf``, text always as text. Raises ``ValueError`` for a name
     a workbook cannot hold (sheet name, or text with control characters)."""
     openpyxl = _openpyxl("writing")
     from openpyxl.cell import WriteOnlyCell
@@ -276,6 +280,24 @@ def workbook_bytes(frames: Mapping[str, pd.DataFrame]) -> bytes:
             ws.append([_cell(ws, v, WriteOnlyCell) for v in row])
     out = io.BytesIO()
     wb.save(out)
+    return _reproducible(out.getvalue())
+
+
+_FIXED_TIME = (1980, 1, 1, 0, 0, 0)
+_STAMP = re.compile(rb"(<dcterms:(?:created|modified)[^>]*>)[^<]*(</dcterms:)")
+
+
+def _reproducible(data: bytes) -> bytes:
+    """The same workbook with the save time taken out (zip entry times and the document's
+    created/modified stamps set to 1980-01-01), so the same tables always give the same bytes."""
+    src, out = zipfile.ZipFile(io.BytesIO(data)), io.BytesIO()
+    with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as dst:
+        for info in src.infolist():
+            body = src.read(info)
+            if info.filename == "docProps/core.xml":
+                body = _STAMP.sub(rb"\g<1>1980-01-01T00:00:00Z\g<2>", body)
+            dst.writestr(zipfile.ZipInfo(info.filename, date_time=_FIXED_TIME), body,
+                         compress_type=zipfile.ZIP_DEFLATED)
     return out.getvalue()
 
 
