@@ -11,10 +11,12 @@ def add_parser(sub):
     f = sub.add_parser("flow", help="solve the AC load flow of a network file",
                        description="Solve the AC load flow (Newton-Raphson) of a network file.",
                        epilog=options.EXIT_EPILOG, formatter_class=options.Formatter)
-    f.add_argument("model", help="IEEE CDF file, or a folder (or network.toml) in the tabular format")
+    f.add_argument("model", help="IEEE CDF file, .xlsx workbook, or a folder (or network.toml) in the tabular format")
     f.add_argument("--json", metavar="FILE", help="write the full results as JSON")
     f.add_argument("--csv", metavar="FOLDER", help="write bus, generator and branch tables as CSV files "
                    "into FOLDER (new, empty, or holding only these tables)")
+    f.add_argument("--xlsx", metavar="FILE", help="write bus, generator and branch tables as one workbook "
+                   "(needs openpyxl)")
     f.add_argument("--no-q-limits", action="store_true", help="do not hold generators within reactive limits")
     f.add_argument("--start", choices=["flat", "dc", "stored"], default="flat", help="initial voltages")
     f.add_argument("--max-iter", type=options.max_iter, default=30, metavar="N",
@@ -59,6 +61,11 @@ def run(args) -> int:
     with options.output_errors("--csv", args.csv):
         if args.csv and res.buses is not None:
             write_folder(args.csv, flow_tables(res), own_names=TABLE_FILES)
+    with options.output_errors("--xlsx", args.xlsx):
+        if args.xlsx and res.buses is not None:
+            from ..network.workbook import write_tables_workbook
+            write_tables_workbook(args.xlsx, {"buses": res.buses, "generators": res.generators,
+                                              "branches": res.branches})
     if not ok:
         con.err(f"error: load flow did not converge: {res.message}; worst bus {res.worst_bus}, "
                 f"mismatch {res.worst_mismatch_mva:.4g} MVA")
