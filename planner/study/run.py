@@ -1,15 +1,17 @@
-"""Run a loss-reduction study: every alternative optimised across the load levels, verified
-by AC load flow at each level, priced, and written up as a report folder.
+"""Run a loss-reduction study: every alternative optimised across the load levels (side by side
+in worker processes), verified by AC load flow at each level, and priced.
 
-Public functions: :func:`level_cases`, :func:`candidate_sites`, :func:`run_study` (returns the
-report data and the plans) and :func:`run_study_file` (the ``planner study`` command).
+Public functions: :func:`level_cases`, :func:`candidate_sites`, :func:`plan_alternatives` (the
+plans only, for ``planner plan``), :func:`run_study` (a typed
+:class:`~planner.study.result.StudyResult`). The report is made from the result by
+:func:`planner.report.convert.report_data`; the ``planner study`` command is
+:mod:`planner.commands.study`.
 """
 from __future__ import annotations
 
 import datetime as _dt
 import os
 import re
-import sys
 from pathlib import Path
 
 import numpy as np
@@ -20,7 +22,7 @@ from ..optimize.engine import LevelCase, PlanResult, optimise
 from ..optimize.levers import BankSite, Levers, Limits, Objective, Options
 from .economics import Economics, capital_recovery_factor, evaluate, npv_sensitivity
 from .result import AlternativeResult, BaseLevel, InputFile, StudyResult, StudyStatus, sha256_of
-from .spec import StudySpec, check_buses, read_study
+from .spec import StudySpec, check_buses
 
 
 def scaled_network(net, p_scale=1.0, q_scale=1.0, bus_scale=None):
@@ -117,18 +119,35 @@ def _levers(spec: StudySpec, alt, sites) -> Levers:
         taps=spec.taps and alt.taps, setpoints_per_level=spec.setpoints_per_level)
 
 
-def _progress_line(alt_name: str, entry: dict) -> str:
-    """One progress line per optimiser step: AC losses per level in MW and the worst limit breach
-    (the optimiser's merit mixes money with a penalty for breaches, which means nothing to a reader)."""
-    ac = entry.get("ac_mw") or {}
-    losses = " / ".join(f"{n} {mw:.3f}" for n, mw in ac.items() if mw is not None and np.isfinite(mw))
+def _merit_text(objective: str, currency: str, weight_sum: float, entry) -> str:
+    """The optimiser's objective in the units it has: money a year, or hour-weighted mean MW.
+    While limits are broken a penalty in the same units is part of it, and the text says so."""
+    merit = entry["merit"]
+    if not np.isfinite(merit):
+        return "no converged load flow"
+    if objective == "cost":
+        cur = f"{currency} " if currency else ""
+        text = f"objective {cur}{merit:,.0f} a year"
+    else:
+        text = f"objective {merit / (weight_sum or 1.0):.4f} MW mean losses"
+    if (entry.get("violation") or 0) > 1e-9:
+        text += ", limits broken (penalty included)"
+    return text
+
+
+def _progress_line(alt_name: str, entry: dict, merit=("losses", "", 1.0)) -> str:
+    """One progress line per optimiser step: the objective in its units and the worst breach.
+
+    >>> _progress_line("A", {"iteration": 2, "accepted": True, "merit": 0.5, "violation": 0.0},
+    ...                ("losses", "", 2.0))
+    '  A: iteration 2 accepted, objective 0.2500 MW mean losses; every limit met'
+    """
     worst = entry.get("worst_violation")
-    state = f"worst breach {worst}" if worst else "every limit met"
-    what = (f"losses {losses} MW; " if losses else "") + state
+    what = _merit_text(*merit, entry) + (f"; worst breach {worst}" if worst else "; every limit met")
     if entry.get("polish"):
-        return f"  {alt_name}: one-unit move kept: {what}"
-    return (f"  {alt_name}: step {entry['iteration']} "
-            f"{'accepted' if entry['accepted'] else 'rejected'}: {what}")
+        return f"  {alt_name}: one-unit move kept, {what}"
+    return (f"  {alt_name}: iteration {entry['iteration']} "
+            f"{'accepted' if entry['accepted'] else 'rejected'}, {what}")
 
 
 _QUEUE = None       # progress queue of a worker process (set by _worker_init)
@@ -141,13 +160,12 @@ def _worker_init(queue):
 
 def _optimize_one(args):
     """Worker: optimise one alternative (runs in a child process when ``jobs > 1``)."""
-    cases, levers, limits, objective, options, alt_name = args
+    cases, levers, limits, objective, options, alt_name, merit = args
     queue = _QUEUE
-    log = None
-    if queue is not None:
-        def log(entry):
-            queue.put(_progress_line(alt_name, entry))
-    return optimise(cases, levers, limits, objective, options, progress=log)
+
+    def log(entry):
+        queue.put(_progress_line(alt_name, entry, merit))
+    return optimise(cases, levers, limits, objective, options, progress=log if queue is not None else None)
 
 
 def default_jobs() -> int:
@@ -180,6 +198,7 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
     options = Options(max_iterations=spec.max_iterations, mip_gap=spec.mip_gap, time_limit_s=spec.step_seconds,
                       merit_rel_tolerance=spec.rel_tolerance)
     alts = list(spec.alternatives)
+    merit = (spec.objective, spec.currency, float(np.sum(weights)))
     jobs = min(max(1, int(jobs if jobs is not None else default_jobs())), max(1, len(alts)))
     say(f"{len(cases)} load levels: " + ", ".join(lc.name for lc in cases)
         + f"; {len(alts)} alternatives" + (f" on {jobs} processes" if jobs > 1 else ""))
@@ -188,13 +207,13 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
         for k, alt in enumerate(alts):
             say(f"alternative {k + 1}/{len(alts)}: {alt.name}")
             plan = optimise(cases, _levers(spec, alt, sites), limits, objective, options,
-                            progress=lambda e, _n=alt.name: say(_progress_line(_n, e)))
+                            progress=lambda e, _n=alt.name: say(_progress_line(_n, e, merit)))
             plans.append((alt, plan))
         return plans
-    return list(zip(alts, _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say)))
+    return list(zip(alts, _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit)))
 
 
-def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say) -> list:
+def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit) -> list:
     import multiprocessing as mp
     import queue as _queue
     from concurrent.futures import ProcessPoolExecutor, wait, FIRST_COMPLETED
@@ -213,7 +232,7 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
         with ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init,
                                  initargs=(q,)) as pool:
             futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
-                                                   alt.name)): k for k, alt in enumerate(alts)}
+                                                   alt.name, merit)): k for k, alt in enumerate(alts)}
             results = [None] * len(alts)
             pending = set(futures)
 
@@ -330,33 +349,6 @@ def slug(text: str) -> str:
 def report_folder(spec: StudySpec, out_dir=None) -> Path:
     parent = Path(out_dir) if out_dir else (spec.output or spec.path.parent / "reports")
     return parent / slug(spec.path.stem)
-
-
-def run_study_file(path, out_dir=None, quiet=False) -> int:
-    """The ``planner study`` command: run, write the report folder atomically, say where it is."""
-    from ..outputs import to_json
-    from ..report.render import report_files
-    from ..report.atomic import write_report_folder
-
-    spec = read_study(path)
-    show = (not quiet) and sys.stderr.isatty()
-    progress = (lambda text: print(text, file=sys.stderr, flush=True)) if show else None
-    result = run_study(spec, progress=progress)
-    from ..report.convert import report_data
-    data = report_data(result)
-    plans = [(a.spec, a.plan) for a in result.alternatives]
-    files = report_files(data)
-    files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
-    folder = write_report_folder(report_folder(spec, out_dir), files)
-    if not quiet:
-        for alt in data["alternatives"]:
-            lv = ", ".join(f"{n} {alt['levels'][n]['losses_mw']:.4f} MW" if alt["levels"][n]["losses_mw"] is not None
-                           else f"{n} not converged" for n in alt["levels"])
-            state = "verified" if alt["verified"] else "NOT verified: " + alt["message"]
-            print(f"{alt['name']}: {state}; losses after: {lv}")
-        print(f"report: {folder / 'report.html'}")
-    # alternatives that cannot meet the limits are findings of the study, not failures of the run
-    return 0 if any(a["verified"] for a in data["alternatives"]) else 1
 
 
 def plan_to_dict(plan: PlanResult) -> dict:
