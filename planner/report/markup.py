@@ -200,7 +200,7 @@ h1 { font-size: 26px; margin: 0 0 6px; }
 h2 { font-size: 21px; margin: 34px 0 10px; padding-bottom: 4px; border-bottom: 1px solid #c8c8c8; }
 h3 { font-size: 17px; margin: 26px 0 8px; }
 h3.alt { border-top: 2px solid #9cc3e0; padding-top: 10px; margin-top: 30px; }
-h2 + h3.alt { border-top: none; padding-top: 0; margin-top: 14px; }
+h2 + .althead h3.alt { border-top: none; padding-top: 0; margin-top: 14px; }
 p.meta { color: #444; margin: 2px 0; font-size: 14px; }
 .summary { border: 1px solid #9cc3e0; background: #f3f8fc; padding: 10px 16px; margin: 14px 0; }
 .summary ul { margin: 6px 0; padding-left: 20px; }
@@ -222,6 +222,7 @@ table.data th { background: #eef1f4; font-weight: 600; }
 table.data td.num, table.data th.num { text-align: right; }
 table.data td.num { white-space: nowrap; }
 table.data.compact td.txt:first-child { white-space: nowrap; }
+table.data.wrapnum td.num { white-space: normal; }
 table.data td.txt, table.data th.txt { text-align: left; }
 table.data.wide td:first-child { white-space: normal; min-width: 12em; }
 table.data tr.unverified td { color: #666; font-style: italic; }
@@ -250,7 +251,8 @@ footer { margin-top: 40px; font-size: 12px; color: #555; border-top: 1px solid #
   table.data.compact { font-size: 8pt; }
   table.data th, table.data td, table.data.compact th, table.data.compact td { padding: 2px 5px; }
   .tablewrap { overflow: visible; }
-  figure, table.data tr, .summary, .warn, .good, dl.criteria { break-inside: avoid; page-break-inside: avoid; }
+  figure, table.data tr, .summary, .warn, .good, dl.criteria, .althead { break-inside: avoid;
+    page-break-inside: avoid; }
   /* short tables move whole to the next page (no orphan rows); long ones repeat their header */
   table.data thead { display: table-header-group; }
   .tablewrap { break-inside: avoid; page-break-inside: avoid; }

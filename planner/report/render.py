@@ -856,7 +856,7 @@ def _inputs(ctx: Context) -> list | None:
         meta.append(("New sites at most", "no cap" if cat.get("max_new_sites") is None else str(cat["max_new_sites"])))
         meta.append(("Capital cap", "none" if cat.get("budget") is None else ctx.fmt(cat["budget"], "money")))
     for g in inp.get("generator_ranges") or []:
-        meta.append((f"Generator set-point range, bus {g['bus']}",
+        meta.append(("Generator set-point range, " + ("every generator" if str(g["bus"]) == "*" else f"bus {g['bus']}"),
                      f"{ctx.fmt(g['v_min_pu'], 'pu')} to {ctx.fmt(g['v_max_pu'], 'pu')} pu"))
     body.append('<dl class="criteria">' + "".join(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in meta if v)
                 + "</dl>")
@@ -918,7 +918,8 @@ def _alternatives(ctx: Context) -> list:
     for a in alts:
         an = a["name"]
         ok = ctx.comp[an]["meets_limits"]
-        body.append(f'<h3 class="alt">{esc(an)}</h3>')
+        # the heading, description and verdict stay together on a printed page
+        body.append(f'<div class="althead"><h3 class="alt">{esc(an)}</h3>')
         if a.get("description"):
             body.append(_p(_sentence(a["description"])))
         lines = lines_by_alt.get(an, [])
@@ -941,6 +942,7 @@ def _alternatives(ctx: Context) -> list:
         how = _how_line(runs[an], ctx)
         if how:
             body.append(_p(how, "how"))
+        body.append("</div>")
         rows = []
         for r in ctx.T["alternative_levels"].rows:
             if r["alternative"] != an:
@@ -1040,22 +1042,25 @@ def _operation(ctx: Context) -> list | None:
     # generators: rows = generator, a column per case, per level "Mvar (pf)"
     g = ctx.T["generators"].rows
     if g:
+        supply = sorted({r["gen_id"] for r in g if r["supply_point"]})
         for n in ctx.names:
             piv: dict = {}
             for r in g:
                 if r["level"] != n or r["case"] not in cases:
                     continue
-                row = piv.setdefault(r["gen_id"], {"gen_id": r["gen_id"] + (" (supply point)" if r["supply_point"] else ""),
-                                                   "bus": r["bus"]})
+                row = piv.setdefault(r["gen_id"], {"gen_id": r["gen_id"], "bus": r["bus"]})
                 cell = f"{ctx.fmt(r['mvar'], 'mvar')}"
                 if r["supply_point"] and r["power_factor"] is not None:
                     cell += f" (pf {ctx.fmt(r['power_factor'], 'pf')})"
                 if r["at_limit"]:
                     cell += " at limit"
                 row[f"c_{cases.index(r['case'])}"] = cell
+            cap = f"Generator Mvar output, {n} level"
+            if supply:
+                cap += f"; supply point {', '.join(supply)} with its power factor"
             body.append(ctx.table(Table("generators", [("gen_id", "Generator", "text"), ("bus", "Bus", "int")]
                                         + [(f"c_{i}", c, "pre") for i, c in enumerate(cases)], list(piv.values())),
-                                  css_class="data compact", caption=f"Generator Mvar output, {n} level"))
+                                  css_class="data compact wrapnum", caption=cap))
     # branch loading: the most loaded rated branches
     br = ctx.T["branch_loading"].rows
     if br:
