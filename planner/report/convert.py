@@ -228,13 +228,21 @@ def report_data(result) -> dict:
         sched = {}
         for g in net.generators.itertuples():
             sched.setdefault(int(g.bus), float(g.v_set_pu))
-        ratio0 = {str(t.xfmr_id): float(t.ratio_pu) for t in net.transformers.itertuples()} \
-            if len(net.transformers) else {}
+        xf = {str(t.xfmr_id): t for t in net.transformers.itertuples()} if len(net.transformers) else {}
         for n in names:
             for s in setpoints[n]:
                 s["v_pu_before"] = sched.get(s["bus"])
             for t in taps[n]:
-                t["ratio_before"] = ratio0.get(t["transformer"])
+                row = xf.get(t["transformer"])
+                if row is None:
+                    continue
+                step = float(row.ratio_step_pu)
+                t["ratio_before"] = float(row.ratio_pu)
+                t["tap_side"] = str(row.tap_side)
+                t["ratio_step_pu"] = step
+                if step > 0:        # tap position: whole steps from a ratio of 1.0 pu
+                    t["position"] = int(round((float(t["ratio"]) - 1.0) / step))
+                    t["position_before"] = int(round((float(row.ratio_pu) - 1.0) / step))
         out = {
             "name": a.name, "description": a.spec.description, "verified": a.verified,
             "message": plan.message, "status": str(_pos(plan.status)),

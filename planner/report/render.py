@@ -370,7 +370,9 @@ def build_tables(data: dict) -> dict[str, Table]:
             for s in lst:
                 taps.append({"alternative": an, "level": n, "xfmr_id": s.get("transformer"),
                              "from_bus": s.get("from_bus"), "to_bus": s.get("to_bus"),
-                             "ratio_before": _f(s.get("ratio_before")), "ratio": _f(s.get("ratio"))})
+                             "tap_side": s.get("tap_side"), "ratio_step_pu": _f(s.get("ratio_step_pu")),
+                             "ratio_before": _f(s.get("ratio_before")), "ratio": _f(s.get("ratio")),
+                             "position_before": s.get("position_before"), "position": s.get("position")})
         for n, lst in (a.get("existing_steps") or {}).items():
             for x in lst or []:
                 existing.append({"alternative": an, "level": n, "shunt_id": x.get("shunt_id"),
@@ -411,7 +413,8 @@ def build_tables(data: dict) -> dict[str, Table]:
                          "trust_radius_pu": _f(c.get("trust_radius_pu")), "accepted": c.get("accepted"),
                          "worst_violation": c.get("worst_violation") or ""})
         e = a.get("economics") or {}
-        priced = bool(ok and e)
+        # a study without costs or values has no money figures to show (not a row of zeros)
+        priced = bool(ok and e and ((_f(e.get("capital_cost")) or 0) > 0 or (_f(e.get("annual_saving")) or 0) != 0))
         if priced:
             for n in e.get("levels", names):
                 eco.append({"alternative": an, "level": n,
@@ -441,7 +444,7 @@ def build_tables(data: dict) -> dict[str, Table]:
                      "payback_years": _f(e.get("payback_years")) if priced else None,
                      "npv": _f(e.get("npv")) if priced else None,
                      "bcr": _f(e.get("bcr")) if priced else None,
-                     "note": (_npv_note(e) if priced else
+                     "note": (_npv_note(e) if priced else "no costs or values in the study" if ok and e else
                               "" if ok else "limits still broken, so no money figures")})
 
     site_cols = [("alternative", "Alternative", "text"), ("bus", "Bus", "int"), ("name", "Bus name", "text"),
@@ -456,8 +459,9 @@ def build_tables(data: dict) -> dict[str, Table]:
         ("bus", "Bus", "int"), ("v_pu_before", "Set-point today (pu)", "pu"), ("v_pu", "Set-point (pu)", "pu")], setp)
     T["taps"] = Table("taps", [
         ("alternative", "Alternative", "text"), ("level", "Load level", "text"), ("xfmr_id", "Transformer", "text"),
-        ("from_bus", "From bus", "int"), ("to_bus", "To bus", "int"),
-        ("ratio_before", "Ratio today (pu)", "pu"), ("ratio", "Ratio (pu)", "pu")], taps)
+        ("from_bus", "From bus", "int"), ("to_bus", "To bus", "int"), ("tap_side", "Ratio on side", "text"),
+        ("ratio_step_pu", "Step (pu)", "pu"), ("ratio_before", "Ratio today (pu)", "pu"), ("ratio", "Ratio (pu)", "pu"),
+        ("position_before", "Position today", "int"), ("position", "Position", "int")], taps)
     T["existing_banks"] = Table("existing_banks", [
         ("alternative", "Alternative", "text"), ("level", "Load level", "text"), ("shunt_id", "Bank", "text"),
         ("bus", "Bus", "int"), ("steps_on", "Steps in service", "int")], existing)
@@ -689,10 +693,27 @@ def _changes(ctx: Context, table: str, alt: str, key: str, before: str, after: s
         row = items.setdefault(k, {c: r.get(c) for c, _, _ in label_cols})
         b, a = r.get(before), r.get(after)
         same = b is not None and a is not None and abs(a - b) < 1e-9
-        row[f"lv_{r['level']}"] = ctx.fmt(a, kind) if same or b is None else f"{ctx.fmt(b, kind)} → {ctx.fmt(a, kind)}"
+
+        def show(v, pos):
+            text = ctx.fmt(v, kind)
+            return text if pos is None else f"{text} ({pos:+d})".replace("(+0)", "(0)").replace("-", "−")
+        pa, pb = r.get("position"), r.get("position_before")
+        row[f"lv_{r['level']}"] = show(a, pa) if same or b is None else f"{show(b, pb)} → {show(a, pa)}"
         row["_changed"] = row.get("_changed", False) or not same
     rows = [r for r in items.values() if r.get("_changed")]
     return Table(table, list(label_cols) + [(f"lv_{n}", n, "pre") for n in ctx.names], rows), len(items)
+
+
+def _tap_note(ctx: Context, alt: str) -> str:
+    """Which side the ratio is on and which way raises the other side (why a ratio goes down)."""
+    sides = {r.get("tap_side") for r in ctx.T["taps"].rows if r["alternative"] == alt}
+    if not sides or sides == {None}:
+        return ""
+    side = "from-bus" if sides == {"from"} else "to-bus" if sides == {"to"} else "named"
+    other = "to-bus" if sides == {"from"} else "from-bus" if sides == {"to"} else "other"
+    return _p(f"Ratios are on the {side} side; the position counts whole steps from a ratio of 1.0 pu. "
+              f"The {other} voltage is about the {side} voltage divided by the ratio, so a lower ratio "
+              f"raises the {other} side.", "note")
 
 
 def _sites_display(ctx: Context, alt: str) -> Table:
@@ -729,8 +750,8 @@ def _recommendation(ctx: Context) -> list:
         return body
     rec = ctx.alt(best["alternative"]) if best is not None else ok[0]
     rn = rec["name"]
-    why = ("highest net present value of the plans that meet every limit" if best is not None
-           else "meets every limit (no money figures in the study)")
+    why = ("highest net present value of the plans that meet every limit" if best is not None and ctx.money
+           else "saves the most loss energy of the plans that meet every limit (the study has no money figures)")
     body.append(f'<p class="lead">Recommended: <strong>{esc(rn)}</strong> — {esc(why)}.</p>')
     sites = _sites_display(ctx, rn)
     if sites.rows:
@@ -742,11 +763,13 @@ def _recommendation(ctx: Context) -> list:
              [("gen_id", "Generator", "text"), ("bus", "Bus", "int")], "Generator voltage set-points that change (pu)"),
             ("taps", "xfmr_id", "ratio_before", "ratio",
              [("xfmr_id", "Transformer", "text"), ("from_bus", "From", "int"), ("to_bus", "To", "int")],
-             "Transformer ratios that change (pu, today → new)")):
+             "Transformer ratios that change (pu, tap position in brackets, today → new)")):
         t, total = _changes(ctx, table, rn, key, before, after, "pu", cols)
         if t.rows:
             body.append(ctx.table(t, css_class="data compact",
                                   caption=f"{caption}: {len(t.rows)} of {total}"))
+            if table == "taps":
+                body.append(_tap_note(ctx, rn))
     m = _margin(ctx, rn)
     bits = []
     if m is not None:
@@ -974,10 +997,12 @@ def _alternatives(ctx: Context) -> list:
                  [("gen_id", "Generator", "text"), ("bus", "Bus", "int")], "Generator voltage set-points (pu)"),
                 ("taps", "xfmr_id", "ratio_before", "ratio",
                  [("xfmr_id", "Transformer", "text"), ("from_bus", "From", "int"), ("to_bus", "To", "int")],
-                 "Transformer ratios that change (pu, today → new)")):
+                 "Transformer ratios that change (pu, tap position in brackets, today → new)")):
             t, total = _changes(ctx, table, an, key, before, after, "pu", cols)
             if t.rows:
                 body.append(ctx.table(t, css_class="data compact", caption=f"{caption}: {len(t.rows)} of {total} change"))
+                if table == "taps":
+                    body.append(_tap_note(ctx, an))
         ex = [r for r in ctx.T["existing_banks"].rows if r["alternative"] == an]
         if ex:
             piv: dict = {}
@@ -1152,7 +1177,8 @@ def _losses(ctx: Context) -> list:
 
 
 def _economics(ctx: Context) -> list:
-    srows = ctx.T["economics_summary"].rows
+    priced = {r["alternative"] for r in ctx.T["comparison"].rows if r["npv"] is not None}
+    srows = [r for r in ctx.T["economics_summary"].rows if r["alternative"] in priced]
     if not srows or not ctx.money:
         return [_p("No money figures: the study gives no costs or values, or no plan meets every limit.")]
     body = [ctx.table(_transposed("economics_summary", srows, _ECO_COLS, ctx), css_class="data wide",
@@ -1260,8 +1286,11 @@ def _criterion_label(key) -> str:
 def _context(data: dict, tables: dict) -> Context:
     names = _check(data)
     comp = {r["alternative"]: r for r in tables["comparison"].rows}
-    ranked = sorted((r for r in tables["comparison"].rows if r["alternative"] != "base case"
-                     and r["meets_limits"] and r["npv"] is not None), key=lambda r: -r["npv"])
+    ok = [r for r in tables["comparison"].rows if r["alternative"] != "base case" and r["meets_limits"]]
+    if any(r["npv"] is not None for r in ok):
+        ranked = sorted((r for r in ok if r["npv"] is not None), key=lambda r: -r["npv"])
+    else:           # no money figures: the plan that saves the most loss energy
+        ranked = sorted((r for r in ok if r["energy_saved_mwh"] is not None), key=lambda r: -r["energy_saved_mwh"])
     nd = data.get("network_drawing") or {}
     controlled = frozenset(list(nd.get("generator_buses") or []) + list(nd.get("slack_buses") or []))
     return Context(data=data, T=tables, names=names, cur=str(data.get("currency", "") or ""), controlled=controlled,
