@@ -154,6 +154,19 @@ def test_payback_never_and_no_money_wording(data):
     assert next(r for r in doc["tables"]["comparison"] if r["alternative"] == alt["name"])["payback_years"] is None
 
 
+def test_study_without_money_shows_no_money_figures():
+    result = run_study(read_study(DATA / "studies" / "feeder33_plan.toml"), jobs=1)   # losses objective, no costs
+    files = report_files(report_data(result))
+    plan = next(r for r in _csv(files, "comparison.csv") if r["alternative"] != "base case")
+    assert plan["meets_limits"] == "true" and float(plan["energy_saved_mwh"]) > 0
+    assert plan["capital_cost"] == plan["npv"] == plan["payback_years"] == ""
+    assert plan["note"] == "no costs or values in the study"
+    page = files["report.html"]
+    assert "saves the most loss energy of the plans that meet every limit" in page
+    assert "No money figures" in _section(page, "economics") and "never" not in page
+    assert files["economics_summary.csv"].count("\n") == 1           # header only
+
+
 def test_engineering_tables(data):
     files = report_files(data)
     gens = _csv(files, "generators.csv")
