@@ -704,6 +704,23 @@ def _changes(ctx: Context, table: str, alt: str, key: str, before: str, after: s
     return Table(table, list(label_cols) + [(f"lv_{n}", n, "pre") for n in ctx.names], rows), len(items)
 
 
+def _settings_changes(ctx: Context, alt: str) -> list:
+    """The set-points and transformer ratios that differ from today, a column per load level."""
+    out = []
+    for table, key, before, after, cols, caption in (
+            ("setpoints", "gen_id", "v_pu_before", "v_pu", [("gen_id", "Generator", "text"), ("bus", "Bus", "int")],
+             "Generator voltage set-points that change (pu, today → new)"),
+            ("taps", "xfmr_id", "ratio_before", "ratio",
+             [("xfmr_id", "Transformer", "text"), ("from_bus", "From", "int"), ("to_bus", "To", "int")],
+             "Transformer ratios that change (pu, tap position in brackets, today → new)")):
+        t, total = _changes(ctx, table, alt, key, before, after, "pu", cols)
+        if t.rows:
+            out.append(ctx.table(t, css_class="data compact", caption=f"{caption}: {len(t.rows)} of {total}"))
+            if table == "taps":
+                out.append(_tap_note(ctx, alt))
+    return out
+
+
 def _tap_note(ctx: Context, alt: str) -> str:
     """Which side the ratio is on and which way raises the other side (why a ratio goes down)."""
     sides = {r.get("tap_side") for r in ctx.T["taps"].rows if r["alternative"] == alt}
@@ -758,18 +775,7 @@ def _recommendation(ctx: Context) -> list:
         body.append(ctx.table(sites, css_class="data compact", caption="New capacitor banks (one row per site)"))
     else:
         body.append(_p("No new capacitor banks."))
-    for table, key, before, after, cols, caption in (
-            ("setpoints", "gen_id", "v_pu_before", "v_pu",
-             [("gen_id", "Generator", "text"), ("bus", "Bus", "int")], "Generator voltage set-points that change (pu)"),
-            ("taps", "xfmr_id", "ratio_before", "ratio",
-             [("xfmr_id", "Transformer", "text"), ("from_bus", "From", "int"), ("to_bus", "To", "int")],
-             "Transformer ratios that change (pu, tap position in brackets, today → new)")):
-        t, total = _changes(ctx, table, rn, key, before, after, "pu", cols)
-        if t.rows:
-            body.append(ctx.table(t, css_class="data compact",
-                                  caption=f"{caption}: {len(t.rows)} of {total}"))
-            if table == "taps":
-                body.append(_tap_note(ctx, rn))
+    body += _settings_changes(ctx, rn)
     m = _margin(ctx, rn)
     bits = []
     if m is not None:
@@ -992,17 +998,7 @@ def _alternatives(ctx: Context) -> list:
             body.append(ctx.table(sites, css_class="data compact", caption="New capacitor banks (one row per site)"))
         elif (a.get("uses") or {}).get("banks", a.get("sites") is not None):
             body.append(_p("No new capacitor banks in this plan."))
-        for table, key, before, after, cols, caption in (
-                ("setpoints", "gen_id", "v_pu_before", "v_pu",
-                 [("gen_id", "Generator", "text"), ("bus", "Bus", "int")], "Generator voltage set-points (pu)"),
-                ("taps", "xfmr_id", "ratio_before", "ratio",
-                 [("xfmr_id", "Transformer", "text"), ("from_bus", "From", "int"), ("to_bus", "To", "int")],
-                 "Transformer ratios that change (pu, tap position in brackets, today → new)")):
-            t, total = _changes(ctx, table, an, key, before, after, "pu", cols)
-            if t.rows:
-                body.append(ctx.table(t, css_class="data compact", caption=f"{caption}: {len(t.rows)} of {total} change"))
-                if table == "taps":
-                    body.append(_tap_note(ctx, an))
+        body += _settings_changes(ctx, an)
         ex = [r for r in ctx.T["existing_banks"].rows if r["alternative"] == an]
         if ex:
             piv: dict = {}
