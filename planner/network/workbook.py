@@ -48,6 +48,7 @@ import numpy as np
 import pandas as pd
 
 from planner.errors import InputError, PlannerError
+from planner.inputs import MAX_NETWORK_BYTES, read_input_bytes
 from planner.network.model import TABLES, Network
 from planner.network.tabular import table_from_cells
 
@@ -62,7 +63,9 @@ class MissingExtra(PlannerError, ImportError):
     """An optional library this feature needs is not installed; the message says how to get it."""
 
 
-def _openpyxl(action: str):
+def need_openpyxl(action: str):
+    """The openpyxl module, or ``MissingExtra`` saying how to install it (``action`` is
+    "reading" or "writing"), so a command can fail before any work."""
     try:
         import openpyxl
     except ImportError:
@@ -177,11 +180,16 @@ def read_workbook(path) -> Network:
     not validated here (``planner.network.io.read_network`` does that). Raises ``InputError``
     naming the file, sheet, row and column of the first value it cannot read."""
     path = Path(path)
-    openpyxl = _openpyxl("reading")
+    openpyxl = need_openpyxl("reading")
+    data = read_input_bytes(path, what="network workbook")    # a regular file, of a bounded size
     try:
-        wb = openpyxl.load_workbook(path, read_only=True, data_only=True)
-    except OSError as exc:
-        raise InputError(f"cannot read file: {exc.strerror or exc}", file=path) from None
+        unpacked = sum(info.file_size for info in zipfile.ZipFile(io.BytesIO(data)).infolist())
+        if unpacked > MAX_NETWORK_BYTES:   # a few kilobytes may unpack to gigabytes
+            raise InputError(f"network workbook unpacks to {unpacked:,} bytes, more than the "
+                             f"{MAX_NETWORK_BYTES:,} accepted", file=path)
+        wb = openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=True)
+    except InputError:
+        raise
     except Exception as exc:   # openpyxl reports a damaged file in many ways (zip, XML, key errors)
         raise InputError(f"not a readable .xlsx workbook ({type(exc).__name__}: {exc})", file=path) from None
     try:
@@ -243,7 +251,7 @@ def workbook_bytes(frames: Mapping[str, pd.DataFrame]) -> bytes:
     given order, the column names as a bold, frozen header row, numbers at full precision,
     NaN as an empty cell, infinities as the text ``inf`` / ``-inf``, text always as text. Raises ``ValueError`` for a name
     a workbook cannot hold (sheet name, or text with control characters)."""
-    openpyxl = _openpyxl("writing")
+    openpyxl = need_openpyxl("writing")
     from openpyxl.cell import WriteOnlyCell
     from openpyxl.cell.cell import ILLEGAL_CHARACTERS_RE
     from openpyxl.styles import Font
@@ -321,7 +329,7 @@ def write_tables_workbook(path, frames: Mapping[str, pd.DataFrame]) -> Path:
 def have_openpyxl() -> bool:
     """Whether workbooks can be written here (openpyxl installed), for outputs that are extras."""
     try:
-        _openpyxl("writing")
+        need_openpyxl("writing")
     except MissingExtra:
         return False
     return True
