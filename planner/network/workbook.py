@@ -75,12 +75,8 @@ def need_openpyxl(action: str):
 
 def _letter(k: int) -> str:
     """Spreadsheet column letter of 0-based column ``k`` (0 -> A, 26 -> AA)."""
-    out = ""
-    k += 1
-    while k:
-        k, rem = divmod(k - 1, 26)
-        out = chr(65 + rem) + out
-    return out
+    from openpyxl.utils import get_column_letter
+    return get_column_letter(k + 1)
 
 
 # --- reading --------------------------------------------------------------------------------
@@ -89,8 +85,8 @@ class SheetPlaces:
     """Where a value of a sheet is, for error messages (the same methods as
     ``tabular.CsvPlaces``): file, sheet, spreadsheet row number, column letter and name."""
 
-    def __init__(self, path: Path, sheet: str, header_row: int, rows, header):
-        self.path, self.sheet, self.header_row, self.rows, self.header = path, sheet, header_row, rows, header
+    def __init__(self, path: Path, sheet: str, header_row: int, rows):
+        self.path, self.sheet, self.header_row, self.rows = path, sheet, header_row, rows
 
     def _at(self, row: int) -> str:
         return f"sheet {self.sheet!r} row {row}"
@@ -206,7 +202,7 @@ def read_workbook(path) -> Network:
             if kind not in wb.sheetnames:
                 continue
             header, hrow, numbers, rows = _sheet_rows(wb[kind], path)
-            places = SheetPlaces(path, kind, hrow, numbers, header)
+            places = SheetPlaces(path, kind, hrow, numbers)
             tables[kind] = table_from_cells(kind, header, rows, bus_kv, base_mva, places)
             if kind == "buses":
                 b = tables["buses"]
