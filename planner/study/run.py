@@ -2,13 +2,12 @@
 by AC load flow at each level, priced, and written up as a report folder.
 
 Public functions: :func:`level_cases`, :func:`candidate_sites`, :func:`run_study` (returns the
-report data and the plans) and :func:`run_study_file` (the ``planner study`` command).
+report data and the plans). The ``planner study`` command is :mod:`planner.commands.study`.
 """
 from __future__ import annotations
 
 import datetime as _dt
 import re
-import sys
 from pathlib import Path
 
 import numpy as np
@@ -273,30 +272,6 @@ def slug(text: str) -> str:
 def report_folder(spec: StudySpec, out_dir=None) -> Path:
     parent = Path(out_dir) if out_dir else (spec.output or spec.path.parent / "reports")
     return parent / slug(spec.path.stem)
-
-
-def run_study_file(path, out_dir=None, quiet=False) -> int:
-    """The ``planner study`` command: run, write the report folder atomically, say where it is."""
-    from ..outputs import to_json
-    from ..report.render import report_files
-    from ..report.atomic import write_report_folder
-
-    spec = read_study(path)
-    show = (not quiet) and sys.stderr.isatty()
-    progress = (lambda text: print(text, file=sys.stderr, flush=True)) if show else None
-    data, plans = run_study(spec, progress=progress)
-    files = report_files(data)
-    files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
-    folder = write_report_folder(report_folder(spec, out_dir), files)
-    if not quiet:
-        for alt in data["alternatives"]:
-            lv = ", ".join(f"{n} {alt['levels'][n]['losses_mw']:.4f} MW" if alt["levels"][n]["losses_mw"] is not None
-                           else f"{n} not converged" for n in alt["levels"])
-            state = "verified" if alt["verified"] else "NOT verified: " + alt["message"]
-            print(f"{alt['name']}: {state}; losses after: {lv}")
-        print(f"report: {folder / 'report.html'}")
-    # alternatives that cannot meet the limits are findings of the study, not failures of the run
-    return 0 if any(a["verified"] for a in data["alternatives"]) else 1
 
 
 def plan_to_dict(plan: PlanResult) -> dict:

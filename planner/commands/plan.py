@@ -1,8 +1,22 @@
-"""The ``planner plan`` command: optimise the levers of a study file at one load level."""
+"""``planner plan``: optimise the levers of a study file at one load level and write the plan."""
 from __future__ import annotations
 
 import sys
 from pathlib import Path
+
+
+def add_parser(sub):
+    pl = sub.add_parser("plan", help="optimise banks, setpoints and taps at one load level")
+    pl.add_argument("study", help="study file (TOML)")
+    pl.add_argument("--json", metavar="FILE", help="where to write the plan (default: beside the study file)")
+    pl.add_argument("--level", help="load level to optimise (default: the heaviest)")
+    pl.add_argument("-q", "--quiet", action="store_true")
+    pl.set_defaults(run=run)
+    return pl
+
+
+def run(args) -> int:
+    return run_plan_file(args.study, json_path=args.json, quiet=args.quiet, level=args.level)
 
 
 def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
