@@ -13,6 +13,10 @@ def add_parser(sub):
     f.add_argument("--start", choices=["flat", "dc", "stored"], default="flat", help="initial voltages")
     f.add_argument("--max-iter", type=int, default=30, help="Newton iteration limit (default 30)")
     f.add_argument("--tol-mva", type=float, default=None, help="mismatch tolerance, MW/Mvar (default 1e-8 pu)")
+    f.add_argument("--no-continuation", action="store_true",
+                   help="do not retry from light load when Newton fails or its solution looks inoperable")
+    f.add_argument("--accept-suspect", action="store_true",
+                   help="exit 0 for a solution the plausibility check marks suspect (likely inoperable)")
     f.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
     f.set_defaults(run=run)
     return f
@@ -26,7 +30,8 @@ def run(args) -> int:
 
     net = read_network(args.model)
     res = solve_flow(net, enforce_q_limits=not args.no_q_limits, start=args.start,
-                     max_iter=args.max_iter, tol_mva=args.tol_mva)
+                     max_iter=args.max_iter, tol_mva=args.tol_mva,
+                     continuation=not args.no_continuation)
     if not args.quiet:
         print(f"network: {net.name or args.model} ({len(net.buses)} buses)")
         print(res.summary())
@@ -35,6 +40,12 @@ def run(args) -> int:
     if args.csv:
         from ..report.atomic import write_report_folder
         write_report_folder(args.csv, flow_tables(res))
+    if res.status.name == "SUSPECT":
+        if args.accept_suspect:
+            print(f"warning: {res.message} (accepted with --accept-suspect)", file=sys.stderr)
+            return 0
+        print(f"error: {res.message}; use --accept-suspect to accept this solution", file=sys.stderr)
+        return 2
     if not res.converged:
         print(f"error: load flow did not converge: {res.message}; worst bus {res.worst_bus}, "
               f"mismatch {res.worst_mismatch_mva:.4g} MVA", file=sys.stderr)
