@@ -51,6 +51,7 @@ import tomllib
 import uuid
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from planner.errors import InputError
@@ -161,29 +162,119 @@ def _read_table(kind: str, path: Path, bus_kv: dict | None, base_mva: float) -> 
             hint = f" (or {alt[0]!r})" if alt else ""
             raise InputError(f"missing required column {c!r}{hint}", file=path)
 
-    records = []
-    for rno, lno, cells in rows:
-        rec = {}
-        for name, raw in zip(header, cells):
-            target, how = units.get(name, (name, None))
-            where = {"file": path, "line": lno, "record": f"row {rno}", "field": name}
-            if raw == "":
-                if target in defaults:
-                    rec[target] = defaults[target]
-                    continue
-                raise InputError("value missing in a required column", **where)
-            dtype = "float64" if how else cols[name]
-            value = _parse(raw, dtype, where)
-            if name in _CANONICAL:
-                value = _CANONICAL[name].get(value.lower(), value)
-            if how == _KILO:
-                value = value / 1000.0
-            elif how in (_OHM, _MICROSIEMENS):
-                value = _ohm_or_us_to_pu(value, how, rec, bus_kv, base_mva, path, lno, rno)
-            rec[target] = value
-        records.append(rec)
-    df = pd.DataFrame(records, columns=[c for c in cols if c in given])
+    columns = _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, path)
+    df = pd.DataFrame(columns, columns=[c for c in cols if c in given])
     return make_table(kind, df)
+
+
+def _record_values(header, cells, rno, lno, cols, units, defaults, bus_kv, base_mva, path) -> dict:
+    """One row converted cell by cell; raises the row's first error (header order)."""
+    rec = {}
+    for name, raw in zip(header, cells):
+        target, how = units.get(name, (name, None))
+        where = {"file": path, "line": lno, "record": f"row {rno}", "field": name}
+        if raw == "":
+            if target in defaults:
+                rec[target] = defaults[target]
+                continue
+            raise InputError("value missing in a required column", **where)
+        dtype = "float64" if how else cols[name]
+        value = _parse(raw, dtype, where)
+        if name in _CANONICAL:
+            value = _CANONICAL[name].get(value.lower(), value)
+        if how == _KILO:
+            value = value / 1000.0
+        elif how in (_OHM, _MICROSIEMENS):
+            value = _ohm_or_us_to_pu(value, how, rec, bus_kv, base_mva, path, lno, rno)
+        rec[target] = value
+    return rec
+
+
+_NUMBER_BYTES = np.zeros(256, bool)
+_NUMBER_BYTES[np.frombuffer(b"0123456789+-.eE", np.uint8)] = True
+
+
+def _plain_number_chars(cells) -> np.ndarray:
+    """Per cell: only digits, signs, point and exponent letters (no ``inf``, ``nan``, ``1_0``),
+    checked on the bytes of the whole column at once. The numeric conversion then refuses any
+    arrangement of these characters that is not a number."""
+    text = "".join(cells)
+    joined = text.encode("utf-8")
+    if text.isascii():
+        lengths = np.fromiter(map(len, cells), np.int64, len(cells))
+    else:
+        lengths = np.fromiter((len(c.encode("utf-8")) for c in cells), np.int64, len(cells))
+    bad_byte = ~_NUMBER_BYTES[np.frombuffer(joined, np.uint8)]
+    row_of_byte = np.repeat(np.arange(len(cells)), lengths)
+    return np.bincount(row_of_byte[bad_byte], minlength=len(cells)) == 0
+
+
+def _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, path) -> dict:
+    """Whole columns converted at once (pandas / numpy). Cells a column conversion cannot take
+    (or takes too generously: ``inf``, ``nan``, ``1_0``) mark their row; marked rows are re-read
+    by :func:`_record_values` in file order, which raises the same one-line error (file, row,
+    line, column) as a row-by-row reader, or supplies the row's values if it finds nothing."""
+    n = len(rows)
+    cells_by_col = list(zip(*[r[2] for r in rows])) if n else [() for _ in header]
+    out: dict[str, np.ndarray] = {}
+    bad = np.zeros(n, bool)
+    kv = None
+    for j, name in enumerate(header):
+        target, how = units.get(name, (name, None))
+        raw = pd.Series(cells_by_col[j], dtype=object) if n else pd.Series([], dtype=object)
+        blank = (raw == "").to_numpy()
+        flagged = blank & (target not in defaults)
+        dtype = "float64" if how else cols[name]
+        default = defaults.get(target)
+        if dtype == "object":
+            vals = raw.to_numpy(object).copy()
+            if name in _CANONICAL:
+                low = raw.str.lower()
+                vals = low.map(_CANONICAL[name]).where(low.isin(list(_CANONICAL[name])), raw).to_numpy(object)
+        elif dtype == "bool":
+            low = raw.str.lower()
+            is_true, is_false = low.isin(_TRUE).to_numpy(), low.isin(_FALSE).to_numpy()
+            flagged |= ~blank & ~is_true & ~is_false
+            vals = is_true
+        else:
+            ok = _plain_number_chars(cells_by_col[j]) if n else np.zeros(0, bool)
+            num = pd.to_numeric(raw.where(ok & ~blank, "0"), errors="coerce").to_numpy(np.float64)
+            flagged |= ~blank & (~ok | ~np.isfinite(num))
+            if dtype == "int64":
+                with np.errstate(invalid="ignore"):
+                    flagged |= ~blank & ((num != np.round(num)) | (np.abs(num) >= 2 ** 63))
+            vals = num
+            if how == _KILO:
+                vals = vals / 1000.0
+            elif how in (_OHM, _MICROSIEMENS):
+                if "from_bus" not in out:          # the row-by-row reader needs from_bus first
+                    flagged |= ~blank
+                else:
+                    if kv is None:
+                        lookup = pd.Series(bus_kv, dtype=np.float64) if bus_kv else pd.Series(dtype=np.float64)
+                        kv = lookup.reindex(out["from_bus"]).to_numpy(np.float64)
+                    usable = np.isfinite(kv) & (kv > 0)
+                    flagged |= ~blank & ~usable
+                    with np.errstate(all="ignore"):
+                        z_base = kv * kv / base_mva
+                        vals = np.where(usable, vals / z_base if how == _OHM else vals * 1e-6 * z_base, 0.0)
+                        flagged |= ~blank & usable & ~np.isfinite(vals)
+        if default is not None or target in defaults:
+            vals = np.where(blank, default, vals) if dtype != "object" else np.where(blank, default, vals)
+        if dtype == "int64":
+            vals = np.where(flagged, 0, vals).astype(np.int64)
+        elif dtype == "bool":
+            vals = np.where(flagged, False, vals).astype(bool)
+        elif dtype != "object":
+            vals = np.where(flagged, 0.0, vals).astype(np.float64)
+        out[target] = vals
+        bad |= flagged
+    for row in np.flatnonzero(bad):
+        rno, lno, cells = rows[row]
+        rec = _record_values(header, cells, rno, lno, cols, units, defaults, bus_kv, base_mva, path)
+        for k, v in rec.items():
+            out[k][row] = v
+    return out
 
 
 def _ohm_or_us_to_pu(value, how, rec, bus_kv, base_mva, path, lno, rno):
