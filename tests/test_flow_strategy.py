@@ -121,7 +121,7 @@ def test_cli_exits_non_zero_on_a_suspect_solution_unless_accepted(tmp_path, caps
     folder = tmp_path / "two"
     write_tables(two_bus_near_low(), folder)
     args = ["flow", str(folder), "--start", "stored", "-q"]
-    assert main(args + ["--no-continuation"]) == 2
+    assert main(args + ["--no-continuation"]) == 1          # done, not a success
     err = capsys.readouterr().err
     assert "--accept-suspect" in err and "far below its band" in err and len(err.strip().splitlines()) == 1
     assert main(args + ["--no-continuation", "--accept-suspect"]) == 0

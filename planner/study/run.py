@@ -186,11 +186,12 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
             taps=spec.taps and alt.taps, setpoints_per_level=spec.setpoints_per_level)
 
         def log(entry, _alt=alt):
+            worth = _merit_text(spec, entry, weights)
             if entry.get("polish"):
-                say(f"  {_alt.name}: local check of one-unit moves, merit {entry['merit']:.6g}")
+                say(f"  {_alt.name}: local check of one-unit moves, {worth}")
             else:
                 say(f"  {_alt.name}: iteration {entry['iteration']}, "
-                    f"{'accepted' if entry['accepted'] else 'rejected'}, merit {entry['merit']:.6g}")
+                    f"{'accepted' if entry['accepted'] else 'rejected'}, {worth}")
         plan = optimise(cases, levers, limits, objective, options, progress=log)
         plans.append((alt, plan))
         if not data["base"]:
@@ -203,6 +204,22 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
                 data["base"][lc.name] = _flow_summary(fr, lo, hi, names_by_bus)
         data["alternatives"].append(_alternative_data(spec, alt, plan, cases, c0, names_by_bus, hours, econ))
     return data, plans
+
+
+def _merit_text(spec: StudySpec, entry, weights) -> str:
+    """The optimiser's objective in the units it has: money a year, or hour-weighted mean MW.
+    While limits are broken a penalty in the same units is part of it, and the text says so."""
+    merit = entry["merit"]
+    if not np.isfinite(merit):
+        return "no converged load flow"
+    if spec.objective == "cost":
+        cur = f"{spec.currency} " if spec.currency else ""
+        text = f"objective {cur}{merit:,.0f} a year"
+    else:
+        text = f"objective {merit / (float(np.sum(weights)) or 1.0):.4f} MW mean losses"
+    if (entry.get("violation") or 0) > 1e-9:
+        text += ", limits broken (penalty included)"
+    return text
 
 
 def _alternative_data(spec, alt, plan: PlanResult, cases, c0, names_by_bus, hours, econ):
