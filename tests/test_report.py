@@ -131,6 +131,16 @@ def test_precision_and_names_in_csv(data):
             # retired names
             for old in ("scale_p", "limit", "violations", "branch", "gen", "steps", "verified"):
                 assert old not in header, (name, old)
+    # the same names in report.json's data as in the CSV files
+    doc = json.loads(files["report.json"])
+
+    def keys(x):
+        if isinstance(x, dict):
+            return set(x) | set().union(*(keys(v) for v in x.values()))
+        if isinstance(x, list):
+            return set().union(*(keys(v) for v in x)) if x else set()
+        return set()
+    assert not keys(doc["data"]) & {"gen", "branch", "transformer", "steps", "limit", "scale_p", "trust"}
     base = _csv(files, "base_case.csv")
     assert base[0]["v_min_bus"] == "18" and "v_min_bus_name" in base[0]     # number and name apart
     html = files["report.html"]

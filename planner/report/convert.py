@@ -51,7 +51,7 @@ def _violations(violations, names_by_bus) -> tuple[list, list]:
                          "limit_pu": float(v.limit)})
         else:
             other.append({"kind": v.kind, "element": _branch_id(v.element), "value": float(v.value),
-                          "limit": float(v.limit), "excess": float(v.excess), "text": v.text()})
+                          "limit_value": float(v.limit), "excess": float(v.excess), "text": v.text()})
     return volt, other
 
 
@@ -81,7 +81,7 @@ def _flow_data(fr, lo, hi, violations, kv_by_bus, names_by_bus, ratings: bool) -
         for g in fr.generators.itertuples():
             p, q = float(g.mw), float(g.mvar)
             s = float(np.hypot(p, q))
-            gens.append({"gen": str(g.gen_id), "bus": int(g.bus), "mw": p, "mvar": q,
+            gens.append({"gen_id": str(g.gen_id), "bus": int(g.bus), "mw": p, "mvar": q,
                          "power_factor": abs(p) / s if s > 0 else None,
                          "q_min_mvar": float(g.q_min_mvar), "q_max_mvar": float(g.q_max_mvar),
                          "at_limit": {"max": "q_max", "min": "q_min"}.get(str(g.at_limit), "")})
@@ -99,7 +99,7 @@ def _flow_data(fr, lo, hi, violations, kv_by_bus, names_by_bus, ratings: bool) -
             loss.append({"element": str(r.element), "base_kv": kv if r.element == "line" else
                          max(kv or 0.0, kv_to or 0.0), "loss_mw": float(r.loss_mw)})
             if ratings and float(r.rating_mva) > 0:
-                br.append({"branch": str(r.branch_id), "element": str(r.element), "from_bus": int(r.from_bus),
+                br.append({"branch_id": str(r.branch_id), "element": str(r.element), "from_bus": int(r.from_bus),
                            "to_bus": int(r.to_bus), "rating_mva": float(r.rating_mva),
                            "loading_pct": float(r.loading_pct)})
     out["branches"] = br
@@ -221,10 +221,9 @@ def report_data(result) -> dict:
             conv.append({"iteration": int(e["iteration"]), "predicted_mw": mean(e.get("predicted_mw")),
                          "ac_mw": mean(e.get("ac_mw")), "trust_radius_pu": e.get("radius_v"),
                          "accepted": bool(e["accepted"]), "worst_violation": e.get("worst_violation")})
-        setpoints = {n: [{"gen": gen_names.get(int(s["bus"]), ""), "bus": int(s["bus"]), "v_pu": float(s["v_pu"])}
+        setpoints = {n: [{"gen_id": gen_names.get(int(s["bus"]), ""), "bus": int(s["bus"]), "v_pu": float(s["v_pu"])}
                          for s in plan.setpoints[n]] for n in names}
-        taps = {n: [{k: t[k] for k in t if k != "xfmr_id"} | {"transformer": str(t["xfmr_id"])}
-                    for t in plan.taps[n]] for n in names}
+        taps = {n: [dict(t, xfmr_id=str(t["xfmr_id"])) for t in plan.taps[n]] for n in names}
         sched = {}
         for g in net.generators.itertuples():
             sched.setdefault(int(g.bus), float(g.v_set_pu))
@@ -233,7 +232,7 @@ def report_data(result) -> dict:
             for s in setpoints[n]:
                 s["v_pu_before"] = sched.get(s["bus"])
             for t in taps[n]:
-                row = xf.get(t["transformer"])
+                row = xf.get(t["xfmr_id"])
                 if row is None:
                     continue
                 step = float(row.ratio_step_pu)
@@ -249,7 +248,9 @@ def report_data(result) -> dict:
             "capital_cost": plan.capital_cost if a.verified else None,
             "sites": _sites(plan, names, names_by_bus, kv_by_bus),
             "setpoints": setpoints, "taps": taps, "levels": levels, "convergence": conv,
-            "existing_steps": plan.existing_steps, "ac_flows": plan.ac_flows,
+            "existing_steps": {n: [{"shunt_id": str(x["shunt_id"]), "bus": int(x["bus"]), "steps_on": int(x["steps"])}
+                                   for x in lst] for n, lst in plan.existing_steps.items()},
+            "ac_flows": plan.ac_flows,
             "milp_solves": plan.milp_solves, "seconds": plan.seconds,
             "remaining_violations": [v.text() for v in plan.violations],
             "uses": {"banks": a.spec.banks, "setpoints": a.spec.setpoints, "taps": a.spec.taps},

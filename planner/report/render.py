@@ -35,9 +35,10 @@ Report data (written by ``report_data``; units in the key names; ``?`` optional)
     alternatives: [{name, description?, verified, message?, status?, capital_cost?,
                     sites?: [{bus, name, base_kv, unit_mvar, fixed_units, switched_units,
                               fixed_mvar, switched_mvar, mvar, switched_on_by_level: {level: n}}],
-                    setpoints?: {level: [{gen, bus, v_pu, v_pu_before?}]},
-                    taps?: {level: [{transformer, from_bus, to_bus, ratio, ratio_before?}]},
-                    existing_steps?: {level: [{shunt_id, bus, steps}]},
+                    setpoints?: {level: [{gen_id, bus, v_pu, v_pu_before?}]},
+                    taps?: {level: [{xfmr_id, from_bus, to_bus, ratio, ratio_before?, tap_side?,
+                                     ratio_step_pu?, position?, position_before?}]},
+                    existing_steps?: {level: [{shunt_id, bus, steps_on}]},
                     levels: {level: FLOW + {verified, predicted_mw?}},
                     convergence?: [{iteration, predicted_mw, ac_mw, trust_radius_pu?, accepted?,
                                     worst_violation?}],
@@ -47,11 +48,11 @@ Report data (written by ``report_data``; units in the key names; ``?`` optional)
 
     FLOW = {converged, losses_mw (None when not converged), losses_mvar?, v_min_pu, v_min_bus,
             v_max_pu, v_max_bus, violations: [{bus, name, v_pu, limit_pu}],
-            other_limits_broken?: [{kind, element, value, limit, excess, text}],
+            other_limits_broken?: [{kind, element, value, limit_value, excess, text}],
             profile?: [{bus, name, base_kv, v_pu, v_min_pu, v_max_pu}],   # each bus's own band
-            generators?: [{gen, bus, mw, mvar, power_factor, q_min_mvar, q_max_mvar, at_limit,
+            generators?: [{gen_id, bus, mw, mvar, power_factor, q_min_mvar, q_max_mvar, at_limit,
                            supply_point}],
-            branches?: [{branch, element, from_bus, to_bus, rating_mva, loading_pct}],
+            branches?: [{branch_id, element, from_bus, to_bus, rating_mva, loading_pct}],
             loss_breakdown?: [{base_kv, element, loss_mw}]}
 
 Bad input raises ``ValueError`` with one line naming the path of the field, e.g.
@@ -283,11 +284,11 @@ def build_tables(data: dict) -> dict[str, Table]:
                              "v_pu": _f(v.get("v_pu")), "limit_pu": _f(v.get("limit_pu"))})
             for v in r.get("other_limits_broken") or []:
                 other.append({"case": case, "level": n, "kind": v.get("kind"), "element": v.get("element"),
-                              "value": _f(v.get("value")), "limit_value": _f(v.get("limit")),
+                              "value": _f(v.get("value")), "limit_value": _f(v.get("limit_value")),
                               "excess": _f(v.get("excess")),
                               "unit": {"loading": "% of rating", "reactive": "Mvar"}.get(v.get("kind"), "")})
             for g in r.get("generators") or []:
-                gens.append({"case": case, "level": n, "gen_id": g.get("gen"), "bus": g.get("bus"),
+                gens.append({"case": case, "level": n, "gen_id": g.get("gen_id"), "bus": g.get("bus"),
                              "supply_point": bool(g.get("supply_point")), "mw": _f(g.get("mw")),
                              "mvar": _f(g.get("mvar")), "power_factor": _f(g.get("power_factor")),
                              "q_min_mvar": _f(g.get("q_min_mvar")), "q_max_mvar": _f(g.get("q_max_mvar")),
@@ -297,7 +298,7 @@ def build_tables(data: dict) -> dict[str, Table]:
                              "base_kv": _f(p.get("base_kv")), "v_pu": _f(p.get("v_pu")),
                              "v_min_pu": _f(p.get("v_min_pu")), "v_max_pu": _f(p.get("v_max_pu"))})
             for b in r.get("branches") or []:
-                branches.append({"case": case, "level": n, "branch_id": b.get("branch"),
+                branches.append({"case": case, "level": n, "branch_id": b.get("branch_id"),
                                  "element": b.get("element"), "from_bus": b.get("from_bus"),
                                  "to_bus": b.get("to_bus"), "rating_mva": _f(b.get("rating_mva")),
                                  "loading_pct": _f(b.get("loading_pct"))})
@@ -364,11 +365,11 @@ def build_tables(data: dict) -> dict[str, Table]:
             sites.append(row)
         for n, lst in (a.get("setpoints") or {}).items():
             for s in lst:
-                setp.append({"alternative": an, "level": n, "gen_id": s.get("gen"), "bus": s.get("bus"),
+                setp.append({"alternative": an, "level": n, "gen_id": s.get("gen_id"), "bus": s.get("bus"),
                              "v_pu_before": _f(s.get("v_pu_before")), "v_pu": _f(s.get("v_pu"))})
         for n, lst in (a.get("taps") or {}).items():
             for s in lst:
-                taps.append({"alternative": an, "level": n, "xfmr_id": s.get("transformer"),
+                taps.append({"alternative": an, "level": n, "xfmr_id": s.get("xfmr_id"),
                              "from_bus": s.get("from_bus"), "to_bus": s.get("to_bus"),
                              "tap_side": s.get("tap_side"), "ratio_step_pu": _f(s.get("ratio_step_pu")),
                              "ratio_before": _f(s.get("ratio_before")), "ratio": _f(s.get("ratio")),
@@ -376,7 +377,7 @@ def build_tables(data: dict) -> dict[str, Table]:
         for n, lst in (a.get("existing_steps") or {}).items():
             for x in lst or []:
                 existing.append({"alternative": an, "level": n, "shunt_id": x.get("shunt_id"),
-                                 "bus": x.get("bus"), "steps_on": x.get("steps")})
+                                 "bus": x.get("bus"), "steps_on": x.get("steps_on")})
         energy, vmins, vmaxs, solved_all = 0.0, [], [], True
         for n in names:
             r = a["levels"][n]
