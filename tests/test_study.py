@@ -513,3 +513,18 @@ def test_bus_names_escaped_in_report(tmp_path):
     assert report["data"]["base"]["peak"]["v_min_bus"] == 18
     row = report["tables"]["base_case"][0]
     assert row["v_min_bus"] == 18 and row["v_min_bus_name"] == "<script>alert(1)</script>"
+
+
+def test_base_case_checked_against_the_optimisers_bands():
+    """Generator buses with a set-point lever are held to their set-point range, in the base case too."""
+    result = run_study(read_study(STUDIES / "ieee14_setpoints.toml"), jobs=1)
+    base = result.base["peak"]
+    plan = result.alternatives[0].plan
+    c = base.flow.compiled
+    lo, hi = plan.bands["peak"]
+    assert (base.v_min == lo).all() and (base.v_max == hi).all()
+    band = dict(zip(c.bus_ids.tolist(), zip(base.v_min.tolist(), base.v_max.tolist())))
+    assert band[1] == (1.00, 1.06) and band[2] == (0.98, 1.10) and band[4] == (0.94, 1.10)
+    # the profile written for the report carries each bus's own band
+    prof = {p["bus"]: p for p in report_data(result)["base"]["peak"]["profile"]}
+    assert (prof[1]["v_min_pu"], prof[1]["v_max_pu"]) == (1.00, 1.06)
