@@ -165,7 +165,18 @@ def _optimize_one(args):
 
     def log(entry):
         queue.put(_progress_line(alt_name, entry, merit))
-    return optimise(cases, levers, limits, objective, options, progress=log if queue is not None else None)
+    plan = optimise(cases, levers, limits, objective, options, progress=log if queue is not None else None)
+    return _without_solver_caches(plan)
+
+
+def _without_solver_caches(plan):
+    """The plan without the load flow's working caches (sparse LU factors, orderings): they cannot
+    be pickled back to the parent process, and nothing after the optimiser needs them."""
+    for fr in list(plan.flows_before.values()) + list(plan.flows_after.values()):
+        c = getattr(fr, "compiled", None)
+        if c is not None and isinstance(getattr(c, "_cache", None), dict):
+            c._cache.clear()        # in the worker, whose copies are about to go
+    return plan
 
 
 def default_jobs() -> int:
