@@ -21,7 +21,7 @@ def add_parser(sub):
                    help=f"Newton iteration limit, {options.MAX_ITER_RANGE} (default 30)")
     f.add_argument("--tol-mva", type=options.tol_mva, default=None, metavar="MVA",
                    help=f"mismatch tolerance in MW/Mvar, {options.TOL_MVA_RANGE} (default 1e-8 pu of the base)")
-    f.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
+    f.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors and warnings")
     f.set_defaults(run=run)
     return f
 

@@ -5,7 +5,7 @@ import math
 from pathlib import Path
 
 from . import options
-from .console import NOT_SUCCESS, OK, Console, Progress
+from .console import NOT_SUCCESS, OK, Console, Progress, check_interrupted, warn_about_model
 
 
 def add_parser(sub):
@@ -17,7 +17,7 @@ def add_parser(sub):
     pl.add_argument("--json", metavar="FILE", help="where to write the plan (default: STUDY.plan.json in the "
                     "study's output folder, the parent of its report folder)")
     pl.add_argument("--level", help="load level to optimise (default: the heaviest)")
-    pl.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
+    pl.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors and warnings")
     pl.set_defaults(run=run)
     return pl
 
@@ -55,6 +55,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
     option = "--json" if json_path else (f"{spec.path.name}: study.output" if spec.output else
                                          "default plan file")
     check_file_target(out, option)
+    warn_about_model(con, spec.network_path)
     spec.levels = chosen
     spec.peak_level = chosen[0].name
     spec.alternatives = [AlternativeSpec(name="plan", description="every lever the study file enables")]
@@ -63,6 +64,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
         _, plans = run_study(spec, progress=progress)
     finally:
         progress.close()
+    check_interrupted()       # a stop during the last solver call must not pass for a result
     plan = plans[0][1]
     with options.output_errors(option, out):
         write_json(out, plan_to_dict(plan))
