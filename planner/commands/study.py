@@ -56,6 +56,9 @@ def run_study_file(path, out_dir=None, quiet=False) -> int:
     check_interrupted()       # a stop during the last solver call must not pass for a result
     files = report_files(data)
     files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
+    from ..network.workbook import csv_files_workbook, have_openpyxl
+    if have_openpyxl():   # an extra: the same tables as the CSV files, one sheet each
+        files["results.xlsx"] = csv_files_workbook(files)
     with options.output_errors(option, target):
         folder = write_report_folder(target, files)
     for alt in data["alternatives"]:
