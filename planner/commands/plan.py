@@ -80,7 +80,28 @@ def plan_verified(plan, level: str) -> bool:
     holds. A failed optimisation step is never called verified, whatever else says so."""
     fr = plan.flows_after.get(level)
     flow_ok = fr is not None and bool(getattr(fr, "success", getattr(fr, "converged", False)))
-    return bool(plan.verified) and bool(getattr(plan, "success", True)) and flow_ok
+    steps = [{"iteration": e.get("iteration", 0), "accepted": e.get("accepted")} for e in plan.log]
+    return bool(plan.verified) and bool(getattr(plan, "success", True)) and flow_ok \
+        and not optimizer_failed(plan.status, steps)
+
+
+def optimizer_failed(status, steps=()) -> bool:
+    """True when the optimiser's status says a step failed (e.g. the MILP could not be solved)
+    before any step was accepted: nothing was optimised, so the plan is not a verified plan,
+    whatever the load flows of the unchanged network show. ``steps`` are the log entries
+    (``iteration``, ``accepted``).
+
+    >>> optimizer_failed("MILP step failed (error)", [{"iteration": 0, "accepted": True}])
+    True
+    >>> optimizer_failed("MILP step failed (time limit)", [{"iteration": 1, "accepted": True}])
+    False
+    >>> optimizer_failed("converged (no further change)")
+    False
+    """
+    name = getattr(status, "name", None) or str(status)
+    if "fail" not in name.lower():
+        return False
+    return not any(s.get("accepted") and s.get("iteration", 0) >= 1 for s in steps)
 
 
 def _num(x) -> float | None:

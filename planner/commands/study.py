@@ -65,7 +65,13 @@ def run_study_file(path, out_dir=None, quiet=False) -> int:
         con.out(alternative_line(alt))
     con.out(f"report: {folder / 'report.html'}", width=None)
     # alternatives that cannot meet the limits are findings of the study, not failures of the run
-    return OK if any(a["verified"] for a in data["alternatives"]) else NOT_SUCCESS
+    return OK if any(verified(a) for a in data["alternatives"]) else NOT_SUCCESS
+
+
+def verified(alt: dict) -> bool:
+    """An alternative is verified only if its plan is and its optimisation did not fail."""
+    from .plan import optimizer_failed
+    return bool(alt["verified"]) and not optimizer_failed(alt.get("status", ""), alt.get("convergence", []))
 
 
 def alternative_line(alt: dict) -> str:
@@ -77,5 +83,5 @@ def alternative_line(alt: dict) -> str:
     """
     lv = ", ".join(f"{n} {d['losses_mw']:.4f} MW" if d.get("losses_mw") is not None else f"{n} not converged"
                    for n, d in alt["levels"].items())
-    state = "verified" if alt["verified"] else "NOT verified: " + str(alt["message"])
+    state = "verified" if verified(alt) else "NOT verified: " + str(alt["message"])
     return f"{alt['name']}: {state}; losses after: {lv}"
