@@ -39,6 +39,10 @@ def check_outputs(args) -> None:
         check_file_target(args.json, "--json")
     if args.csv:
         check_folder_target(args.csv, "--csv", own_names=TABLE_FILES)
+    if args.xlsx:
+        check_file_target(args.xlsx, "--xlsx")
+        from ..network.workbook import need_openpyxl
+        need_openpyxl("writing")
 
 
 def run(args) -> int:
