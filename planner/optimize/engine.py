@@ -54,7 +54,7 @@ def plan(network_or_levels, levers: Levers | None = None, limits: Limits | None 
     >>> result.status.name, [(b["bus"], b["units"]) for b in result.banks]
     ('VERIFIED', [(30, 9)])
     >>> round(result.losses_after_mw["base"] * 1000, 1)    # kW, AC-verified
-    144.0
+    143.6
     """
     levels = network_or_levels if isinstance(network_or_levels, (list, tuple)) \
         else [LevelCase("base", network_or_levels)]

@@ -118,6 +118,23 @@ class PlanResult:
         return (f"PlanResult(status={self.status.name}, banks={len(self.banks)}, losses after: {after}, "
                 f"capital={self.capital_cost:.6g}, violations={len(self.violations)})")
 
+    def to_dict(self) -> dict:
+        """The plan as plain data (JSON-ready apart from numpy scalars): everything but the
+        flows and the internal settings. Two runs of one plan give equal dicts apart from
+        ``seconds``."""
+        return {
+            "success": bool(self.success), "status": self.status.value, "message": self.message,
+            "stop_reason": self.stop_reason, "time_limited": bool(self.time_limited), "levels": list(self.levels),
+            "banks": self.banks, "setpoints": self.setpoints, "taps": self.taps,
+            "existing_steps": self.existing_steps, "losses_before_mw": self.losses_before_mw,
+            "losses_after_mw": self.losses_after_mw, "losses_predicted_mw": self.losses_predicted_mw,
+            "losses_predicted_note": self.predicted_note, "capital_cost": self.capital_cost,
+            "objective_before": self.objective_before, "objective_after": self.objective_after,
+            "bound": self.bound, "violations": [{**asdict(v), "text": v.text()} for v in self.violations],
+            "iterations": [e.to_dict() for e in self.log], "ac_flows": self.ac_flows,
+            "milp_solves": self.milp_solves, "seconds": self.seconds,
+        }
+
     def to_frames(self) -> dict:
         """The plan as pandas tables: ``banks``, ``setpoints``, ``taps``, ``existing_steps``,
         ``violations`` and ``losses`` (one row per level)."""
