@@ -14,6 +14,7 @@ import copy
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from planner.flow.newton import solve_flow
@@ -458,3 +459,66 @@ def test_voltage_rows_move_inside_the_band_where_ac_broke_it(f33):
     lo = dict(zip(rows.v_rows, rows.v_lo))
     assert lo[inside] == pytest.approx(vm[inside])
 
+
+
+# --- honest fields and paralleled transformers -------------------------------------------------
+
+def test_generators_held_at_a_reactive_limit_are_flagged_with_the_voltage_reached(n30):
+    plan = optimize_plan(n30, Levers(gen_v_range={"*": (0.95, 1.10)}), Limits(v_min=0.95, v_max=1.05))
+    fr = plan.flows_after["base"]
+    c = fr.compiled
+    rows = plan.setpoints["base"]
+    assert len(rows) == 6
+    flagged = [r for r in rows if r["at_limit"]]
+    assert flagged                                   # IEEE 30 at its loss optimum leans on Q limits
+    for r in rows:
+        i = c.index_of([r["bus"]])[0]
+        assert r["v_reached_pu"] == pytest.approx(fr.vm[i], abs=1e-12)
+        state = {"max Mvar": 1, "min Mvar": -1, None: 0}[r["at_limit"]]
+        assert fr.limit_state[i] == state
+        if state:                                    # held at the limit: Q sits on it
+            limit = c.q_max[i] if state > 0 else c.q_min[i]
+            assert fr.bus_q_gen[i] == pytest.approx(limit, abs=1e-6)
+    frames = plan.to_frames()
+    got = [x if isinstance(x, str) else None for x in frames["setpoints"]["at_limit"]]
+    assert got == [r["at_limit"] for r in rows]
+    assert list(frames["setpoints"]["bus"]) == [r["bus"] for r in rows]
+    assert "status=VERIFIED" in repr(plan) and len(repr(plan)) < 200
+    # the prediction is for the final plan: its model's figure lies close to the AC figure
+    assert plan.losses_predicted_mw["base"] == pytest.approx(plan.losses_after_mw["base"], rel=2e-3)
+    # the bound: below the verified objective, within the MILP gap of it on this continuous case
+    assert plan.bound["lower_bound"] <= plan.objective_after
+    assert plan.bound["relative_gap"] < 5e-4 and not plan.bound["exceeds_mip_gap"]
+
+
+def test_paralleled_transformers_move_together_and_report_tap_positions():
+    net = read_cdf(DATA / "ieee14cdf.txt")
+    tr = net.transformers.copy()
+    # transformer 4-9 as two identical units in parallel (each twice the reactance), both adjustable
+    twin = tr[tr.xfmr_id == "4-9"].copy()
+    twin["xfmr_id"] = "4-9b"
+    tr = pd.concat([tr, twin], ignore_index=True)
+    pair = tr.xfmr_id.isin(["4-9", "4-9b"])
+    tr.loc[pair, "x_pu"] *= 2.0
+    tr.loc[pair, "adjustable"] = True
+    tr.loc[pair, "ratio_step_pu"] = 0.0125
+    tr.loc[pair, "ratio_pu"] = 1.0
+    net.transformers = tr
+    levers = Levers(taps=True, sites=[BankSite(14, 5.0, 4)])
+    plan = optimize_plan(net, levers, Limits(v_min=0.94, v_max=1.06))
+    taps = {t["xfmr_id"]: t for t in plan.taps["base"]}
+    assert set(taps) == {"4-9", "4-9b"}
+    assert taps["4-9"]["ratio"] == taps["4-9b"]["ratio"]
+    assert taps["4-9"]["parallel_group"] is not None
+    for t in taps.values():
+        assert t["position"] == round((t["ratio"] - 1.0) / 0.0125)
+        assert t["ratio_side"] == 4
+    # the AC flow of the plan has the same ratio on both units
+    fr = plan.flows_after["base"]
+    c = fr.compiled
+    both = np.flatnonzero(np.isin(c.branch_ids, ["4-9", "4-9b"]))
+    assert fr.compiled.ratio[both[0]] == fr.compiled.ratio[both[1]] == taps["4-9"]["ratio"]
+    # told otherwise, the two are separate levers
+    apart = optimize_plan(net, Levers(taps=True, sites=[BankSite(14, 5.0, 4)], parallel_taps_together=False),
+                          Limits(v_min=0.94, v_max=1.06))
+    assert len(apart.taps["base"]) == 2 and all(t["parallel_group"] is None for t in apart.taps["base"])
