@@ -510,6 +510,7 @@ def test_paralleled_transformers_move_together_and_report_tap_positions():
     assert set(taps) == {"4-9", "4-9b"}
     assert taps["4-9"]["ratio"] == taps["4-9b"]["ratio"]
     assert taps["4-9"]["parallel_group"] is not None
+    assert taps["4-9"]["ratio"] != 1.0                # the pair's tap did move (to 1.025 here)
     for t in taps.values():
         assert t["position"] == round((t["ratio"] - 1.0) / 0.0125)
         assert t["ratio_side"] == 4
