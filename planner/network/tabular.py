@@ -68,7 +68,7 @@ UNIT_COLUMNS = {
     "shunts": {"kvar_per_step": ("mvar_per_step", _KILO)},
     "buses": {},
 }
-_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
+_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)   # ASCII digits only: other scripts' digits are not numbers in a table
 _TRUE = {"true", "t", "yes", "y", "1"}
 _FALSE = {"false", "f", "no", "n", "0"}
 _CANONICAL = {"kind": {"pq": "PQ", "pv": "PV", "slack": "slack"},
@@ -304,6 +304,9 @@ def _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, plac
         z_base = np.where(usable, kv * kv / base_mva, 1.0)
         conv = out[target] / z_base if how == _OHM else out[target] * 1e-6 * z_base
         out[target] = np.where(blank, out[target], conv)
+    for k, arr in out.items():                        # vectorised results may be read-only views
+        if isinstance(arr, np.ndarray) and not arr.flags.writeable:
+            out[k] = arr.copy()
     for i in np.flatnonzero(bad):
         rec = _row_values(int(i), rows[i], header, cols, units, defaults, bus_kv, base_mva, places)
         for k, v in rec.items():

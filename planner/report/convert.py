@@ -244,7 +244,9 @@ def report_data(result) -> dict:
                     t["position_before"] = int(round((float(row.ratio_pu) - 1.0) / step))
         out = {
             "name": a.name, "description": a.spec.description, "verified": a.verified,
-            "message": plan.message, "status": str(_pos(plan.status)),
+            "message": plan.message,
+            "status": getattr(plan, "stop_reason", None) or str(_pos(plan.status)),
+            "time_limited": bool(getattr(plan, "time_limited", False)),
             "capital_cost": plan.capital_cost if a.verified else None,
             "sites": _sites(plan, names, names_by_bus, kv_by_bus),
             "setpoints": setpoints, "taps": taps, "levels": levels, "convergence": conv,

@@ -406,6 +406,7 @@ def build_tables(data: dict) -> dict[str, Table]:
             lines += [f"{v['level']}: {v['kind']} at {v['element']}" for v in other if v["case"] == an]
         remaining += [{"alternative": an, "limit_broken": t} for t in lines]
         runs.append({"alternative": an, "meets_limits": ok, "status": a.get("status"),
+                     "time_limited": bool(a.get("time_limited")),
                      "ac_flows": a.get("ac_flows"), "milp_solves": a.get("milp_solves"),
                      "seconds": _f(a.get("seconds")), "limits_broken": len(lines), "message": a.get("message")})
         for c in a.get("convergence") or []:
@@ -480,6 +481,7 @@ def build_tables(data: dict) -> dict[str, Table]:
         ("alternative", "Alternative", "text"), ("meets_limits", "Meets every limit", "bool"),
         ("status", "Optimiser status", "text"), ("ac_flows", "AC load flows", "int"),
         ("milp_solves", "Mixed-integer solves", "int"), ("seconds", "Run time (s)", "years"),
+        ("time_limited", "A step hit its time limit", "bool"),
         ("limits_broken", "Limits broken", "int"), ("message", "Verdict", "text")], runs)
     T["convergence"] = Table("convergence", [
         ("alternative", "Alternative", "text"), ("iteration", "Iteration", "int"),
@@ -1021,6 +1023,9 @@ def _how_line(run: dict, ctx: Context) -> str:
         bits.append(f"{ctx.fmt(run['milp_solves'], 'int')} mixed-integer (MILP) solves")
     if run.get("seconds") is not None:
         bits.append(f"{run['seconds']:.1f} s")
+    if run.get("time_limited"):
+        bits.append("a mixed-integer step stopped at its time limit, so a faster or less loaded machine may "
+                    "find a different plan")
     return ("How the optimiser got here: " + "; ".join(bits) + " (convergence in the appendix).") if bits else ""
 
 
@@ -1235,7 +1240,7 @@ def _cautions(ctx: Context) -> list:
 def _appendix(ctx: Context) -> list | None:
     body = []
     body.append(ctx.table(ctx.T["optimiser_runs"], show=["alternative", "status", "ac_flows", "milp_solves",
-                                                         "seconds", "limits_broken"],
+                                                         "seconds", "time_limited", "limits_broken"],
                           css_class="data compact", caption="Optimiser runs"))
     for a in ctx.data["alternatives"]:
         conv = a.get("convergence") or []

@@ -18,7 +18,7 @@ import numpy as np
 
 from ..network.compile import PQ, compile_network
 from ..network.io import read_network
-from ..optimize.engine import LevelCase, PlanResult, optimise
+from ..optimize.engine import LevelCase, PlanResult, plan as make_plan
 from ..optimize.levers import BankSite, Levers, Limits, Objective, Options
 from .economics import Economics, capital_recovery_factor, evaluate, npv_sensitivity
 from .result import AlternativeResult, BaseLevel, InputFile, StudyResult, StudyStatus, sha256_of
@@ -123,6 +123,8 @@ def _merit_text(objective: str, currency: str, weight_sum: float, entry) -> str:
     """The optimiser's objective in the units it has: money a year, or hour-weighted mean MW.
     While limits are broken a penalty in the same units is part of it, and the text says so."""
     merit = entry["merit"]
+    if merit is None:
+        return "proposed before, not solved again" if entry.get("repeat") else "not checked by AC load flow"
     if not np.isfinite(merit):
         return "no converged load flow"
     if objective == "cost":
@@ -165,7 +167,7 @@ def _optimize_one(args):
 
     def log(entry):
         queue.put(_progress_line(alt_name, entry, merit))
-    plan = optimise(cases, levers, limits, objective, options, progress=log if queue is not None else None)
+    plan = make_plan(cases, levers, limits, objective, options, progress=log if queue is not None else None)
     return _without_solver_caches(plan)
 
 
@@ -217,7 +219,7 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
         plans = []
         for k, alt in enumerate(alts):
             say(f"alternative {k + 1}/{len(alts)}: {alt.name}")
-            plan = optimise(cases, _levers(spec, alt, sites), limits, objective, options,
+            plan = make_plan(cases, _levers(spec, alt, sites), limits, objective, options,
                             progress=lambda e, _n=alt.name: say(_progress_line(_n, e, merit)))
             plans.append((alt, plan))
         return plans
@@ -366,7 +368,9 @@ def plan_to_dict(plan: PlanResult) -> dict:
     """A plan as plain data (the JSON that ``planner plan`` writes, per level)."""
     first = plan.levels[0]
     return {
-        "verified": bool(plan.verified), "status": plan.status, "message": plan.message,
+        "verified": bool(plan.verified), "status": plan.status.value, "stop_reason": plan.stop_reason,
+        "message": plan.message, "time_limited": plan.time_limited, "bound": plan.bound,
+        "losses_predicted_note": plan.predicted_note,
         "levels": plan.levels,
         "banks": [{"bus": b["bus"], "units": b["units"], "mvar": b["mvar"], "fixed_units": b["fixed_units"],
                    "switched_units": b["switched_units"], "steps_by_level": b["steps_by_level"]}
@@ -380,7 +384,7 @@ def plan_to_dict(plan: PlanResult) -> dict:
         "capital_cost": plan.capital_cost,
         "violations": [{"level": v.level, "kind": v.kind, "element": v.element, "value": v.value,
                         "limit": v.limit, "excess": v.excess, "text": v.text()} for v in plan.violations],
-        "iterations": plan.log, "ac_flows": plan.ac_flows, "milp_solves": plan.milp_solves,
+        "iterations": [e.to_dict() for e in plan.log], "ac_flows": plan.ac_flows, "milp_solves": plan.milp_solves,
         "seconds": plan.seconds,
     }
 
