@@ -481,3 +481,17 @@ def test_bus_names_escaped_in_report(tmp_path):
     assert "A &amp; B &quot;q&quot;" in html and "A & B" not in html
     report = json.loads((tmp_path / "out" / "named" / "report.json").read_text())
     assert report["data"]["base"]["peak"]["v_min_bus"] == 18
+
+
+def test_model_warnings_reach_the_report_assumptions(tmp_path):
+    # two generators on bus 1 with different setpoints: legal, probably a mistake; said, not refused
+    net = read_network(FEEDER).copy()
+    from planner.network.model import make_table
+    net.generators = make_table("generators", list(net.generators.to_dict("records")) +
+                                [{"gen_id": "S1b", "bus": 1, "mw": 0.0, "v_set_pu": 1.02}])
+    write_network(net, tmp_path / "twogen")
+    study = write_study(tmp_path, SMALL.format(net="twogen", extra=""), "twogen.toml")
+    data, _ = run_study(read_study(study))
+    assert [a for a in data["assumptions"] if a.startswith("Model warning:")] == [
+        "Model warning: generators 'S1b': v_set_pu: setpoint 1.02 pu differs from 1 pu of generator 'S1' "
+        "on the same bus 1; the first one ('S1') is used."]

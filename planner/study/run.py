@@ -14,6 +14,7 @@ import numpy as np
 
 from ..network.compile import PQ, compile_network
 from ..network.io import read_network
+from ..network.validate import model_warnings
 from ..optimize.engine import LevelCase, PlanResult, plan as make_plan
 from ..optimize.levers import BankSite, Levers, Limits, Objective, Options
 from .economics import Economics, capital_recovery_factor, evaluate
@@ -173,6 +174,8 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
             "settings, with generator reactive limits enforced; linear predictions are shown only beside them.",
         ],
     }
+    # legal but suspicious features of the model (two slacks that disagree, ...): said in the report
+    data["assumptions"] += [f"Model warning: {w}." for w in model_warnings(net)]
     plans = []
     say(f"{len(cases)} load levels: " + ", ".join(lc.name for lc in cases))
     for k, alt in enumerate(spec.alternatives):
