@@ -99,7 +99,7 @@ def test_defaults_of_a_minimal_study(tmp_path):
     assert (s.banks.unit_mvar, s.banks.max_units, s.banks.kinds) == (0.3, 4, ("fixed", "switched"))
     assert s.banks.candidates == [] and s.gen_range is None and s.taps is False
     assert s.objective == "cost" and s.max_iterations == 30
-    assert (s.rel_tolerance, s.mip_gap, s.step_seconds) == (1e-4, 5e-4, 15.0)
+    assert (s.rel_tolerance, s.mip_gap, s.step_seconds) == (1e-4, 5e-4, 120.0)
     assert s.economics["discount_rate"] == 0.07 and s.economics["horizon_years"] == 20
     assert [a.name for a in s.alternatives] == ["Plan"]
     # the [generators] section alone makes setpoints levers, with the documented default range
