@@ -442,6 +442,14 @@ def test_closed_pipe_ends_quietly_with_the_usual_status():
     assert r.stderr == ""
 
 
+def _as_at_a_terminal_on_one_core():
+    # A test runner started in the background inherits an ignored SIGINT, which Python would keep.
+    # One core: the study runs its alternatives in this process (its worker-pool path is not what
+    # this test checks).
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+    os.sched_setaffinity(0, {sorted(os.sched_getaffinity(0))[0]})
+
+
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
 def test_interrupt_stops_cleanly_removes_partial_output_and_exits_130(tmp_path, sig):
     # the demo study runs for minutes: the interrupt lands in the middle of the optimisation
@@ -449,12 +457,10 @@ def test_interrupt_stops_cleanly_removes_partial_output_and_exits_130(tmp_path, 
     proc = subprocess.Popen([sys.executable, "-m", "planner", "study", str(ROOT / "studies" / "wrenfold-2027.toml"),
                              "--out", str(out)], cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             text=True,
-                            # as at a terminal: a test runner started in the background inherits
-                            # an ignored SIGINT, which Python would keep
-                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+                            preexec_fn=_as_at_a_terminal_on_one_core, start_new_session=True)
     import time
     time.sleep(6)
-    proc.send_signal(sig)
+    os.killpg(proc.pid, sig)      # to the whole group, as a terminal's Ctrl-C (worker processes too)
     _, err = proc.communicate(timeout=60)
     assert proc.returncode == 130, err
     assert "Traceback" not in err
