@@ -452,10 +452,15 @@ def test_interrupt_stops_cleanly_removes_partial_output_and_exits_130(tmp_path, 
                             # as at a terminal: a test runner started in the background inherits
                             # an ignored SIGINT, which Python would keep
                             preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
-    import time
-    time.sleep(6)
+    # wait until the optimisation is under way (its first progress line), however busy the machine
+    seen = []
+    while not any("alternative" in ln for ln in seen):
+        line = proc.stderr.readline()
+        assert line, "the study ended before it said anything: " + "".join(seen)
+        seen.append(line)
     proc.send_signal(sig)
     _, err = proc.communicate(timeout=60)
+    err = "".join(seen) + err
     assert proc.returncode == 130, err
     assert "Traceback" not in err
     assert err.strip().splitlines()[-1].startswith("interrupted")
