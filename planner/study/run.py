@@ -158,6 +158,10 @@ _QUEUE = None       # progress queue of a worker process (set by _worker_init)
 def _worker_init(queue):
     global _QUEUE
     _QUEUE = queue
+    # Ctrl-C at a terminal reaches the whole process group: the parent stops the workers itself,
+    # so a worker must not die on it with a traceback of its own
+    import signal
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _optimize_one(args):
@@ -241,28 +245,36 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
     else:
         ctx = mp.get_context("spawn")
     q = ctx.Queue()
+    pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
     try:
-        with ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init,
-                                 initargs=(q,)) as pool:
-            futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
-                                                   alt.name, merit)): k for k, alt in enumerate(alts)}
-            results = [None] * len(alts)
-            pending = set(futures)
+        futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
+                                               alt.name, merit)): k for k, alt in enumerate(alts)}
+        results = [None] * len(alts)
+        pending = set(futures)
 
-            def drain():
-                while True:
-                    try:
-                        say(q.get_nowait())
-                    except _queue.Empty:
-                        return
-            while pending:
-                done, pending = wait(pending, timeout=0.3, return_when=FIRST_COMPLETED)
-                drain()
-                for f in sorted(done, key=lambda f: futures[f]):
-                    k = futures[f]
-                    results[k] = f.result()
-                    say(f"alternative {k + 1}/{len(alts)} done: {alts[k].name}")
+        def drain():
+            while True:
+                try:
+                    say(q.get_nowait())
+                except _queue.Empty:
+                    return
+        while pending:
+            done, pending = wait(pending, timeout=0.3, return_when=FIRST_COMPLETED)
             drain()
+            for f in sorted(done, key=lambda f: futures[f]):
+                k = futures[f]
+                results[k] = f.result()
+                say(f"alternative {k + 1}/{len(alts)} done: {alts[k].name}")
+        drain()
+    except BaseException:
+        # an interrupt or a failed worker: stop the other workers now instead of waiting for their
+        # solves to end (the executor has no public way to end running tasks)
+        for proc in list((getattr(pool, "_processes", None) or {}).values()):
+            proc.terminate()
+        pool.shutdown(wait=False, cancel_futures=True)
+        raise
+    else:
+        pool.shutdown(wait=True)
     finally:
         q.close()
     return results
