@@ -523,3 +523,22 @@ def test_paralleled_transformers_move_together_and_report_tap_positions():
     apart = optimize_plan(net, Levers(taps=True, sites=[BankSite(14, 5.0, 4)], parallel_taps_together=False),
                           Limits(v_min=0.94, v_max=1.06))
     assert len(apart.taps["base"]) == 2 and all(t["parallel_group"] is None for t in apart.taps["base"])
+
+
+def test_levels_checked_in_worker_processes_give_the_serial_plan(f33):
+    # Options.jobs > 1: the AC checks of the levels of each proposal run in worker processes.
+    # Every decision equals the serial run's; figures agree to rounding (a worker's load flow
+    # orders its sparse matrix afresh, the serial run reuses the ordering: ~1e-12 relative)
+    from planner.optimize.levers import Options
+    levels = [LevelCase("peak", f33, 2000.0), LevelCase("light", scaled(f33, 0.4), 6760.0)]
+    levers = Levers(sites=sites_at((14, 24, 30)))
+    lim = Limits(v_min=0.0, v_max=2.0, per_bus={b: (0.0, 0.99) for b in range(26, 34)})
+    serial = optimize_plan(levels, levers, lim, options=Options(jobs=1, bound=False))
+    parallel = optimize_plan(levels, levers, lim, options=Options(jobs=2, bound=False))
+    a, b = serial.to_dict(), parallel.to_dict()
+    for key in ("banks", "setpoints", "taps", "status", "stop_reason", "ac_flows", "milp_solves"):
+        assert a[key] == b[key], key
+    assert [e["accepted"] for e in a["iterations"]] == [e["accepted"] for e in b["iterations"]]
+    for n in ("peak", "light"):
+        assert b["losses_after_mw"][n] == pytest.approx(a["losses_after_mw"][n], rel=1e-9)
+    assert serial.verified and len(serial.banks) >= 1

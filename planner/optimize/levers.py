@@ -85,5 +85,5 @@ class Options:
     max_nodes: int = 500                  # HiGHS branch-and-bound nodes per MILP solve: the work bound
     time_limit_s: float = 120.0           # emergency stop per MILP solve; when it fires the result says so
     bound: bool = True                    # compute the relaxation bound and gap of the final plan
-    jobs: int = 1                         # worker processes for the AC checks of the levels (1 = serial)
+    jobs: int = 1                         # worker processes for the AC checks of the levels (1 = serial; see ac_check)
     blas_threads: int = 1                 # BLAS threads inside a plan (needs threadpoolctl; 0 = leave alone)
