@@ -51,6 +51,16 @@ class Sensitivity:
     dv: np.ndarray = None      # (n, m) complex bus voltage slopes
 
 
+def _jacobian_at(c, v, kind):
+    """The load-flow Jacobian at ``v`` for the given bus kinds: (pattern, matrix, pvpq, pq, dload)."""
+    pv = np.flatnonzero((kind == PV) & c.alive)
+    pq = np.flatnonzero((kind == PQ) & c.alive)
+    pvpq = np.concatenate([pv, pq])
+    pat = JacobianPattern(c.ybus(), pvpq, pq)
+    dload = c.s_load_i + 2.0 * c.s_load_z * np.abs(v)
+    return pat, pat.matrix(v, dload), pvpq, pq, dload
+
+
 def series_current_parts(c):
     """Per branch: series admittance, resistance and the tap factor on the from / to side.
 
@@ -86,13 +96,7 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
     m = ms + mv + mt
 
     y = c.ybus()
-    alive = c.alive
-    pv = np.flatnonzero((kind == PV) & alive)
-    pq = np.flatnonzero((kind == PQ) & alive)
-    pvpq = np.concatenate([pv, pq])
-    pat = JacobianPattern(y, pvpq, pq)
-    dload = c.s_load_i + 2.0 * c.s_load_z * vm
-    J = pat.matrix(v, dload)
+    pat, J, pvpq, pq, dload = _jacobian_at(c, v, kind)
     lu = factorize(J)
     na = len(pvpq)
 
@@ -119,7 +123,7 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
     dv = v[:, None] * (dvm / np.where(vm > 0, vm, 1.0)[:, None] + 1j * dva)
 
     # generator reactive output Q = Im(S_calc) + Q_load(V)
-    gen_buses = np.flatnonzero((kind != PQ) & alive)
+    gen_buses = np.flatnonzero((kind != PQ) & c.alive)
     s_calc = v * np.conj(y @ v)
     q0 = s_calc.imag[gen_buses] + load_power(c, vm).imag[gen_buses] - c.s_gen.imag[gen_buses]
     # dS_dVm already holds the load derivative on its diagonal, so it gives dQ directly.
@@ -222,14 +226,8 @@ def loss_gradient(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -
     v = flow.v
     n = c.n
     vm = np.abs(v)
-    kind = c.kind
     y = c.ybus()
-    pv = np.flatnonzero((kind == PV) & c.alive)
-    pq = np.flatnonzero((kind == PQ) & c.alive)
-    pvpq = np.concatenate([pv, pq])
-    pat = JacobianPattern(y, pvpq, pq)
-    dload = c.s_load_i + 2.0 * c.s_load_z * vm
-    J = pat.matrix(v, dload)
+    pat, J, pvpq, pq, dload = _jacobian_at(c, v, c.kind)
     # dL/dx: column sums of Re(dS) (the load derivative must not count: use plain dS)
     d_va, d_vm = bus_derivatives(y, v, pat.diag_pos, pat.rows, None)
     cols = y.indices
