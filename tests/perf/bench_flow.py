@@ -46,7 +46,7 @@ from planner.network.cdf import read_cdf, write_cdf
 from planner.network.compile import PQ, PV, compile_network
 from planner.network.model import Network
 from planner.network.synthetic import meshed_grid, ring_copies
-from planner.network.tabular import read_tables, write_tables
+from planner.network.tabular import write_tables
 
 DATA = Path(__file__).resolve().parents[1] / "data"
 BASES = {"ring14": "ieee14cdf.txt", "ring30": "ieee30cdf.txt"}
