@@ -276,7 +276,7 @@ def verify_n1(net: Network, outages=None, *, band=EMERGENCY_BAND_PU, bus_bands=N
                         tuple(band), base)
     base_kind = np.where(base.at_limit != 0, PQ, c.kind)
     branch_index = {(str(e), str(b)): i for i, (e, b) in enumerate(zip(c.branch_element, c.branch_ids))}
-    adj = sp.coo_matrix((np.ones(len(c.f)), (c.f, c.t)), shape=(c.n, c.n)).tocsr()
+    adj = None
     screener = _Screen(rf, base, base_kind) if screen else None
     load_mw = (c.s_load_p + c.s_load_i + c.s_load_z).real * c.base_mva
     rows, viol = [], []
@@ -305,8 +305,11 @@ def verify_n1(net: Network, outages=None, *, band=EMERGENCY_BAND_PU, bus_bands=N
                 row["load_cut_mw"] = float(load_mw[cut].sum())
                 row["buses_cut"] = " ".join(str(b) for b in c.bus_ids[cut])
             sol = None
+            start = base
             if screener is not None and not cut.any():
                 v_est = screener.estimate(k)
+                # the estimate is Newton's first step: a full solve continues from it
+                start = PointSolution(True, 0, "", 0, v_est, base.at_limit, -1, 0.0, 0.0)
                 if _clearly_inside(rf, v_est, k, alive, lo, hi, rate, screen_margin_pu, screen_margin_loading,
                                    screener):
                     row["checked_by"] = "estimate"
@@ -315,7 +318,11 @@ def verify_n1(net: Network, outages=None, *, band=EMERGENCY_BAND_PU, bus_bands=N
                     rows.append(row)
                     continue
             if sol is None:
-                sol = rf.solve(branches_out=out_k, alive=alive, start=base)
+                sol = rf.solve(branches_out=out_k, alive=alive, start=start)
+                if start is not base:
+                    sol.iterations += 1       # the step taken by the estimate
+                    if not sol.success:       # a poor estimate: start again from the base case
+                        sol = rf.solve(branches_out=out_k, alive=alive, start=base)
         total_iters += sol.iterations
         row["iterations"] = sol.iterations
         if not sol.success:
@@ -342,12 +349,9 @@ def verify_n1(net: Network, outages=None, *, band=EMERGENCY_BAND_PU, bus_bands=N
 
 
 def _alive_without(c: Compiled, adj, k):
-    a = adj.tolil(copy=True)
-    # remove one stored copy of the edge (parallel branches keep the others)
-    i, j = int(c.f[k]), int(c.t[k])
-    a[i, j] = a[i, j] - 1.0
-    a = a.tocsr()
-    a.eliminate_zeros()
+    keep = np.ones(len(c.f), bool)
+    keep[k] = False          # parallel branches keep the others
+    a = sp.csr_matrix((np.ones(int(keep.sum())), (c.f[keep], c.t[keep])), shape=(c.n, c.n))
     _, comp = connected_components(a, directed=False)
     has_slack = np.bincount(comp, (c.kind == SLACK) & c.alive) > 0
     return has_slack[comp] & c.alive
