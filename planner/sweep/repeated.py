@@ -68,21 +68,38 @@ class PointSolution:
                 f"losses_mw={self.losses_mw:.4f})")
 
 
+DENSE_UP_TO = 400   # unknowns; below this a dense LAPACK solve beats building a sparse LU (Python overhead)
+
+
 class _OrderedSystem:
-    """Jacobian structure for one set of PV / PQ buses, in its fill-reducing order."""
+    """Jacobian structure for one set of PV / PQ buses, in its fill-reducing order (or, for a
+    small system, the positions of its entries in a dense matrix)."""
 
     def __init__(self, y, pvpq, pq, v, dload):
         pattern = JacobianPattern(y, pvpq, pq)
+        self.pvpq, self.pq = pvpq, pq
+        self.size = pattern.size
+        self.dense = self.size <= DENSE_UP_TO
+        if self.dense:
+            cols = np.repeat(np.arange(self.size), np.diff(pattern.indptr))
+            self.flat = pattern.indices.astype(np.int64) * self.size + cols
+            self.src = pattern.src
+            return
         lu = spla.splu(pattern.matrix(v, dload), **_LU_FIRST)
         self.order = np.argsort(lu.perm_c)
         ordered = pattern.permuted(self.order)
         self.src, self.indices, self.indptr = ordered.src, ordered.indices, ordered.indptr
-        self.size = pattern.size
-        self.pvpq, self.pq = pvpq, pq
 
     def solve(self, y, v, dload, rhs, diag_pos, rows):
         d_va, d_vm = bus_derivatives(y, v, diag_pos, rows, dload)
         stacked = np.concatenate([d_va.real, d_vm.real, d_va.imag, d_vm.imag])
+        if self.dense:
+            jac = np.zeros(self.size * self.size)
+            jac[self.flat] = stacked[self.src]
+            try:
+                return np.linalg.solve(jac.reshape(self.size, self.size), rhs)
+            except np.linalg.LinAlgError:
+                raise RuntimeError("singular Jacobian") from None
         jac = sp.csc_matrix((stacked[self.src], self.indices, self.indptr), shape=(self.size, self.size))
         lu = spla.splu(jac, **_LU_ORDERED)
         x = np.empty_like(rhs)
