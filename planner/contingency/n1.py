@@ -242,7 +242,8 @@ class _Screen:
 
 def verify_n1(net: Network, outages=None, *, band=EMERGENCY_BAND_PU, bus_bands=None, ratings: bool = True,
               screen: bool = True, screen_margin_pu: float = 0.02, screen_margin_loading: float = 0.10,
-              tol_mva: float | None = None, max_iter: int = 30) -> N1Result:
+              tol_mva: float | None = None, max_iter: int = 30, where: str | None = None,
+              chunk_size: int = 200, progress=None, client=None) -> N1Result:
     """Solve the network with each outage in turn and check emergency limits.
 
     Parameters
@@ -260,85 +261,38 @@ def verify_n1(net: Network, outages=None, *, band=EMERGENCY_BAND_PU, bus_bands=N
         Estimate branch outages first and skip full AC where the estimate is clearly secure.
     screen_margin_pu, screen_margin_loading : float
         How far inside the band (pu) and below the rating (share) an estimate must be to skip AC.
+    where, chunk_size, progress, client
+        Run the outages as chunks of ``chunk_size`` through :func:`planner.sweep.engine.run_chunks`
+        (``where`` = "serial", "local" or a Dask scheduler address); default: in this process
+        without chunking. Every choice gives the same numbers.
 
     See the module docstring for an example and the modelling choices.
     """
-    c = compile_network(net)
     outages = outage_list(net) if outages is None else list(outages)
-    rf = RepeatedFlow(c, tol_mva=tol_mva, max_iter=max_iter)
-    base = rf.solve()
-    lo, hi = _bands(c, band, bus_bands)
-    rate = emergency_ratings(net, c) if ratings else np.zeros(len(c.f))
+    options = dict(band=band, bus_bands=bus_bands, ratings=ratings, screen=screen,
+                   screen_margin_pu=screen_margin_pu, screen_margin_loading=screen_margin_loading,
+                   tol_mva=tol_mva, max_iter=max_iter)
+    ctx = _Context(net, **options)
+    base = ctx.base
     if not base.success:
         msg = f"base case has no load-flow solution: {base.message}; worst bus {base.worst_bus} " \
               f"mismatch {base.worst_mismatch_mva:.4g} MVA"
         return N1Result(False, N1Status.BASE_FAILED, msg, _outcome_frame([]), _violation_frame([]),
                         tuple(band), base)
-    base_kind = np.where(base.at_limit != 0, PQ, c.kind)
-    branch_index = {(str(e), str(b)): i for i, (e, b) in enumerate(zip(c.branch_element, c.branch_ids))}
-    adj = None
-    screener = _Screen(rf, base, base_kind) if screen else None
-    load_mw = (c.s_load_p + c.s_load_i + c.s_load_z).real * c.base_mva
-    rows, viol = [], []
-    total_iters = 0
     for o in outages:
-        row = dict(element=o.element, element_id=o.element_id, outcome="secure", checked_by="AC", iterations=0,
-                   v_min_pu=np.nan, v_min_bus=-1, v_max_pu=np.nan, v_max_bus=-1, loading_max_pct=np.nan,
-                   loading_max_branch="", load_cut_mw=0.0, buses_cut="", worst_bus=-1, mismatch_mva=0.0,
-                   message="")
-        if o.element == "generator":
-            sol, alive, out_k, rf_used = _generator_outage(net, c, o, base, row, tol_mva, max_iter)
-            if sol is None:
-                rows.append(row)
-                continue
-        else:
-            key = (o.element, o.element_id)
-            if key not in branch_index:
-                raise KeyError(f"outage: no {o.element} in service with id {o.element_id!r}")
-            k = branch_index[key]
-            out_k = [k]
-            rf_used = rf
-            alive = _alive_without(c, adj, k)
-            cut = c.alive & ~alive
-            if cut.any():
-                row["outcome"] = "islanded"
-                row["load_cut_mw"] = float(load_mw[cut].sum())
-                row["buses_cut"] = " ".join(str(b) for b in c.bus_ids[cut])
-            sol = None
-            start = base
-            if screener is not None and not cut.any():
-                v_est = screener.estimate(k)
-                # the estimate is Newton's first step: a full solve continues from it
-                start = PointSolution(True, 0, "", 0, v_est, base.at_limit, -1, 0.0, 0.0)
-                if _clearly_inside(rf, v_est, k, alive, lo, hi, rate, screen_margin_pu, screen_margin_loading,
-                                   screener):
-                    row["checked_by"] = "estimate"
-                    _fill_extremes(row, c, rf, v_est, out_k, alive, rate)
-                    row.pop("_vm", None), row.pop("_alive", None)
-                    rows.append(row)
-                    continue
-            if sol is None:
-                sol = rf.solve(branches_out=out_k, alive=alive, start=start)
-                if start is not base:
-                    sol.iterations += 1       # the step taken by the estimate
-                    if not sol.success:       # a poor estimate: start again from the base case
-                        sol = rf.solve(branches_out=out_k, alive=alive, start=base)
-        total_iters += sol.iterations
-        row["iterations"] = sol.iterations
-        if not sol.success:
-            row.update(outcome="no solution", worst_bus=sol.worst_bus, mismatch_mva=sol.worst_mismatch_mva,
-                       message=sol.message)
-            rows.append(row)
-            continue
-        _fill_extremes(row, rf_used.c, rf_used, sol.v, out_k, alive, rate)
-        broken = _violations(o, row, c.bus_ids, lo, hi)
-        if broken and row["outcome"] == "secure":
-            row["outcome"] = "breaks limits"
-        viol.extend(broken)
-        rows.append(row)
+        ctx.check_known(o)
+    if where is None and client is None:
+        rows, viol = ctx.run(outages)
+    else:
+        from ..sweep.engine import chunked, run_chunks
+        parts = run_chunks(_n1_chunk, chunked(outages, chunk_size), shared={"net": net, "options": options},
+                           where=where or "local", progress=progress, client=client)
+        rows = [r for p in parts for r in p[0]]
+        viol = [v for p in parts for v in p[1]]
     outcomes = _outcome_frame(rows)
     violations = _violation_frame(viol)
-    res = N1Result(True, N1Status.SECURE, "", outcomes, violations, tuple(band), base, total_iters)
+    res = N1Result(True, N1Status.SECURE, "", outcomes, violations, tuple(band), base,
+                   int(outcomes.iterations.sum()))
     if res.count:
         res.status = N1Status.LIMITS_BROKEN
     res.message = (f"{len(outcomes)} outages studied, {res.count} break a limit "
@@ -346,6 +300,95 @@ def verify_n1(net: Network, outages=None, *, band=EMERGENCY_BAND_PU, bus_bands=N
                    f"{int((outcomes.outcome == 'no solution').sum())} without a solution, "
                    f"{int((outcomes.checked_by == 'estimate').sum())} cleared by the estimate)")
     return res
+
+
+def _n1_chunk(shared, outages):
+    """One chunk of outages on a worker; the context is built once per worker and kept."""
+    ctx = shared.get("_ctx")
+    if ctx is None:
+        ctx = shared["_ctx"] = _Context(shared["net"], **shared["options"])
+    return ctx.run(outages)
+
+
+class _Context:
+    """Everything the outages of one network share: compiled arrays, base solution, limits."""
+
+    def __init__(self, net, *, band, bus_bands, ratings, screen, screen_margin_pu, screen_margin_loading,
+                 tol_mva, max_iter):
+        self.net = net
+        c = self.c = compile_network(net)
+        self.rf = RepeatedFlow(c, tol_mva=tol_mva, max_iter=max_iter)
+        self.base = self.rf.solve()
+        self.lo, self.hi = _bands(c, band, bus_bands)
+        self.rate = emergency_ratings(net, c) if ratings else np.zeros(len(c.f))
+        self.margins = (screen_margin_pu, screen_margin_loading)
+        self.tol_mva, self.max_iter = tol_mva, max_iter
+        self.branch_index = {(str(e), str(b)): i for i, (e, b) in enumerate(zip(c.branch_element, c.branch_ids))}
+        self.load_mw = (c.s_load_p + c.s_load_i + c.s_load_z).real * c.base_mva
+        self.screener = None
+        if screen and self.base.success:
+            self.screener = _Screen(self.rf, self.base, np.where(self.base.at_limit != 0, PQ, c.kind))
+
+    def check_known(self, o):
+        if o.element != "generator" and (o.element, o.element_id) not in self.branch_index:
+            raise KeyError(f"outage: no {o.element} in service with id {o.element_id!r}")
+
+    def run(self, outages):
+        rows, viol = [], []
+        for o in outages:
+            row, broken = self.one(o)
+            rows.append(row)
+            viol.extend(broken)
+        return rows, viol
+
+    def one(self, o):
+        c, rf, base = self.c, self.rf, self.base
+        lo, hi, rate = self.lo, self.hi, self.rate
+        row = dict(element=o.element, element_id=o.element_id, outcome="secure", checked_by="AC", iterations=0,
+                   v_min_pu=np.nan, v_min_bus=-1, v_max_pu=np.nan, v_max_bus=-1, loading_max_pct=np.nan,
+                   loading_max_branch="", load_cut_mw=0.0, buses_cut="", worst_bus=-1, mismatch_mva=0.0,
+                   message="")
+        if o.element == "generator":
+            sol, alive, out_k, rf_used = _generator_outage(self.net, c, o, base, row, self.tol_mva, self.max_iter)
+            if sol is None:
+                return row, []
+        else:
+            self.check_known(o)
+            k = self.branch_index[(o.element, o.element_id)]
+            out_k = [k]
+            rf_used = rf
+            alive = _alive_without(c, None, k)
+            cut = c.alive & ~alive
+            if cut.any():
+                row["outcome"] = "islanded"
+                row["load_cut_mw"] = float(self.load_mw[cut].sum())
+                row["buses_cut"] = " ".join(str(b) for b in c.bus_ids[cut])
+            start = base
+            if self.screener is not None and not cut.any():
+                v_est = self.screener.estimate(k)
+                # the estimate is Newton's first step: a full solve continues from it
+                start = PointSolution(True, 0, "", 0, v_est, base.at_limit, -1, 0.0, 0.0)
+                if _clearly_inside(rf, v_est, k, alive, lo, hi, rate, *self.margins, self.screener):
+                    row["checked_by"] = "estimate"
+                    row["iterations"] = 1
+                    _fill_extremes(row, c, rf, v_est, out_k, alive, rate)
+                    row.pop("_vm", None), row.pop("_alive", None)
+                    return row, []
+            sol = rf.solve(branches_out=out_k, alive=alive, start=start)
+            if start is not base:
+                sol.iterations += 1       # the step taken by the estimate
+                if not sol.success:       # a poor estimate: start again from the base case
+                    sol = rf.solve(branches_out=out_k, alive=alive, start=base)
+        row["iterations"] = sol.iterations
+        if not sol.success:
+            row.update(outcome="no solution", worst_bus=sol.worst_bus, mismatch_mva=sol.worst_mismatch_mva,
+                       message=sol.message)
+            return row, []
+        _fill_extremes(row, rf_used.c, rf_used, sol.v, out_k, alive, rate)
+        broken = _violations(o, row, c.bus_ids, lo, hi)
+        if broken and row["outcome"] == "secure":
+            row["outcome"] = "breaks limits"
+        return row, broken
 
 
 def _alive_without(c: Compiled, adj, k):

@@ -157,6 +157,15 @@ def _span(rfs, factors, level_of, banks, steps, lo, hi, first, last, start_sol=N
     return (out, sol) if keep_last else out
 
 
+def _hour_chunk(shared, bounds):
+    """Intervals ``bounds[0] .. bounds[1]-1`` on a worker; repeated-flow structures built once per worker."""
+    rfs = shared.get("_rfs")
+    if rfs is None:
+        rfs = shared["_rfs"] = [RepeatedFlow(c) for c in shared["cases"]]
+    return _span(rfs, shared["factors"], shared["level_of"], shared["banks"], shared["steps"], shared["lo"],
+                 shared["hi"], bounds[0], bounds[1], shared["base"])
+
+
 def _record(out, j, sol, c, lo, hi):
     vm = np.abs(sol.v)
     alive = c.alive
@@ -176,7 +185,8 @@ def _record(out, j, sol, c, lo, hi):
 
 
 def verify_hours(cases, factors, level_of, duration_h, *, band, banks=(), rule="schedule", labels=None,
-                 start_h=None, level_factors=None, spans=None) -> HourlyResult:
+                 start_h=None, level_factors=None, where: str | None = None, chunk_size: int = 400,
+                 progress=None, client=None) -> HourlyResult:
     """Hourly verification of level cases over a profile.
 
     Parameters
@@ -195,9 +205,12 @@ def verify_hours(cases, factors, level_of, duration_h, *, band, banks=(), rule="
     labels, start_h : per-interval texts and start hours, for the tables.
     level_factors : ndarray [L, n], optional
         Each level's own factors; the level cases are solved at them for the level-based estimate.
-    spans : callable, optional
-        ``spans(fn, list_of_(first, last))`` runs schedule-rule spans elsewhere (a sweep); default
-        one span in this process.
+    where, chunk_size, progress, client
+        With the schedule rule, run the intervals as chunks of ``chunk_size`` (each warm-started
+        from the first interval's solution) through :func:`planner.sweep.engine.run_chunks`
+        (``where`` = "serial", "local" or a Dask scheduler address); every choice gives the same
+        numbers. Default: one pass in this process, each interval warm-started from the one before.
+        The voltage rule is sequential by nature and always runs in this process.
     """
     cases = list(cases)
     factors = np.asarray(factors, float)
@@ -213,10 +226,16 @@ def verify_hours(cases, factors, level_of, duration_h, *, band, banks=(), rule="
         out, steps = _voltage_controlled(rfs, factors, level_of, duration_h, banks, rule, lo, hi, base_sol)
     elif rule == "schedule":
         steps = np.array([[b.steps_by_level[l] for b in banks] for l in level_of], np.int64).reshape(T, len(banks))
-        if spans is None:
+        if where is None and client is None:
             out = _span(rfs, factors, level_of, banks, steps, lo, hi, 0, T, base_sol)
         else:
-            out = spans(lambda a, b: _span(rfs, factors, level_of, banks, steps, lo, hi, a, b, base_sol), T)
+            from ..sweep.engine import run_chunks
+            bounds = [(a, min(a + chunk_size, T)) for a in range(0, T, max(1, int(chunk_size)))]
+            shared = dict(cases=cases, factors=factors, level_of=level_of, banks=banks, steps=steps, lo=lo, hi=hi,
+                          base=base_sol)
+            parts = run_chunks(_hour_chunk, bounds, shared=shared, where=where or "local", progress=progress,
+                               client=client)
+            out = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
     else:
         raise ValueError(f"unknown control rule {rule!r}: use 'schedule' or a VoltageRule")
     labels = list(labels) if labels is not None else [""] * T
@@ -307,12 +326,13 @@ def bank_controls(net: Network, n_levels: int = 1) -> list:
 
 
 def verify_profile(net: Network, profile: LoadProfile, *, band=(0.95, 1.05), rule="schedule", groups=None,
-                   levels=None) -> HourlyResult:
+                   levels=None, **sweep) -> HourlyResult:
     """Hourly verification of one network over a profile (see module docstring).
 
     With ``rule="schedule"`` and no ``levels`` the switched banks stay at their present steps;
     with ``levels`` (a :class:`~planner.hourly.cluster.LoadLevels`) the level-based estimate is
-    computed beside the exact energy.
+    computed beside the exact energy. ``sweep`` keywords (``where``, ``chunk_size``, ``progress``,
+    ``client``) go to :func:`verify_hours`.
     """
     c = compile_network(net)
     f = profile.bus_factors(c.bus_ids, net.buses.set_index("bus").loc[c.bus_ids, "area"].to_numpy(), groups)
@@ -324,4 +344,4 @@ def verify_profile(net: Network, profile: LoadProfile, *, band=(0.95, 1.05), rul
     else:
         level_of, L, lf = np.zeros(len(f), np.int64), 1, None
     return verify_hours([c] * L, f, level_of, profile.duration_h, band=band, banks=bank_controls(net, L), rule=rule,
-                        labels=profile.labels, start_h=profile.start_h, level_factors=lf)
+                        labels=profile.labels, start_h=profile.start_h, level_factors=lf, **sweep)
