@@ -150,7 +150,7 @@ def test_screening_never_hides_a_broken_limit(net30):
     cols = ["element_id", "limit_kind", "where"]
     assert full.violations[cols].values.tolist() == fast.violations[cols].values.tolist()
     ac = fast.outcomes.checked_by == "AC"
-    assert np.allclose(fast.outcomes.v_min_pu[ac], full.outcomes.v_min_pu[ac], atol=1e-9, equal_nan=True)
+    assert np.allclose(fast.outcomes.v_min_pu[ac], full.outcomes.v_min_pu[ac], atol=1e-7, equal_nan=True)
     # the estimate itself is close to the full AC answer where it was used
     est = ~ac
     assert np.abs(fast.outcomes.v_min_pu[est] - full.outcomes.v_min_pu[est]).max() < 5e-3

@@ -208,36 +208,95 @@ class _Screen:
         self.q_row[pq] = na + np.arange(len(pq))
         self.q_fixed = np.where(base.at_limit > 0, c.q_max, np.where(base.at_limit < 0, c.q_min, 0.0))
 
-    def estimate(self, k: int) -> np.ndarray:
-        rf, c, v0 = self.rf, self.rf.c, self.base.v
+    def _outage_system(self, k: int):
+        """Admittance, residual function and Woodbury-corrected solver of branch ``k`` out, with
+        the Jacobian held at the base point (the base LU plus a correction of rank <= 4)."""
+        rf, c = self.rf, self.rf.c
         y = rf.y_with(branches_out=[k])
-        vm = np.abs(v0)
-        mis = v0 * np.conj(y @ v0) - (c.s_gen + 1j * self.q_fixed
-                                      - (c.s_load_p + c.s_load_i * vm + c.s_load_z * vm * vm))
-        F = np.concatenate([mis.real[self.pvpq], mis.imag[self.pq]])
+        s_spec = c.s_gen + 1j * self.q_fixed
+        pvpq, pq = self.pvpq, self.pq
+
+        def residual(v):
+            vm = np.abs(v)
+            mis = v * np.conj(y @ v) - (s_spec - (c.s_load_p + c.s_load_i * vm + c.s_load_z * vm * vm))
+            return np.concatenate([mis.real[pvpq], mis.imag[pq]])
+
         pat = self.pattern
         saved = pat.y
         pat.y = y
         try:
-            dj = (pat.matrix(v0, self.dload) - self.j0).tocsr()
+            dj = (pat.matrix(self.base.v, self.dload) - self.j0).tocsr()
         finally:
             pat.y = saved
         rows = np.array([r for r in (self.p_row[c.f[k]], self.p_row[c.t[k]], self.q_row[c.f[k]],
                                      self.q_row[c.t[k]]) if r >= 0], dtype=np.int64)
-        z = self.lu.solve(F)
+        rows = np.unique(rows)
+        lu = self.lu
         if len(rows):
-            u = np.zeros((len(F), len(rows)))
+            u = np.zeros((self.j0.shape[0], len(rows)))
             u[rows, np.arange(len(rows))] = 1.0
-            w = self.lu.solve(u)
+            w = lu.solve(u)
             d = dj[rows].toarray()
-            small = np.eye(len(rows)) + d @ w
-            z = z - w @ np.linalg.solve(small, d @ z)
-        dx = -z
+            small = np.linalg.inv(np.eye(len(rows)) + d @ w)
+
+            def solve(F):
+                z = lu.solve(F)
+                return z - w @ (small @ (d @ z))
+        else:
+            solve = lu.solve
+        return y, residual, solve
+
+    def _step(self, v, dx):
         na = len(self.pvpq)
-        va, vmag = np.angle(v0).copy(), vm.copy()
-        va[self.pvpq] += dx[:na]
-        vmag[self.pq] += dx[na:]
-        return vmag * np.exp(1j * va)
+        vm, va = np.abs(v), np.angle(v)
+        va[self.pvpq] -= dx[:na]
+        vm[self.pq] -= dx[na:]
+        return vm * np.exp(1j * va)
+
+    def estimate(self, k: int) -> np.ndarray:
+        """Voltages after one exact Newton step from the base point with branch ``k`` out."""
+        _, residual, solve = self._outage_system(k)
+        self._last = (k, residual, solve)
+        return self._step(self.base.v, solve(residual(self.base.v)))
+
+    def chord(self, k: int, v: np.ndarray, tol: float, max_iter: int = 12):
+        """Continue from ``v`` with the Jacobian held at the base point (no new factorisation).
+
+        Returns a converged :class:`PointSolution`, or None when the iteration is slow, a
+        generator would pass a reactive limit, or anything looks off (the caller then runs a full
+        Newton solve).
+        """
+        if getattr(self, "_last", (None,))[0] != k:
+            self.estimate(k)
+        _, residual, solve = self._last
+        c = self.rf.c
+        prev = np.inf
+        for it in range(1, max_iter + 1):
+            F = residual(v)
+            norm = float(np.abs(F).max()) if F.size else 0.0
+            if not np.isfinite(norm) or norm > 0.5 * prev:
+                return None
+            if norm <= tol:
+                break
+            prev = norm
+            v = self._step(v, solve(F))
+        else:
+            return None
+        y = self.rf.y_with(branches_out=[k])
+        vm = np.abs(v)
+        if vm[c.alive].min() < 0.5:
+            return None
+        q = (v * np.conj(y @ v)).imag + (c.s_load_p + c.s_load_i * vm + c.s_load_z * vm * vm).imag - c.s_gen.imag
+        pv = (self.kind == PV) & c.alive
+        if (pv & ((q > c.q_max + 1e-9) | (q < c.q_min - 1e-9))).any():
+            return None
+        held = self.base.at_limit != 0
+        back = ((self.base.at_limit > 0) & (vm > c.v_set + 1e-9)) | ((self.base.at_limit < 0) & (vm < c.v_set - 1e-9))
+        if (held & back).any():
+            return None
+        s_f, s_t = self.rf.branch_power(v, [k])
+        return PointSolution(True, 0, f"converged in {it} chord iterations", it, v, self.base.at_limit.copy(),
+                             -1, float(norm * c.base_mva), float((s_f + s_t).real.sum() * c.base_mva))
 
 
 def verify_n1(net: Network, outages=None, *, band=EMERGENCY_BAND_PU, bus_bands=None, ratings: bool = True,
@@ -374,8 +433,13 @@ class _Context:
                     _fill_extremes(row, c, rf, v_est, out_k, alive, rate)
                     row.pop("_vm", None), row.pop("_alive", None)
                     return row, []
-            sol = rf.solve(branches_out=out_k, alive=alive, start=start)
+            sol = None
             if start is not base:
+                # chord iterations on the corrected base LU; a full Newton solve if they stall
+                sol = self.screener.chord(k, start.v, rf.tol)
+            if sol is None:
+                sol = rf.solve(branches_out=out_k, alive=alive, start=start)
+            if start is not base and sol.message.find("chord") < 0:
                 sol.iterations += 1       # the step taken by the estimate
                 if not sol.success:       # a poor estimate: start again from the base case
                     sol = rf.solve(branches_out=out_k, alive=alive, start=base)
