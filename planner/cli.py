@@ -1,92 +1,94 @@
-"""Command line: ``planner flow``, ``planner plan``, ``planner study``.
+"""Command line entry point: ``planner flow``, ``planner plan``, ``planner study``.
 
-Thin on purpose: each command maps to one public function of the package. Heavy modules
+Thin on purpose: the commands live in :mod:`planner.commands`, one module each. Heavy modules
 (the optimiser, Pyomo, the report) are imported inside the command that needs them, so
-``planner flow`` on a small case does not pay for them.
+``planner flow`` on a small case does not pay for them. This module maps every failure to one
+line on stderr and an exit status (:mod:`planner.commands.console` lists them).
 """
 from __future__ import annotations
 
 import argparse
 import sys
+import warnings
+
+from .commands import flow, plan, study
+from .commands.console import (BAD_INPUT, INTERNAL, INTERRUPTED, OUTPUT_PROBLEM, Console,
+                               ignore_further_interrupts, install_signal_handlers)
+from .commands.options import EXIT_EPILOG, Formatter
 
 
-def _flow(args) -> int:
-    from .flow.export import flow_tables, flow_to_dict
-    from .flow.newton import solve_flow
-    from .network.io import read_network
-    from .outputs import write_json_atomic
+class _Parser(argparse.ArgumentParser):
+    """Usage errors as one line, like every other error, with exit status 2."""
 
-    net = read_network(args.model)
-    res = solve_flow(net, enforce_q_limits=not args.no_q_limits, start=args.start,
-                     max_iter=args.max_iter, tol_mva=args.tol_mva)
-    if not args.quiet:
-        print(f"network: {net.name or args.model} ({len(net.buses)} buses)")
-        print(res.summary())
-    if args.json:
-        write_json_atomic(args.json, flow_to_dict(res))
-    if args.csv:
-        from .report.atomic import write_report_folder
-        write_report_folder(args.csv, flow_tables(res))
-    if not res.converged:
-        print(f"error: load flow did not converge: {res.message}; worst bus {res.worst_bus}, "
-              f"mismatch {res.worst_mismatch_mva:.4g} MVA", file=sys.stderr)
-        return 2
-    return 0
+    def error(self, message):
+        Console().err(f"error: {self.prog}: {message} (see {self.prog} --help)")
+        raise SystemExit(BAD_INPUT)
 
 
-def _plan(args) -> int:
-    from .optimize.study_file import run_plan_file
-    return run_plan_file(args.study, json_path=args.json, quiet=args.quiet, level=args.level)
-
-
-def _study(args) -> int:
-    from .study.run import run_study_file
-    return run_study_file(args.study, out_dir=args.out, quiet=args.quiet)
+def _version() -> str:
+    from . import __version__
+    return __version__
 
 
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="planner", description="Loss-reduction planning: load flow, "
-                                "optimised capacitor banks and voltage setpoints, study reports.")
-    sub = p.add_subparsers(dest="command", required=True)
-
-    f = sub.add_parser("flow", help="solve the AC load flow of a network file")
-    f.add_argument("model", help="IEEE CDF file, or a folder (or network.toml) in the tabular format")
-    f.add_argument("--json", metavar="FILE", help="write the full results as JSON")
-    f.add_argument("--csv", metavar="FOLDER", help="write bus, generator and branch tables as CSV")
-    f.add_argument("--no-q-limits", action="store_true", help="do not hold generators within reactive limits")
-    f.add_argument("--start", choices=["flat", "dc", "stored"], default="flat", help="initial voltages")
-    f.add_argument("--max-iter", type=int, default=30, help="Newton iteration limit (default 30)")
-    f.add_argument("--tol-mva", type=float, default=None, help="mismatch tolerance, MW/Mvar (default 1e-8 pu)")
-    f.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
-    f.set_defaults(run=_flow)
-
-    pl = sub.add_parser("plan", help="optimise banks, setpoints and taps at one load level")
-    pl.add_argument("study", help="study file (TOML)")
-    pl.add_argument("--json", metavar="FILE", help="where to write the plan (default: beside the study file)")
-    pl.add_argument("--level", help="load level to optimise (default: the heaviest)")
-    pl.add_argument("-q", "--quiet", action="store_true")
-    pl.set_defaults(run=_plan)
-
-    st = sub.add_parser("study", help="run a loss-reduction study across load levels and write its report")
-    st.add_argument("study", help="study file (TOML)")
-    st.add_argument("--out", metavar="FOLDER", help="parent folder of the report (default: beside the study file)")
-    st.add_argument("-q", "--quiet", action="store_true", help="no progress or summary output")
-    st.set_defaults(run=_study)
+    p = _Parser(prog="planner", description="Loss-reduction planning: load flow, optimised capacitor "
+                "banks, generator voltage setpoints and transformer taps, study reports.",
+                epilog=EXIT_EPILOG, formatter_class=Formatter)
+    p.add_argument("--version", action="version", version=f"planner {_version()}")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    flow.add_parser(sub)
+    plan.add_parser(sub)
+    study.add_parser(sub)
     return p
+
+
+def _one_line_warning(message, category, filename, lineno, file=None, line=None):
+    # Library warnings reach the user as one clean line, never with source lines.
+    Console().err(f"warning: {message}")
 
 
 def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
-    from .errors import PlannerError
+    from .errors import OutputError, PlannerError
+    con = Console()
+    install_signal_handlers()
+    old_show = warnings.showwarning
+    warnings.showwarning = _one_line_warning
     try:
         return args.run(args)
+    except KeyboardInterrupt:
+        ignore_further_interrupts()
+        from .atomic import remove_live_temporaries
+        remove_live_temporaries()
+        con.err("interrupted: stopped; no partial output left behind")
+        return INTERRUPTED
+    except OutputError as exc:
+        con.err(f"error: {exc}")
+        return OUTPUT_PROBLEM
     except PlannerError as exc:
-        print(f"error: {exc}", file=sys.stderr)
-        return 2
-    except (OSError, ValueError, KeyError) as exc:
+        con.err(f"error: {exc}")
+        return BAD_INPUT
+    except (RecursionError, MemoryError) as exc:
+        # the readers guard size and depth first; this is the last line of defence
+        what = "too deeply nested" if isinstance(exc, RecursionError) else "too large for memory"
+        con.err(f"error: input {what} to process")
+        return BAD_INPUT
+    except (OSError, ValueError, KeyError, UnicodeError, OverflowError) as exc:
         # input problems that escaped a reader's own checks: still one line, never a trace
-        print(f"error: {type(exc).__name__}: {exc}", file=sys.stderr)
-        return 2
+        con.err(f"error: {_describe(exc)}")
+        return BAD_INPUT
+    except Exception as exc:         # a bug: one line, the status says so
+        con.err(f"error: internal error ({type(exc).__name__}: {exc}); please report it with the input")
+        return INTERNAL
+    finally:
+        warnings.showwarning = old_show
+
+
+def _describe(exc) -> str:
+    if isinstance(exc, OSError) and exc.strerror:
+        where = f"{exc.filename}: " if exc.filename else ""
+        return f"{where}{exc.strerror.lower()}"
+    return f"{exc}" if str(exc) else type(exc).__name__
 
 
 if __name__ == "__main__":

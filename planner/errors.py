@@ -75,3 +75,34 @@ class NetworkError(InputError):
 
     def __setstate__(self, state):
         self.file = state["file"]
+
+
+class OutputError(PlannerError, ValueError):
+    """An output cannot be written where the user asked (a folder where a file should be, a
+    read-only folder, a folder holding other files). The message names the option or study key
+    that chose the place, then the path. (It is also a ``ValueError``, which the writers raised
+    before this class existed.)
+
+    >>> str(OutputError("is a folder; give a file name", option="--json", path="out"))
+    '--json out: is a folder; give a file name'
+    """
+
+    def __init__(self, message, *, option=None, path=None):
+        self.message = _one_line(message)
+        self.option = option
+        self.path = None if path is None else str(path)
+        super().__init__(self._text())
+
+    def _text(self) -> str:
+        where = " ".join(_one_line(p) for p in (self.option, self.path) if p)
+        return f"{where}: {self.message}" if where else self.message
+
+    def __str__(self) -> str:
+        return self._text()
+
+    def __reduce__(self):
+        return (_rebuild_output_error, (self.message, self.option, self.path))
+
+
+def _rebuild_output_error(message, option, path):
+    return OutputError(message, option=option, path=path)

@@ -16,7 +16,8 @@ from planner.errors import InputError
 from planner.flow.newton import solve_flow
 from planner.network.io import read_network, write_network
 from planner.study.economics import Economics, evaluate
-from planner.study.run import run_study, run_study_file
+from planner.commands.study import run_study_file
+from planner.study.run import run_study
 from planner.study.spec import read_study
 
 DATA = Path(__file__).resolve().parent / "data"

@@ -238,8 +238,8 @@ def test_read_network_errors_name_the_path(tmp_path):
     odd.write_bytes(b"\x00\x01 not a network")
     with pytest.raises(InputError, match="data.bin: unknown network format"):
         read_network(odd)
-    with pytest.raises(InputError, match="format: unknown format 'xlsx'"):
-        write_network(read_tables(FEEDER), tmp_path / "x", format="xlsx")
+    with pytest.raises(InputError, match="format: unknown format 'ods'"):
+        write_network(read_tables(FEEDER), tmp_path / "x", format="ods")
 
 
 def test_read_network_runs_validation(tmp_path):

@@ -8,7 +8,7 @@ from planner.errors import NetworkError
 from planner.network.cdf import read_cdf
 from planner.network.model import Network, make_table
 from planner.network.tabular import read_tables
-from planner.network.validate import check, validate
+from planner.network.validate import check, model_warnings, validate
 
 DATA = Path(__file__).parent / "data"
 
@@ -146,14 +146,24 @@ def test_warnings_are_separate_and_do_not_fail_check():
                            [{"bus": 9, "base_kv": 0.0, "kind": "PQ"}])   # isolated, nothing on it, no kV
     assert validate(net) == []
     assert validate(net, include_warnings=True) == [
-        "warning: buses 9: base_kv: not given (0); conversions to kV and ohms are not available for them",
-        "warning: buses 9: isolated bus with nothing connected to it"]
+        "warning: buses 9: isolated bus with nothing connected to it",
+        "warning: buses 9: base_kv: not given (0); conversions to kV and ohms are not available for them"]
+    assert model_warnings(net) == ["buses 9: isolated bus with nothing connected to it"]   # no format notes
     check(net)
     # two slack buses in one island: a warning too
     net.buses.loc[1, "kind"] = "slack"
     net.generators = make_table("generators", list(net.generators.to_dict("records")) +
                                 [{"gen_id": "G2", "bus": 2, "mw": 0.0}])
-    assert "warning: island with 2 slack buses: 1, 2" in validate(net, include_warnings=True)
+    assert "warning: island with 2 slack buses: 1, 2 (they share the balancing)" in \
+        validate(net, include_warnings=True)
+    # ... which says so when they hold different voltages or angles (issue: two slacks disagree)
+    net.generators.loc[net.generators.gen_id == "G2", "v_set_pu"] = 1.03
+    net.buses.loc[1, "angle_deg"] = -5.0
+    assert [w for w in model_warnings(net) if "slack" in w] == [
+        "island with 2 slack buses: 1, 2 at different voltages 1, 1.03 pu and angles 0, -5 deg: "
+        "they will exchange power to hold both"]
+    net.generators.loc[net.generators.gen_id == "G2", "v_set_pu"] = 1.0
+    net.buses.loc[1, "angle_deg"] = 0.0
     # an isolated bus that has a load is a real problem
     net.loads = make_table("loads", list(net.loads.to_dict("records")) +
                            [{"load_id": "D9", "bus": 9, "mw": 1.0, "mvar": 0.0}])
@@ -165,3 +175,59 @@ def test_empty_and_bad_base():
     net = base_net()
     net.base_mva = 0.0
     assert validate(net) == ["network: base_mva: must be a positive number, got 0.0"]
+
+
+# --- physical bounds (issue: absurd numbers gave "converged" answers) -----------------------------
+
+@pytest.mark.parametrize("edit, expected", [
+    (set_("lines", 0, r_pu=-0.05), "lines '1-2': r_pu: -0.05 pu is below 0 pu "
+                                   "(negative resistance would make negative losses)"),
+    (set_("transformers", 0, r_pu=-0.001), "transformers 'T2-4': r_pu: -0.001 pu is below 0 pu"),
+    (set_("buses", 3, base_kv=5000.0), "buses 4: base_kv: 5000.0 kV is above 2000 kV"),
+    (set_("loads", 0, mw=3e7), "loads 'D2': mw: 30000000.0 MW is outside -1e+06 to 1e+06 MW"),
+    (set_("generators", 1, q_max_mvar=1e9), "generators 'G3': q_max_mvar: 1000000000.0 Mvar is outside"),
+    (set_("transformers", 0, shift_deg=720.0), "transformers 'T2-4': shift_deg: 720.0 deg is outside"),
+    (set_("shunts", 0, steps_max=10**6, steps_on=1), "shunts 'C4': steps_max: 1000000 is outside 0 to 1000"),
+])
+def test_values_outside_physical_bounds_are_problems(edit, expected):
+    net = base_net()
+    edit(net)
+    problems = validate(net)
+    assert any(p.startswith(expected) for p in problems), problems
+    with pytest.raises(NetworkError):
+        check(net)
+
+
+def test_negative_reactance_is_allowed_for_series_compensation():
+    net = base_net()
+    net.lines.loc[1, "x_pu"] = -0.03        # a series capacitor in line 2-3
+    assert validate(net) == []
+
+
+@pytest.mark.parametrize("base, ok", [(1e300, False), (1e-6, False), (0.1, True), (100.0, True), (1e5, True)])
+def test_base_mva_must_be_plausible(base, ok):
+    net = base_net()
+    net.base_mva = base
+    problems = validate(net)
+    assert (problems == []) is ok, problems
+    if not ok:
+        assert problems[0].startswith("network: base_mva:") and "plausible" in problems[0]
+
+
+def test_bus_number_zero_is_refused_as_in_cdf():
+    net = base_net()
+    net.buses.loc[3, "bus"] = 0
+    net.loads.loc[1, "bus"] = 0
+    net.transformers.loc[0, "to_bus"] = 0
+    net.shunts.loc[0, "bus"] = 0
+    assert "buses 0: bus: 0 is below 1 (bus numbers are whole numbers from 1)" in validate(net)
+
+
+def test_two_generators_on_one_bus_with_different_setpoints_warn():
+    net = base_net()
+    net.generators = make_table("generators", list(net.generators.to_dict("records")) +
+                                [{"gen_id": "G3b", "bus": 3, "mw": 5.0, "v_set_pu": 1.04}])
+    assert validate(net) == []
+    assert model_warnings(net) == [
+        "generators 'G3b': v_set_pu: setpoint 1.04 pu differs from 1.02 pu of generator 'G3' on the same "
+        "bus 3; the first one ('G3') is used"]

@@ -43,14 +43,14 @@ found: a mismatch means a record was lost or added, and is an error.
 """
 from __future__ import annotations
 
-import os
 import re
-import tempfile
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from planner.atomic import write_file
+from planner.inputs import read_input_bytes
 from planner.errors import InputError, PlannerError
 from planner.network.model import Network, make_table
 
@@ -135,7 +135,7 @@ def _parse_fields(text: str, fields, file, lineno, section):
         if not np.isfinite(value):
             raise InputError(f"{raw!r} is out of range", file=file, line=lineno, field=where)
         if kind == "int":
-            if value != int(value):
+            if value != int(value) or abs(value) >= 2 ** 63:   # beyond int64: no table can hold it
                 raise InputError(f"{raw!r} is not a whole number", file=file, line=lineno, field=where)
             value = int(value)
         out[key] = value
@@ -186,10 +186,7 @@ def read_cdf(path) -> Network:
     See the module docstring for how records map to the model's tables.
     """
     file = str(path)
-    try:
-        data = Path(path).read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read file: {exc.strerror or exc}", file=file) from None
+    data = read_input_bytes(path, what="network file")
     lines = _split_lines(data)
 
     bus_hdr = next((i for i, t in enumerate(lines) if t.lstrip().upper().startswith("BUS")), None)
@@ -402,13 +399,5 @@ def write_cdf(net: Network, path) -> None:
 
 
 def _atomic_write_text(path, text: str) -> None:
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent or ".")
-    try:
-        with os.fdopen(fd, "w", encoding="latin-1", errors="replace", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    # CDF files are Latin-1 text; characters outside it are written as '?'
+    write_file(path, text, encoding="latin-1")

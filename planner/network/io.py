@@ -3,6 +3,7 @@
 ``read_network(path)`` reads
 
 * a folder (or its ``network.toml`` or one of its table files) as the project's tabular format;
+* an ``.xlsx`` workbook with one sheet per table (``planner.network.workbook``; needs openpyxl);
 * a file whose first few kilobytes contain ``BUS DATA FOLLOWS``, or any ``.cdf``/``.txt`` file,
   as the IEEE Common Data Format;
 
@@ -29,12 +30,14 @@ from __future__ import annotations
 from pathlib import Path
 
 from planner.errors import InputError
+from planner.inputs import check_regular
 from planner.network.cdf import read_cdf, write_cdf
 from planner.network.model import Network
 from planner.network.tabular import FILES, TOML_NAME, read_tables, write_tables
 from planner.network.validate import check
+from planner.network.workbook import SUFFIX as XLSX_SUFFIX, read_workbook, write_workbook
 
-FORMATS = ("tables", "cdf")
+FORMATS = ("tables", "cdf", "xlsx")
 _SNIFF_BYTES = 8192
 
 
@@ -43,8 +46,11 @@ def _detect(path: Path) -> str:
         raise InputError("no such file or folder", file=path)
     if path.is_dir():
         return "tables"
+    if path.suffix.lower() == XLSX_SUFFIX:
+        return "xlsx"
     if path.name == TOML_NAME or path.name in FILES.values():
         return "tables"
+    check_regular(path, "network file")     # a pipe or device would block the sniffing read
     try:
         with open(path, "rb") as fh:
             head = fh.read(_SNIFF_BYTES)
@@ -56,22 +62,29 @@ def _detect(path: Path) -> str:
 
 
 def read_network(path) -> Network:
-    """Read a network (tabular folder or IEEE CDF file, detected from the path), validate it and
-    return it. Raises ``InputError`` for unreadable input and ``NetworkError`` (a subclass) when
+    """Read a network (tabular folder, .xlsx workbook or IEEE CDF file, detected from the path),
+    validate it and return it. Raises ``InputError`` for unreadable input and ``NetworkError`` (a subclass) when
     the network is read but fails validation."""
     path = Path(path)
     fmt = _detect(path)
     if fmt == "tables":
         net = read_tables(path if path.is_dir() or path.name == TOML_NAME else path.parent)
+    elif fmt == "xlsx":
+        net = read_workbook(path)
     else:
         net = read_cdf(path)
     return check(net)
 
 
-def write_network(net: Network, path, format: str = "tables") -> None:
-    """Write a network as a folder of tables (``format="tables"``) or an IEEE CDF file
-    (``format="cdf"``); both writes are atomic."""
-    if format == "tables":
+def write_network(net: Network, path, format: str | None = None) -> None:
+    """Write a network as a folder of tables (``format="tables"``), an .xlsx workbook
+    (``format="xlsx"``) or an IEEE CDF file (``format="cdf"``); every write is atomic. Without
+    ``format``, a path ending in ``.xlsx`` is a workbook and any other path a folder of tables."""
+    if format is None:
+        format = "xlsx" if Path(path).suffix.lower() == XLSX_SUFFIX else "tables"
+    if format == "xlsx":
+        write_workbook(net, path)
+    elif format == "tables":
         write_tables(net, path)
     elif format == "cdf":
         write_cdf(net, path)

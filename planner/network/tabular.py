@@ -43,17 +43,14 @@ from __future__ import annotations
 import csv
 import io
 import math
-import os
 import re
-import shutil
-import tempfile
-import tomllib
-import uuid
 from pathlib import Path
 
 import pandas as pd
 
+from planner.atomic import write_folder
 from planner.errors import InputError
+from planner.inputs import parse_toml, read_input_bytes
 from planner.network.model import DEFAULTS, TABLES, Network, make_table
 
 TOML_NAME = "network.toml"
@@ -80,10 +77,7 @@ _CANONICAL = {"kind": {"pq": "PQ", "pv": "PV", "slack": "slack"},
 # --- reading --------------------------------------------------------------------------------
 
 def _read_text(path: Path) -> str:
-    try:
-        data = path.read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read file: {exc.strerror or exc}", file=path) from None
+    data = read_input_bytes(path, what="table file")
     try:
         return data.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
@@ -145,55 +139,116 @@ def _parse(raw: str, dtype: str, where: dict):
     return value
 
 
+class CsvPlaces:
+    """Where a value of a CSV table is, for error messages: the file, then the line, data row and
+    column of a value. (``planner.network.workbook`` has the same three methods for a sheet.)"""
+
+    def __init__(self, path: Path, lines):
+        self.path, self.lines = path, lines
+
+    def table(self) -> dict:
+        return {"file": self.path}
+
+    def column(self, k: int) -> dict:
+        return {"file": self.path}
+
+    def cell(self, i: int, k: int, name: str) -> dict:
+        return {"file": self.path, "line": self.lines[i], "record": f"row {i + 1}", "field": name}
+
+
 def _read_table(kind: str, path: Path, bus_kv: dict | None, base_mva: float) -> pd.DataFrame:
     header, rows = _read_csv(path)
+    places = CsvPlaces(path, [lno for _, lno, _ in rows])
+    return table_from_cells(kind, header, [cells for _, _, cells in rows], bus_kv, base_mva, places)
+
+
+def table_from_cells(kind: str, header, rows, bus_kv: dict | None, base_mva: float, places) -> pd.DataFrame:
+    """The standard table of ``kind`` from a header (column names) and data rows (lists of cells).
+
+    Shared by every reader of the tabular layout (CSV files, workbook sheets), so unit columns,
+    defaults and errors are the same whatever the container. Cells are text as read from a file
+    (``""`` = empty); a workbook may also hand over numbers, true/false or ``None`` (empty), which
+    are taken as they are. ``places`` says where things are for error messages: ``table()``,
+    ``column(k)`` and ``cell(i, k, name)`` return the ``InputError`` location of the whole table, of
+    header column ``k`` and of the value in data row ``i``, column ``k`` (both 0-based).
+    ``bus_kv`` (bus -> base kV) and ``base_mva`` are needed only for ohm and microsiemens columns.
+    """
     cols, units, defaults = TABLES[kind], UNIT_COLUMNS[kind], DEFAULTS[kind]
-    for name in header:
+    for k, name in enumerate(header):
         if name not in cols and name not in units:
-            raise InputError(f"unknown column {name!r}", file=path)
+            raise InputError(f"unknown column {name!r}", **places.column(k))
     for name, (pu, _) in units.items():
         if name in header and pu in header:
-            raise InputError(f"columns {pu!r} and {name!r} both given: use one of them", file=path)
+            raise InputError(f"columns {pu!r} and {name!r} both given: use one of them",
+                             **places.column(header.index(name)))
     given = {units[h][0] if h in units else h for h in header}
     for c in cols:
         if c not in given and c not in defaults:
             alt = [u for u, (pu, _) in units.items() if pu == c]
             hint = f" (or {alt[0]!r})" if alt else ""
-            raise InputError(f"missing required column {c!r}{hint}", file=path)
+            raise InputError(f"missing required column {c!r}{hint}", **places.table())
 
     records = []
-    for rno, lno, cells in rows:
-        rec = {}
-        for name, raw in zip(header, cells):
+    for i, cells in enumerate(rows):
+        rec, per_unit = {}, []
+        for k, (name, raw) in enumerate(zip(header, cells)):
             target, how = units.get(name, (name, None))
-            where = {"file": path, "line": lno, "record": f"row {rno}", "field": name}
-            if raw == "":
+            where = places.cell(i, k, name)
+            if raw is None or (isinstance(raw, str) and raw.strip() == ""):
                 if target in defaults:
                     rec[target] = defaults[target]
                     continue
                 raise InputError("value missing in a required column", **where)
             dtype = "float64" if how else cols[name]
-            value = _parse(raw, dtype, where)
+            value = _parse(raw.strip(), dtype, where) if isinstance(raw, str) else _take(raw, dtype, where)
             if name in _CANONICAL:
                 value = _CANONICAL[name].get(value.lower(), value)
             if how == _KILO:
                 value = value / 1000.0
             elif how in (_OHM, _MICROSIEMENS):
-                value = _ohm_or_us_to_pu(value, how, rec, bus_kv, base_mva, path, lno, rno)
+                per_unit.append((target, how))   # after the row: needs from_bus, wherever it stands
             rec[target] = value
+        for target, how in per_unit:
+            k = header.index("from_bus")
+            rec[target] = _ohm_or_us_to_pu(rec[target], how, rec.get("from_bus"), bus_kv, base_mva,
+                                           places.cell(i, k, "from_bus"))
         records.append(rec)
     df = pd.DataFrame(records, columns=[c for c in cols if c in given])
     return make_table(kind, df)
 
 
-def _ohm_or_us_to_pu(value, how, rec, bus_kv, base_mva, path, lno, rno):
-    where = {"file": path, "line": lno, "record": f"row {rno}", "field": "from_bus"}
-    bus = rec.get("from_bus")
+def _take(raw, dtype: str, where: dict):
+    """A cell a workbook gave as a number, true/false or a date rather than as text."""
+    if dtype == "object":   # an id typed as a number: 7 -> "7", 2.5 -> "2.5"
+        if isinstance(raw, bool):
+            return "TRUE" if raw else "FALSE"
+        if isinstance(raw, (int, float)) and math.isfinite(raw):
+            return str(int(raw)) if float(raw).is_integer() else repr(float(raw))
+        return str(raw)
+    if dtype == "bool":
+        if isinstance(raw, bool) or (isinstance(raw, (int, float)) and raw in (0, 1)):
+            return bool(raw)
+        raise InputError(f"cannot read {raw!r} as true/false", **where)
+    if isinstance(raw, bool):
+        raise InputError(f"cannot read {'TRUE' if raw else 'FALSE'} as a number", **where)
+    if not isinstance(raw, (int, float)):
+        return _parse(str(raw).strip(), dtype, where)
+    if not math.isfinite(raw):
+        raise InputError(f"{raw!r} is out of range", **where)
+    if dtype == "int64":
+        if raw != int(raw) or abs(raw) >= 2 ** 63:
+            raise InputError(f"{raw!r} is not a whole number", **where)
+        return int(raw)
+    return float(raw)
+
+
+def _ohm_or_us_to_pu(value, how, bus, bus_kv, base_mva, where):
     if bus not in bus_kv:
         raise InputError(f"unknown bus {bus}: its base kV is needed to convert ohms to per unit", **where)
     kv = bus_kv[bus]
-    if not (math.isfinite(kv) and kv > 0):
-        raise InputError(f"bus {bus} has base_kv {kv}: cannot convert ohms to per unit", **where)
+    if not (math.isfinite(kv) and 0.01 <= kv <= 2000):   # below 10 V kV^2 would underflow the base
+        raise InputError(f"bus {bus} has base_kv {kv}: cannot convert ohms to per unit "
+                         "(base kV must be 0.01-2000)", **where)
     z_base = kv * kv / base_mva
     return value / z_base if how == _OHM else value * 1e-6 * z_base
 
@@ -201,10 +256,7 @@ def _ohm_or_us_to_pu(value, how, rec, bus_kv, base_mva, path, lno, rno):
 def _read_toml(path: Path, folder: Path):
     if not path.exists():
         return 100.0, folder.name
-    try:
-        doc = tomllib.loads(_read_text(path))
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(str(exc), file=path) from None
+    doc = parse_toml(_read_text(path), path)
     for key in doc:
         if key not in ("base_mva", "name"):
             raise InputError(f"unknown key {key!r} (expected base_mva, name)", file=path)
@@ -293,25 +345,5 @@ def write_tables(net: Network, folder) -> None:
         if extra:
             raise InputError(f"folder holds files that are not network tables ({extra[0]!r}): "
                              "refusing to replace it", file=target)
-    parent = target.parent
-    parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=parent))
-    try:
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(tmp, (target.stat().st_mode & 0o7777) if target.exists() else (0o777 & ~mask))
-        _write_into(net, tmp)
-        if target.exists():
-            old = parent / f".{target.name}.old-{uuid.uuid4().hex[:8]}"
-            os.rename(target, old)
-            try:
-                os.rename(tmp, target)
-            except BaseException:
-                os.rename(old, target)
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, target)
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
+    # the lookup of _write_into at call time keeps it replaceable in tests
+    write_folder(target, lambda tmp: _write_into(net, tmp), own_names=_OUR_FILES)

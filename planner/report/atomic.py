@@ -1,32 +1,21 @@
 """Write a whole report folder so that readers see either the old report or the new one, never a mix.
 
-Steps: build a temporary folder beside the target (same file system, so renames are atomic), write
-and flush every file there, then swap: rename the old folder to a backup name, rename the new one
-into place, delete the backup. If anything fails before the swap, the temporary folder is removed
-and the earlier report is untouched; if the second rename fails, the backup is renamed back.
-
-A folder is replaced only if it is empty or was written by this function (it holds the marker file
-``MARKER``), so pointing the writer at an unrelated folder cannot delete it.
+A thin layer over :func:`planner.atomic.write_folder` (temporary folder beside the target, then a
+swap; the earlier report is untouched if anything fails). A folder is replaced only if it is
+empty or was written by this function (it holds the marker file ``MARKER``), so pointing the
+writer at an unrelated folder cannot delete it.
 """
 from __future__ import annotations
 
 import os
-import shutil
-import tempfile
 from pathlib import Path
 from typing import Mapping
+
+from .. import atomic as _atomic
 
 __all__ = ["write_report_folder", "MARKER"]
 
 MARKER = ".planner-report"
-
-
-def _check_name(name: str) -> str:
-    if not isinstance(name, str) or not name or name in (".", "..") or name == MARKER:
-        raise ValueError(f"report folder: invalid file name {name!r}")
-    if "/" in name or "\\" in name or "\x00" in name:
-        raise ValueError(f"report folder: file name {name!r} must not contain a path separator")
-    return name
 
 
 def _write_file(path: Path, content: str | bytes) -> None:
@@ -51,45 +40,14 @@ def write_report_folder(folder: str | os.PathLike, files: Mapping[str, str | byt
     ...     sorted(p.name for p in d.iterdir() if not p.name.startswith("."))
     ['b.txt']
     """
-    target = Path(folder)
-    names = [_check_name(n) for n in files]
+    names = [_atomic._check_name(n) for n in files]
+    if MARKER in names:
+        raise ValueError(f"report folder: invalid file name {MARKER!r}")
     if len(set(n.lower() for n in names)) != len(names):
         raise ValueError("report folder: file names differ only by case")
-    if target.exists():
-        if not target.is_dir():
-            raise ValueError(f"report folder: {target} exists and is not a folder")
-        if any(target.iterdir()) and not (target / MARKER).exists():
-            raise ValueError(f"report folder: {target} is not empty and was not written by the "
-                             f"planner (no {MARKER} file); refusing to replace it")
-    parent = target.parent if str(target.parent) else Path(".")
-    parent.mkdir(parents=True, exist_ok=True)
 
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.new-", dir=parent))
-    try:
+    def fill(tmp: Path) -> None:
         for name in names:
             _write_file(tmp / name, files[name])
-        _write_file(tmp / MARKER, "written by planner\n")
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-
-    backup = None
-    try:
-        if target.exists():
-            # mkdtemp reserves a unique name; rmdir it so rename can take the name.
-            backup = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=parent))
-            backup.rmdir()
-            os.rename(target, backup)
-        try:
-            os.rename(tmp, target)
-        except BaseException:
-            if backup is not None:
-                os.rename(backup, target)
-                backup = None
-            raise
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    if backup is not None:
-        shutil.rmtree(backup, ignore_errors=True)
-    return target
+            os.chmod(tmp / name, 0o666 & ~_atomic._umask())
+    return _atomic.write_folder(folder, fill, marker=MARKER)

@@ -2,13 +2,12 @@
 by AC load flow at each level, priced, and written up as a report folder.
 
 Public functions: :func:`level_cases`, :func:`candidate_sites`, :func:`run_study` (returns the
-report data and the plans) and :func:`run_study_file` (the ``planner study`` command).
+report data and the plans). The ``planner study`` command is :mod:`planner.commands.study`.
 """
 from __future__ import annotations
 
 import datetime as _dt
 import re
-import sys
 from pathlib import Path
 
 import numpy as np
@@ -187,11 +186,12 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
             taps=spec.taps and alt.taps, setpoints_per_level=spec.setpoints_per_level)
 
         def log(entry, _alt=alt):
+            worth = _merit_text(spec, entry, weights)
             if entry.get("polish"):
-                say(f"  {_alt.name}: local check of one-unit moves, merit {entry['merit']:.6g}")
+                say(f"  {_alt.name}: local check of one-unit moves, {worth}")
             else:
                 say(f"  {_alt.name}: iteration {entry['iteration']}, "
-                    f"{'accepted' if entry['accepted'] else 'rejected'}, merit {entry['merit']:.6g}")
+                    f"{'accepted' if entry['accepted'] else 'rejected'}, {worth}")
         plan = optimise(cases, levers, limits, objective, options, progress=log)
         plans.append((alt, plan))
         if not data["base"]:
@@ -204,6 +204,22 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
                 data["base"][lc.name] = _flow_summary(fr, lo, hi, names_by_bus)
         data["alternatives"].append(_alternative_data(spec, alt, plan, cases, c0, names_by_bus, hours, econ))
     return data, plans
+
+
+def _merit_text(spec: StudySpec, entry, weights) -> str:
+    """The optimiser's objective in the units it has: money a year, or hour-weighted mean MW.
+    While limits are broken a penalty in the same units is part of it, and the text says so."""
+    merit = entry["merit"]
+    if not np.isfinite(merit):
+        return "no converged load flow"
+    if spec.objective == "cost":
+        cur = f"{spec.currency} " if spec.currency else ""
+        text = f"objective {cur}{merit:,.0f} a year"
+    else:
+        text = f"objective {merit / (float(np.sum(weights)) or 1.0):.4f} MW mean losses"
+    if (entry.get("violation") or 0) > 1e-9:
+        text += ", limits broken (penalty included)"
+    return text
 
 
 def _alternative_data(spec, alt, plan: PlanResult, cases, c0, names_by_bus, hours, econ):
@@ -273,30 +289,6 @@ def slug(text: str) -> str:
 def report_folder(spec: StudySpec, out_dir=None) -> Path:
     parent = Path(out_dir) if out_dir else (spec.output or spec.path.parent / "reports")
     return parent / slug(spec.path.stem)
-
-
-def run_study_file(path, out_dir=None, quiet=False) -> int:
-    """The ``planner study`` command: run, write the report folder atomically, say where it is."""
-    from ..outputs import to_json
-    from ..report.render import report_files
-    from ..report.atomic import write_report_folder
-
-    spec = read_study(path)
-    show = (not quiet) and sys.stderr.isatty()
-    progress = (lambda text: print(text, file=sys.stderr, flush=True)) if show else None
-    data, plans = run_study(spec, progress=progress)
-    files = report_files(data)
-    files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
-    folder = write_report_folder(report_folder(spec, out_dir), files)
-    if not quiet:
-        for alt in data["alternatives"]:
-            lv = ", ".join(f"{n} {alt['levels'][n]['losses_mw']:.4f} MW" if alt["levels"][n]["losses_mw"] is not None
-                           else f"{n} not converged" for n in alt["levels"])
-            state = "verified" if alt["verified"] else "NOT verified: " + alt["message"]
-            print(f"{alt['name']}: {state}; losses after: {lv}")
-        print(f"report: {folder / 'report.html'}")
-    # alternatives that cannot meet the limits are findings of the study, not failures of the run
-    return 0 if any(a["verified"] for a in data["alternatives"]) else 1
 
 
 def plan_to_dict(plan: PlanResult) -> dict:

@@ -6,11 +6,13 @@ Every key is documented in the README ("Study file"). A bad file gives one
 """
 from __future__ import annotations
 
-import tomllib
+import math
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import InputError
+from ..inputs import MAX_TOML_BYTES, parse_toml, read_input_bytes
 
 TOP_KEYS = {"study", "limits", "levels", "banks", "generators", "taps", "economics", "objective",
             "alternatives", "solver"}
@@ -111,9 +113,14 @@ class _Reader:
             return default
         v = self.table[key]
         if kind is float:
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or v != v:
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
                 raise self.error(key, f"must be a number, got {v!r}")
-            v = float(v)
+            try:
+                v = float(v)
+            except OverflowError:          # a TOML integer beyond the float range
+                raise self.error(key, f"must be a finite number, got {v!r}") from None
+            if not math.isfinite(v):
+                raise self.error(key, f"must be a finite number, got {v!r}")
         elif kind is int:
             if isinstance(v, bool) or not isinstance(v, int):
                 raise self.error(key, f"must be a whole number, got {v!r}")
@@ -143,13 +150,34 @@ class _Reader:
             raise self.error(unknown[0], "unknown key (see the README for the keys a study file takes)")
 
 
-def _positive(v):
-    return v > 0
+# Upper bounds of study keys: far beyond any real study, so only typos and absurd values hit them.
+MAX_SCALE = 10.0             # load_scale, p_scale, q_scale, bus_scale: ten times the network's loads
+MAX_UNIT_MVAR = 1000.0       # one capacitor unit
+MAX_MONEY = 1e12             # any cost, budget or value in the study's currency
+HOURS_PER_YEAR = 8784.0      # a leap year: levels may cover 8,760 or 8,784 hours
+MONEY_WHY = f"must not be negative (and at most {MAX_MONEY:g})"
+
+
+def _scale(v):
+    return 0 < v <= MAX_SCALE
+
+
+def _money(v):
+    return 0 <= v <= MAX_MONEY
+
+
+def _finite_number(v) -> bool:
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return False
+    try:
+        return math.isfinite(float(v))
+    except OverflowError:
+        return False
 
 
 def _band(r: _Reader, key, value):
     if (not isinstance(value, list) or len(value) != 2
-            or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in value)
+            or not all(_finite_number(x) for x in value)
             or not 0.5 <= value[0] < value[1] <= 1.5):
         raise r.error(key, f"must be [low, high] in pu with 0.5 <= low < high <= 1.5, got {value!r}")
     return (float(value[0]), float(value[1]))
@@ -210,18 +238,18 @@ def read_study(path) -> StudySpec:
     ...     read_study(d / "bad.toml")
     ... except Exception as e:
     ...     print(e)
-    bad.toml: levels[0].hours: must be a positive number, got -5.0
+    bad.toml: levels[0].hours: must be a positive number (of hours, at most 8,784: a leap year), got -5.0
     >>> import shutil; shutil.rmtree(d)
     """
     file = Path(path)
+    if not os.path.lexists(file):
+        raise InputError("study file not found", file=str(file))
+    data = read_input_bytes(file, what="study file", max_bytes=MAX_TOML_BYTES)
     try:
-        raw = tomllib.loads(file.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise InputError("study file not found", file=str(file)) from None
+        text = data.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise InputError(f"not UTF-8 text ({exc.reason})", file=file.name) from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"not valid TOML: {exc}", file=file.name) from None
+    raw = parse_toml(text, file.name)
     top = _Reader(file, raw, "")
     for k in raw:
         if k not in TOP_KEYS:
@@ -264,14 +292,14 @@ def read_study(path) -> StudySpec:
         if name in names:
             raise r.error("name", f"level {name!r} is defined twice")
         names.add(name)
-        scale = r.get("load_scale", float, None, check=_positive, why="must be a positive number")
+        why_scale = f"must be a positive number (a factor of at most {MAX_SCALE:g})"
+        scale = r.get("load_scale", float, None, check=_scale, why=why_scale)
         lv = LevelSpec(
             name=name,
-            hours=r.get("hours", float, required=True, check=_positive, why="must be a positive number"),
-            p_scale=r.get("p_scale", float, scale if scale is not None else 1.0, check=_positive,
-                          why="must be a positive number"),
-            q_scale=r.get("q_scale", float, scale if scale is not None else 1.0, check=_positive,
-                          why="must be a positive number"),
+            hours=r.get("hours", float, required=True, check=lambda v: 0 < v <= HOURS_PER_YEAR,
+                        why=f"must be a positive number (of hours, at most {HOURS_PER_YEAR:,.0f}: a leap year)"),
+            p_scale=r.get("p_scale", float, scale if scale is not None else 1.0, check=_scale, why=why_scale),
+            q_scale=r.get("q_scale", float, scale if scale is not None else 1.0, check=_scale, why=why_scale),
             v_min_pu=r.get("v_min_pu", float, check=lambda v: 0.5 <= v <= 1.2, why="must be 0.5-1.2 pu"),
             v_max_pu=r.get("v_max_pu", float, check=lambda v: 0.8 <= v <= 1.5, why="must be 0.8-1.5 pu"),
         )
@@ -282,19 +310,21 @@ def read_study(path) -> StudySpec:
                           f"the level's band {lo:g}-{hi:g} pu is empty (low must be below high)")
         bs = r.sub("bus_scale")
         for k, v in bs.table.items():
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or v <= 0:
-                raise bs.error(k, f"must be a positive number, got {v!r}")
+            if not _finite_number(v) or not _scale(v):
+                raise bs.error(k, f"must be a positive number (a factor of at most {MAX_SCALE:g}), got {v!r}")
             lv.bus_scale[_bus_key(bs, k)] = float(v)
         r.used.add("bus_scale")
         r.finish()
         spec.levels.append(lv)
     total_hours = sum(lv.hours for lv in spec.levels)
-    if total_hours > 8784 + 1e-9:
-        raise top.error("levels", f"hours add up to {total_hours:g}, more than a year (8760 h)")
+    if total_hours > HOURS_PER_YEAR + 1e-9:
+        raise top.error("levels", f"hours add up to {total_hours:g}, more than a year "
+                        f"(8,760 h; {HOURS_PER_YEAR:,.0f} h in a leap year)")
     spec.peak_level = max(spec.levels, key=lambda lv: lv.p_scale).name
 
     bk = top.sub("banks")
-    unit = bk.get("unit_mvar", float, 0.3, check=_positive, why="must be a positive number")
+    why_unit = f"must be a positive number (of Mvar, at most {MAX_UNIT_MVAR:g})"
+    unit = bk.get("unit_mvar", float, 0.3, check=lambda v: 0 < v <= MAX_UNIT_MVAR, why=why_unit)
     max_units = bk.get("max_units", int, 4, check=lambda v: 1 <= v <= 1000, why="must be 1-1000")
     kinds = _kinds(bk, bk.get("kinds", list, ["fixed", "switched"]))
     cand = bk.get("candidates", None, [])
@@ -308,19 +338,20 @@ def read_study(path) -> StudySpec:
     for i, t in enumerate(bk.get("site", list, [])):
         r = _Reader(file, t if isinstance(t, dict) else {}, f"banks.site[{i}]")
         b = r.get("bus", int, required=True)
-        overrides[b] = SiteSpec(b, r.get("unit_mvar", float, unit, check=_positive, why="must be a positive number"),
+        overrides[b] = SiteSpec(b, r.get("unit_mvar", float, unit, check=lambda v: 0 < v <= MAX_UNIT_MVAR,
+                                         why=why_unit),
                                 r.get("max_units", int, max_units, check=lambda v: 1 <= v <= 1000, why="must be 1-1000"),
                                 tuple(_kinds(r, r.get("kinds", list, kinds))))
         r.finish()
     costs = bk.sub("costs")
     spec.banks = BankSpec(
         candidates=cand_list, overrides=overrides, unit_mvar=unit, max_units=max_units, kinds=tuple(kinds),
-        max_new_sites=bk.get("max_new_sites", int, None, check=lambda v: v >= 0, why="must not be negative"),
-        budget=bk.get("budget", float, None, check=lambda v: v >= 0, why="must not be negative"),
-        per_site=costs.get("per_site", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
-        per_mvar=costs.get("per_mvar", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
-        switched_per_mvar=costs.get("switched_per_mvar", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
-        switched_per_site=costs.get("switched_per_site", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
+        max_new_sites=bk.get("max_new_sites", int, None, check=lambda v: 0 <= v <= 100000, why="must not be negative (and at most 100000)"),
+        budget=bk.get("budget", float, None, check=_money, why=MONEY_WHY),
+        per_site=costs.get("per_site", float, 0.0, check=_money, why=MONEY_WHY),
+        per_mvar=costs.get("per_mvar", float, 0.0, check=_money, why=MONEY_WHY),
+        switched_per_mvar=costs.get("switched_per_mvar", float, 0.0, check=_money, why=MONEY_WHY),
+        switched_per_site=costs.get("switched_per_site", float, 0.0, check=_money, why=MONEY_WHY),
         existing_switchable=bk.get("existing_switchable", bool, True),
     )
     costs.finish()
@@ -351,16 +382,17 @@ def read_study(path) -> StudySpec:
         for k, v in energy.items():
             if k not in names:
                 raise ec.error(f"energy_value_per_mwh.{k}", f"is not a load level (levels: {sorted(names)})")
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or v < 0:
-                raise ec.error(f"energy_value_per_mwh.{k}", f"must be a non-negative number, got {v!r}")
+            if not _finite_number(v) or not _money(v):
+                raise ec.error(f"energy_value_per_mwh.{k}", f"must be a non-negative number (at most {MAX_MONEY:g}), "
+                                                            f"got {v!r}")
         missing = [n for n in names if n not in energy]
         if missing:
             raise ec.error("energy_value_per_mwh", f"has no value for level {missing[0]!r}")
-    elif isinstance(energy, bool) or not isinstance(energy, (int, float)) or energy < 0:
+    elif not _finite_number(energy) or not _money(energy):
         raise ec.error("energy_value_per_mwh", f"must be a non-negative number or a table per level, got {energy!r}")
     spec.economics = dict(
         energy_value_per_mwh=energy,
-        demand_value_per_kw_year=ec.get("demand_value_per_kw_year", float, 0.0, check=lambda v: v >= 0, why="must not be negative"),
+        demand_value_per_kw_year=ec.get("demand_value_per_kw_year", float, 0.0, check=_money, why=MONEY_WHY),
         discount_rate=ec.get("discount_rate", float, 0.07, check=lambda v: 0 <= v < 1, why="must be a fraction 0-1 (0.07 = 7 %)"),
         horizon_years=ec.get("horizon_years", int, 20, check=lambda v: 1 <= v <= 100, why="must be 1-100"),
         bank_life_years=ec.get("bank_life_years", int, None, check=lambda v: 1 <= v <= 100, why="must be 1-100"),
@@ -390,8 +422,8 @@ def read_study(path) -> StudySpec:
             description=r.get("description", str, ""),
             banks=r.get("banks", bool, True), setpoints=r.get("setpoints", bool, True),
             taps=r.get("taps", bool, True),
-            budget=r.get("budget", float, None, check=lambda v: v >= 0, why="must not be negative"),
-            max_new_sites=r.get("max_new_sites", int, None, check=lambda v: v >= 0, why="must not be negative"),
+            budget=r.get("budget", float, None, check=_money, why=MONEY_WHY),
+            max_new_sites=r.get("max_new_sites", int, None, check=lambda v: 0 <= v <= 100000, why="must not be negative (and at most 100000)"),
         )
         if a.name in seen:
             raise r.error("name", f"alternative {a.name!r} is defined twice")

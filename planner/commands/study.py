@@ -1,0 +1,79 @@
+"""``planner study``: run a loss-reduction study and write its report folder."""
+from __future__ import annotations
+
+from . import options
+from .console import NOT_SUCCESS, OK, Console, Progress
+
+
+def add_parser(sub):
+    st = sub.add_parser("study", help="run a loss-reduction study across load levels and write its report",
+                        description="Optimise and verify every alternative of a study file across its load "
+                        "levels, price them, and write the report folder.",
+                        epilog=options.EXIT_EPILOG, formatter_class=options.Formatter)
+    st.add_argument("study", help="study file (TOML)")
+    st.add_argument("--out", metavar="FOLDER", help="parent folder of the report (default: the study's "
+                    "output key, else reports/ beside the study file)")
+    st.add_argument("-q", "--quiet", action="store_true", help="no progress or summary output")
+    st.set_defaults(run=run)
+    return st
+
+
+def run(args) -> int:
+    return run_study_file(args.study, out_dir=args.out, quiet=args.quiet)
+
+
+def output_option(spec, out_dir) -> str:
+    """How the user chose the report's place, for error messages."""
+    if out_dir:
+        return "--out"
+    return f"{spec.path.name}: study.output" if spec.output else "default report folder"
+
+
+def run_study_file(path, out_dir=None, quiet=False) -> int:
+    """Run the study, write the report folder atomically, say where it is.
+
+    The report folder is checked before the study runs: it must be new, empty, or an earlier
+    report (it holds the report marker file); anything else is refused, naming ``--out`` or the
+    study's ``output`` key.
+    """
+    from ..atomic import check_folder_target, to_json
+    from ..report.atomic import MARKER, write_report_folder
+    from ..report.render import report_files
+    from ..study.run import plan_to_dict, report_folder, run_study
+    from ..study.spec import read_study
+
+    con = Console(quiet)
+    spec = read_study(path)
+    option = output_option(spec, out_dir)
+    target = report_folder(spec, out_dir)
+    check_folder_target(target, option, marker=MARKER)
+    progress = Progress(quiet, iterations=spec.max_iterations)
+    try:
+        data, plans = run_study(spec, progress=progress)
+    finally:
+        progress.close()
+    files = report_files(data)
+    files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
+    from ..network.workbook import csv_files_workbook, have_openpyxl
+    if have_openpyxl():   # an extra: the same tables as the CSV files, one sheet each
+        files["results.xlsx"] = csv_files_workbook(files)
+    with options.output_errors(option, target):
+        folder = write_report_folder(target, files)
+    for alt in data["alternatives"]:
+        con.out(alternative_line(alt))
+    con.out(f"report: {folder / 'report.html'}", width=None)
+    # alternatives that cannot meet the limits are findings of the study, not failures of the run
+    return OK if any(a["verified"] for a in data["alternatives"]) else NOT_SUCCESS
+
+
+def alternative_line(alt: dict) -> str:
+    """One line per alternative: verified or not, losses after at each level.
+
+    >>> alternative_line({"name": "Banks", "verified": True, "message": "",
+    ...                   "levels": {"peak": {"losses_mw": 0.13912}, "light": {"losses_mw": None}}})
+    'Banks: verified; losses after: peak 0.1391 MW, light not converged'
+    """
+    lv = ", ".join(f"{n} {d['losses_mw']:.4f} MW" if d.get("losses_mw") is not None else f"{n} not converged"
+                   for n, d in alt["levels"].items())
+    state = "verified" if alt["verified"] else "NOT verified: " + str(alt["message"])
+    return f"{alt['name']}: {state}; losses after: {lv}"
