@@ -506,8 +506,13 @@ def report_json(data: dict) -> str:
 
 def report_files(data: dict) -> dict[str, str]:
     """``report.html``, ``report.json`` and one CSV per table."""
+    frames = data.get("proof_frames") or {}
+    data = {k: v for k, v in data.items() if k != "proof_frames"}
     files = {"report.html": render_report(data), "report.json": report_json(data)}
     files.update(report_tables(data))
+    if frames:                      # N-1, hourly and bank-check tables (planner/proof)
+        from ..proof.report import proof_files
+        files.update(proof_files(frames))
     return files
 
 
@@ -913,6 +918,9 @@ def render_report(data: dict) -> str:
             f"<li>{esc(s)}</li>" for s in data["assumptions"]) + "</ul>")
     body.append("<h3>Cautions</h3><ul>" + "".join(
         f"<li>{esc(s)}</li>" for s in list(data.get("cautions") or []) + SCOPE_CAUTIONS) + "</ul>")
+    if data.get("proof"):           # N-1, hourly and bank checks (planner/proof)
+        from ..proof.report import proof_sections
+        sections.append(proof_sections(data["proof"]))
     sections.append(_section("Assumptions and cautions", body, "cautions"))
 
     foot = ("<footer>Every figure in this report is also in report.json and the CSV files written "

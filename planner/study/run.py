@@ -203,6 +203,9 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
                     fr = solve_flow(lc.network)
                 data["base"][lc.name] = _flow_summary(fr, lo, hi, names_by_bus)
         data["alternatives"].append(_alternative_data(spec, alt, plan, cases, c0, names_by_bus, hours, econ))
+    if spec.proof is not None and spec.proof.any:      # N-1, hourly and bank checks (planner/proof)
+        from ..proof.run import prove_study
+        data["proof"], data["proof_frames"] = prove_study(spec, net, cases, plans, spec.proof, progress=progress)
     return data, plans
 
 

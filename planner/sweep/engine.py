@@ -83,6 +83,40 @@ def run_chunks(fn, tasks, *, shared=None, where: str = "local", workers: int | N
         return _run_dask(cl, fn, tasks, shared, progress)
 
 
+class sweep_client:
+    """Context manager: a Dask client for several sweeps in a row (one cluster start), or None.
+
+    ``where`` "local" starts a ``LocalCluster`` of one process per core when Dask is installed
+    (None without Dask: the caller then runs in this process); any other text but "serial" is a
+    scheduler address.
+    """
+
+    def __init__(self, where: str = "local", workers: int | None = None):
+        self.where, self.workers = where, workers
+        self._cluster = self._client = None
+
+    def __enter__(self):
+        if self.where == "serial" or not dask_available():
+            if self.where not in ("serial", "local"):
+                raise RuntimeError(f"a scheduler address ({self.where}) needs Dask: pip install -e '.[distributed]'")
+            return None
+        from distributed import Client, LocalCluster
+        if self.where == "local":
+            self._cluster = LocalCluster(n_workers=self.workers or os.cpu_count() or 1, threads_per_worker=1,
+                                         processes=True, dashboard_address=None, silence_logs=50)
+            self._client = Client(self._cluster)
+        else:
+            self._client = Client(self.where)
+        return self._client
+
+    def __exit__(self, *exc):
+        if self._client is not None:
+            self._client.close()
+        if self._cluster is not None:
+            self._cluster.close()
+        return False
+
+
 def _call_with(fn, shared, task):
     return fn(shared, task)
 
