@@ -190,9 +190,14 @@ def _hourly(spec, net, plans, proof, names, data, frames, say, client, step):
         nets = {n: (plan_network(net, plan, n) if plan is not None else net) for n in names}
         ccases = [compile_network(nets[n]) for n in names]
         banks = _switched_controls(nets, names)
+        band = (lo, hi)
+        if plan is not None and getattr(plan, "bands", None):
+            # the bands the optimiser verified against (generator buses: their setpoint range);
+            # an hour passes if it is inside the widest band of any level
+            band = (np.min([plan.bands[n][0] for n in names], axis=0), np.max([plan.bands[n][1] for n in names], axis=0))
         say(f"hourly: {case}, {len(prof.start_h)} intervals")
         bar = (lambda d, t: step(d, t)) if step else None
-        res = verify_hours(ccases, f, level_of, prof.duration_h, band=(lo, hi), banks=banks, rule=rule,
+        res = verify_hours(ccases, f, level_of, prof.duration_h, band=band, banks=banks, rule=rule,
                            labels=prof.labels, start_h=prof.start_h,
                            client=client if rule == "schedule" else None, chunk_size=chunk, progress=bar)
         if plan is None:

@@ -29,14 +29,31 @@ def year_factors(seed=0):
 def main():
     net = read_network(ROOT / "models" / "wrenfold")
     prof = profile_from_factors(year_factors())
-    for name, rule in (("fixed banks", "schedule"), ("voltage rule", VoltageRule(0.97, 1.03, 2.0))):
+    T = len(prof.start_h)
+    results = {}
+    for name, rule, kw in (("one pass", "schedule", {}), ("voltage rule", VoltageRule(0.97, 1.03, 2.0), {}),
+                           ("chunks, serial", "schedule", dict(where="serial", chunk_size=730))):
+        t0, c0 = time.perf_counter(), time.process_time()
+        res = verify_profile(net, prof, rule=rule, **kw)
+        dt, cpu = time.perf_counter() - t0, time.process_time() - c0
+        results[name] = res
+        print(f"{name:15}: {T} flows in {dt:.2f} s wall, {cpu:.2f} s CPU of this process "
+              f"({1e3 * cpu / T:.3f} ms CPU/flow), {res.iterations / T:.2f} Newton iterations per flow")
+        print(f"                 {res.message}; lowest {res.lowest['v_pu']:.4f} pu at bus {res.lowest['bus']} "
+              f"({res.lowest['when']})")
+    try:
+        import distributed
+    except ImportError:
+        print("two-worker LocalCluster: skipped (dask not installed)")
+        return
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+                                  silence_logs=50) as lc, distributed.Client(lc) as client:
         t0 = time.perf_counter()
-        res = verify_profile(net, prof, rule=rule)
+        res = verify_profile(net, prof, client=client, chunk_size=730)
         dt = time.perf_counter() - t0
-        print(f"{name:13}: {len(prof.start_h)} flows in {dt:.2f} s ({1e3 * dt / len(prof.start_h):.3f} ms/flow), "
-              f"{res.iterations / len(prof.start_h):.2f} Newton iterations per flow; {res.message}")
-        print(f"               lowest {res.lowest}, highest {res.highest}, operations "
-              f"{res.banks.operations.tolist()}")
+    same = res.intervals.equals(results["chunks, serial"].intervals)
+    print(f"two-worker LocalCluster: {T} flows in {dt:.2f} s wall (cluster already started); "
+          f"identical to the serial chunked run: {same}")
 
 
 if __name__ == "__main__":
