@@ -3,8 +3,8 @@
 The public API, flat (everything else is internal and may change):
 
 ========================  ===================================================================
-``read_network(path)``    a network from an IEEE CDF file or a folder of CSV tables, validated
-``write_network(n, p)``   write a network as tables (or ``format="cdf"``), atomically
+``read_network(path)``    a network from an IEEE CDF file, CSV folder or .xlsx, validated
+``write_network(n, p)``   write a network as tables, .xlsx or ``format="cdf"``, atomically
 ``solve_flow(net)``       AC load flow by Newton-Raphson: a :class:`FlowResult`
 ``read_study(path)``      a study file (TOML), checked: a :class:`StudySpec`
 ``run_study(spec)``       every alternative of a study optimised, verified and priced

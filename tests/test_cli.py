@@ -10,8 +10,11 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import os
 import re
 import shutil
+import signal
+import stat
 import subprocess
 import sys
 from pathlib import Path
@@ -321,3 +324,200 @@ def test_study_command_writes_report_and_says_where(tmp_path, capsys):
     assert re.search(r"Plan: verified; losses after: peak 0\.1\d{3} MW", text), text
     data = json.loads((out / "feeder33-plan" / "report.json").read_text())["data"]
     assert data["base"]["peak"]["losses_mw"] == pytest.approx(0.20267, abs=1e-5)   # Baran and Wu 1989
+
+
+# --- exit statuses, options, output places (command-line manners) ---------------------------------
+
+def test_version_and_exit_codes_in_help(capsys):
+    with pytest.raises(SystemExit) as info:
+        main(["--version"])
+    assert info.value.code == 0
+    assert capsys.readouterr().out.strip() == "planner 0.1.0"
+    for args in (["--help"], ["flow", "--help"], ["plan", "--help"], ["study", "--help"]):
+        with pytest.raises(SystemExit):
+            main(args)
+        text = capsys.readouterr().out
+        for code in ("0 ", "1 ", "2 ", "3 ", "130 "):
+            assert f"\n  {code}" in text, (args, code)
+
+
+@pytest.mark.parametrize("option, value", [("--max-iter", "-5"), ("--max-iter", "0"), ("--max-iter", "2.5"),
+                                           ("--tol-mva", "inf"), ("--tol-mva", "nan"), ("--tol-mva", "-1"),
+                                           ("--tol-mva", "1e9")])
+def test_bad_solver_options_are_bad_input_naming_the_option(option, value):
+    # --tol-mva inf reported the flat start as the solution; nan or -1 never converged; -5 was accepted
+    p = run_cli("flow", CDF14, option, value)
+    assert p.returncode == 2
+    line = one_error_line(p.stderr)
+    assert option in line and repr(value) in line and "must be" in line
+
+
+def test_not_converged_and_bad_input_have_different_codes(tmp_path):
+    net = read_network(CDF14).copy()
+    net.loads["mw"] *= 20.0
+    write_network(net, tmp_path / "heavy14")
+    assert main(["flow", str(tmp_path / "heavy14"), "-q"]) == 1
+    assert main(["flow", str(tmp_path / "nowhere.txt"), "-q"]) == 2
+
+
+@pytest.mark.parametrize("option", ["--json", "--csv"])
+def test_output_problem_found_before_the_work_names_the_option(tmp_path, option, capsys, monkeypatch):
+    import planner.flow.newton as newton
+    monkeypatch.setattr(newton, "solve_flow", lambda *a, **k: pytest.fail("solved before checking outputs"))
+    blocker = tmp_path / "file.txt"
+    blocker.write_text("x")
+    target = blocker / "out" if option == "--csv" else tmp_path       # under a file / a folder
+    assert main(["flow", str(CDF14), option, str(target)]) == 3
+    line = one_error_line(capsys.readouterr().err)
+    assert line.startswith(f"error: {option} ") and "Error" not in line and ".part-" not in line
+
+
+def test_csv_folder_with_other_files_is_refused_and_kept(tmp_path, capsys):
+    folder = tmp_path / "mine"
+    folder.mkdir()
+    (folder / "notes.txt").write_text("keep me")
+    assert main(["flow", str(CDF14), "--csv", str(folder), "-q"]) == 3
+    assert "--csv" in one_error_line(capsys.readouterr().err)
+    assert (folder / "notes.txt").read_text() == "keep me"
+    # a plain CSV folder gets no report marker, and may be rewritten
+    out = tmp_path / "tables"
+    assert main(["flow", str(CDF14), "--csv", str(out), "-q"]) == 0
+    assert main(["flow", str(CDF14), "--csv", str(out), "-q"]) == 0
+    assert sorted(p.name for p in out.iterdir()) == ["branches.csv", "buses.csv", "generators.csv"]
+
+
+def test_outputs_honour_the_umask(tmp_path):
+    old = os.umask(0o022)
+    try:
+        assert main(["flow", str(CDF14), "--json", str(tmp_path / "r.json"), "--csv", str(tmp_path / "t"),
+                     "-q"]) == 0
+    finally:
+        os.umask(old)
+    assert stat.S_IMODE((tmp_path / "r.json").stat().st_mode) == 0o644        # not 0600
+    assert stat.S_IMODE((tmp_path / "t").stat().st_mode) == 0o755             # not 0700
+    assert stat.S_IMODE((tmp_path / "t" / "buses.csv").stat().st_mode) == 0o644
+
+
+def test_stale_temporaries_of_a_killed_run_are_swept(tmp_path):
+    (tmp_path / ".t.new-ab12cd34").mkdir()                 # an earlier version's folder temporary
+    (tmp_path / ".t.part-999999999-0123abcd").mkdir()      # ours, of a process that is gone
+    (tmp_path / ".r.json.k2j3h4.tmp").write_text("{")      # an earlier version's file temporary
+    (tmp_path / ".other.part-999999999-0123abcd").mkdir()  # not beside our targets: left alone
+    assert main(["flow", str(CDF14), "--json", str(tmp_path / "r.json"), "--csv", str(tmp_path / "t"),
+                 "-q"]) == 0
+    assert sorted(p.name for p in tmp_path.iterdir()) == [".other.part-999999999-0123abcd", "r.json", "t"]
+
+
+def test_control_characters_in_names_are_escaped(tmp_path):
+    src = CDF14.read_text().splitlines()
+    k = next(i for i, ln in enumerate(src) if ln.startswith("   3 Bus 3"))
+    src[k] = src[k][:5] + "\x1b]0;x\x07\x1b[5m" + src[k][5 + 10:]
+    p = tmp_path / "esc.txt"
+    p.write_bytes(("\n".join(src) + "\n").encode("latin-1"))
+    r = run_cli("flow", p)
+    assert r.returncode == 0, r.stderr
+    assert "\x1b" not in r.stdout and "\x07" not in r.stdout
+    assert "\\x1b]0;x\\x07\\x1b[5m" in r.stdout                 # bus 3 is the lowest voltage
+    assert all(len(line) <= 100 for line in r.stdout.splitlines())
+    assert re.search(r"at bus 8 Bus 8 HV$|at bus 8 Bus 8\s+TV$|at bus 8 Bus 8 TV$", r.stdout, re.M), r.stdout
+
+
+def test_two_slacks_that_disagree_are_a_warning_line(tmp_path):
+    net = read_network(CDF14).copy()
+    net.buses.loc[net.buses.bus == 2, "kind"] = "slack"
+    write_network(net, tmp_path / "two")
+    r = run_cli("flow", tmp_path / "two")
+    assert r.returncode == 0
+    warn = [ln for ln in r.stderr.splitlines() if ln.startswith("warning:")]
+    assert warn == ["warning: island with 2 slack buses: 1, 2 at different voltages 1.06, 1.045 pu and "
+                    "angles 0, -4.98 deg: they will exchange power to hold both"], r.stderr
+
+
+def test_closed_pipe_ends_quietly_with_the_usual_status():
+    r = subprocess.run(f"'{sys.executable}' -m planner flow tests/data/ieee14cdf.txt | head -1; "
+                       "exit ${PIPESTATUS[0]}", shell=True, executable="/bin/bash", cwd=ROOT,
+                       capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0
+    assert r.stdout.startswith("network: ") and len(r.stdout.splitlines()) == 1
+    assert r.stderr == ""
+
+
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
+def test_interrupt_stops_cleanly_removes_partial_output_and_exits_130(tmp_path, sig):
+    # the demo study runs for minutes: the interrupt lands in the middle of the optimisation
+    out = tmp_path / "reports"
+    proc = subprocess.Popen([sys.executable, "-m", "planner", "study", str(ROOT / "studies" / "wrenfold-2027.toml"),
+                             "--out", str(out)], cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True,
+                            # as at a terminal: a test runner started in the background inherits
+                            # an ignored SIGINT, which Python would keep
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+    import time
+    time.sleep(6)
+    proc.send_signal(sig)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    assert err.strip().splitlines()[-1].startswith("interrupted")
+    assert not out.exists() or [p.name for p in out.iterdir()] == []
+
+
+def test_plan_with_failing_base_case_says_so_without_inf(tmp_path):
+    net = read_network(FEEDER).copy()
+    net.loads["mw"] *= 12.0
+    net.loads["mvar"] *= 12.0
+    write_network(net, tmp_path / "heavy")
+    study = tmp_path / "heavy.toml"
+    study.write_text((STUDIES / "feeder33_plan.toml").read_text().replace('"../feeder33_tables"', '"heavy"'))
+    r = run_cli("plan", study, "--json", tmp_path / "p.json")
+    assert r.returncode == 1, r.stderr
+    assert "inf MW" not in r.stdout and "nan MW" not in r.stdout and "AC-verified" not in r.stdout
+    assert "base-case load flow (before any change) did not converge" in r.stdout
+    d = json.loads((tmp_path / "p.json").read_text())
+    assert d["verified"] is False
+
+
+def test_plan_writes_into_the_study_output_folder_by_default(tmp_path):
+    study = tmp_path / "case.toml"
+    study.write_text((STUDIES / "feeder33_plan.toml").read_text()
+                     .replace('"../feeder33_tables"', f'"{FEEDER.as_posix()}"'))
+    assert main(["plan", str(study), "-q"]) == 0
+    assert (tmp_path / "reports" / "case.plan.json").is_file()
+    assert not (tmp_path / "case.plan.json").exists()
+
+
+def test_study_output_key_problems_name_the_key(tmp_path, capsys):
+    study = tmp_path / "base.toml"
+    text = (STUDIES / "feeder33_plan.toml").read_text().replace('"../feeder33_tables"', f'"{FEEDER.as_posix()}"')
+    study.write_text(text.replace("[study]\n", '[study]\noutput = "base.toml"\n', 1))
+    assert main(["study", str(study), "-q"]) == 3
+    line = one_error_line(capsys.readouterr().err)
+    assert "base.toml: study.output" in line and "FileExistsError" not in line
+    # a folder that holds anything but an earlier report is refused before the study runs
+    (tmp_path / "mine" / "base").mkdir(parents=True)
+    (tmp_path / "mine" / "base" / "thesis.txt").write_text("precious")
+    study.write_text(text.replace("[study]\n", '[study]\noutput = "mine"\n', 1))
+    assert main(["study", str(study), "-q"]) == 3
+    assert "not written by the planner" in one_error_line(capsys.readouterr().err)
+    assert (tmp_path / "mine" / "base" / "thesis.txt").read_text() == "precious"
+
+
+def test_study_report_files_honour_the_umask(tmp_path):
+    old = os.umask(0o022)
+    try:
+        assert main(["study", str(STUDIES / "feeder33_plan.toml"), "--out", str(tmp_path), "-q"]) == 0
+    finally:
+        os.umask(old)
+    folder = tmp_path / "feeder33-plan"
+    assert stat.S_IMODE(folder.stat().st_mode) == 0o755
+    assert stat.S_IMODE((folder / "report.html").stat().st_mode) == 0o644
+
+
+def test_progress_is_plain_timestamped_lines_on_a_pipe(tmp_path):
+    r = run_cli("plan", STUDIES / "feeder33_plan.toml", "--json", tmp_path / "p.json")
+    assert r.returncode == 0
+    lines = r.stderr.splitlines()
+    assert lines and all(re.match(r"\d\d:\d\d:\d\d ", ln) for ln in lines), r.stderr
+    assert any("MW mean losses" in ln for ln in lines), r.stderr       # the objective in MW
+    q = run_cli("plan", STUDIES / "feeder33_plan.toml", "--json", tmp_path / "p.json", "-q")
+    assert q.returncode == 0 and q.stderr == "" and q.stdout == ""

@@ -228,6 +228,19 @@ def test_validation_problems_and_damaged_files(tmp_path):
         read_network(junk)
     with pytest.raises(InputError, match="nothing.xlsx: no such file or folder"):
         read_network(tmp_path / "nothing.xlsx")
+    os.mkfifo(tmp_path / "pipe.xlsx")                    # would block a reader that opened it
+    with pytest.raises(InputError, match=r"pipe.xlsx: not a regular file \(a named pipe\)"):
+        read_network(tmp_path / "pipe.xlsx")
+
+
+def test_workbook_that_unpacks_too_large_is_refused(tmp_path, monkeypatch):
+    import planner.network.workbook as workbook
+    p = save(tmp_path / "feeder.xlsx", feeder_sheets())
+    read_network(p)                                      # fine at the real limit (256 MiB)
+    monkeypatch.setattr(workbook, "MAX_NETWORK_BYTES", 4096)
+    with pytest.raises(InputError, match=r"feeder.xlsx: network workbook unpacks to [\d,]+ bytes, "
+                                         r"more than the 4,096 accepted"):
+        read_network(p)
 
 
 # --- writing is atomic ---------------------------------------------------------------------------
@@ -285,6 +298,8 @@ def test_flow_reads_a_network_workbook(tmp_path, capsys):
     p = save(tmp_path / "feeder.xlsx", feeder_sheets())
     assert main(["flow", str(p)]) == 0
     assert "losses: 0.2027 MW" in capsys.readouterr().out
+    assert main(["flow", str(p), "--xlsx", str(tmp_path)]) == 3          # a folder: refused before solving
+    assert capsys.readouterr().err.startswith(f"error: --xlsx {tmp_path}: is a folder")
 
 
 # --- without openpyxl -----------------------------------------------------------------------
@@ -312,6 +327,10 @@ def test_missing_openpyxl_gives_a_clear_error(tmp_path, no_openpyxl, capsys):
     assert main(["flow", str(p)]) == 2
     err = capsys.readouterr().err
     assert err == "error: reading .xlsx needs openpyxl: pip install 'planner[xlsx]'\n"
+    out_json = tmp_path / "f.json"                     # checked before the load flow: nothing written
+    assert main(["flow", str(FEEDER), "-q", "--json", str(out_json), "--xlsx", str(tmp_path / "f.xlsx")]) == 2
+    assert capsys.readouterr().err == "error: writing .xlsx needs openpyxl: pip install 'planner[xlsx]'\n"
+    assert not out_json.exists()
     assert main(["flow", str(FEEDER), "-q"]) == 0                     # the default path needs none
 
 

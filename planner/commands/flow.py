@@ -23,6 +23,10 @@ def add_parser(sub):
                    help=f"Newton iteration limit, {options.MAX_ITER_RANGE} (default 30)")
     f.add_argument("--tol-mva", type=options.tol_mva, default=None, metavar="MVA",
                    help=f"mismatch tolerance in MW/Mvar, {options.TOL_MVA_RANGE} (default 1e-8 pu of the base)")
+    f.add_argument("--no-continuation", action="store_true",
+                   help="do not retry from light load when Newton fails or its solution looks inoperable")
+    f.add_argument("--accept-suspect", action="store_true",
+                   help="exit 0 for a solution the plausibility check marks suspect (likely inoperable)")
     f.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
     f.set_defaults(run=run)
     return f
@@ -35,6 +39,10 @@ def check_outputs(args) -> None:
         check_file_target(args.json, "--json")
     if args.csv:
         check_folder_target(args.csv, "--csv", own_names=TABLE_FILES)
+    if args.xlsx:
+        check_file_target(args.xlsx, "--xlsx")
+        from ..network.workbook import need_openpyxl
+        need_openpyxl("writing")
 
 
 def run(args) -> int:
@@ -49,7 +57,8 @@ def run(args) -> int:
     for w in model_warnings(net):
         con.err(f"warning: {w}")
     res = solve_flow(net, enforce_q_limits=not args.no_q_limits, start=args.start,
-                     max_iter=args.max_iter, tol_mva=args.tol_mva)
+                     max_iter=args.max_iter, tol_mva=args.tol_mva,
+                     continuation=not args.no_continuation)
     ok = bool(getattr(res, "success", res.converged))
     con.out(f"network: {net.name or args.model} ({plural(len(net.buses), 'bus', 'buses')})")
     for line in summary_lines(res):
@@ -66,6 +75,12 @@ def run(args) -> int:
             from ..network.workbook import write_tables_workbook
             write_tables_workbook(args.xlsx, {"buses": res.buses, "generators": res.generators,
                                               "branches": res.branches})
+    if res.status.name == "SUSPECT":
+        if args.accept_suspect:
+            con.err(f"warning: {res.message} (accepted with --accept-suspect)")
+            return OK
+        con.err(f"error: {res.message}; use --accept-suspect to accept this solution")
+        return NOT_SUCCESS
     if not ok:
         con.err(f"error: load flow did not converge: {res.message}; worst bus {res.worst_bus}, "
                 f"mismatch {res.worst_mismatch_mva:.4g} MVA")
@@ -100,12 +115,21 @@ def summary_lines(res) -> list[str]:
     c = res.compiled
     ok = bool(getattr(res, "success", res.converged))
     ms = f"Newton time {res.solve_seconds * 1000:.1f} ms"
+    suspect = res.status.name == "SUSPECT"
     if ok:
         lines = [f"load flow: converged in {plural(int(res.iterations), 'iteration')} ({ms})"]
+        if res.strategy != "newton" or "confirmed" in res.message:
+            lines.append(f"how: {res.message}")
+    elif suspect:
+        lines = [f"load flow: SUSPECT solution after {plural(int(res.iterations), 'iteration')} ({ms}): "
+                 f"{res.message}"]
     else:
         lines = [f"load flow: NOT converged: {res.message} after {plural(int(res.iterations), 'iteration')}; "
                  f"worst bus {res.worst_bus}, mismatch {res.worst_mismatch_mva:.4g} MVA"]
         return lines
+    if res.oscillating_buses:
+        lines.append("generators held at a limit after flip-flopping: "
+                     + ", ".join(f"bus {b}" for b in res.oscillating_buses))
     vm = np.abs(res.v)
     alive = np.flatnonzero(c.alive)
     lo = alive[np.argmin(vm[alive])]

@@ -7,7 +7,11 @@ from .result import FlowResult
 def flow_to_dict(res: FlowResult) -> dict:
     """Everything a person or program needs from a load flow, in engineering units."""
     d = {
-        "converged": bool(res.converged), "status": int(res.status), "message": res.message,
+        "converged": bool(res.success), "success": bool(res.success), "status": int(res.status),
+        "status_name": res.status.name, "message": res.message,
+        "equations_solved": bool(res.equations_solved), "strategy": res.strategy,
+        "continuation_steps": int(res.continuation_steps),
+        "oscillating_buses": list(res.oscillating_buses),
         "iterations": int(res.iterations), "losses_mw": float(res.losses_mw),
         "losses_mvar": float(res.losses_mvar), "solve_seconds": float(res.solve_seconds),
         "worst_bus": res.worst_bus, "worst_mismatch_mva": float(res.worst_mismatch_mva),

@@ -146,3 +146,157 @@ class NewtonLinearSolver:
         x = np.empty_like(rhs)
         x[self.order] = lu.solve(rhs[self.order])
         return x
+
+
+# --- symbolic work kept across reactive-limit rounds and repeated solves -------------------
+
+class JacobianSymbolic:
+    """Sparsity pattern and fill-reducing ordering of the Jacobian of one network topology.
+
+    Built on the *full* unknown set ``[angle, |V|]`` of every live non-slack bus, as if every
+    such bus were PQ. A PV bus only removes its ``|V|`` row and column, so the Jacobian of any
+    PV / PQ split is a principal submatrix of the full one: its pattern in permuted order is the
+    full permuted pattern with some rows and columns masked out (one vectorised pass, no
+    sorting), and the restriction of the full ordering stays a good fill-reducing ordering.
+    The ordering is computed once, at the first factorisation; every later Newton step, every
+    reactive-limit round and every solve of a network with the same branches (other shunts,
+    setpoints, taps, loads) only fills values and factorises in that order.
+    """
+
+    def __init__(self, y: sp.csr_matrix, free: np.ndarray):
+        self.n = y.shape[0]
+        self.free = free                        # live non-slack buses, ascending
+        self.m = len(free)
+        self.full = JacobianPattern(y, free, free)
+        self.key = _topology_key(y, free)
+        self.order = None                       # full index at each permuted position
+        self._permuted = None
+        self._systems: dict[bytes, _ReducedSystem] = {}
+
+    def matches(self, y: sp.csr_matrix, free: np.ndarray) -> bool:
+        k = self.key
+        return (k[0] == y.shape[0] and np.array_equal(k[1], y.indptr) and np.array_equal(k[2], y.indices)
+                and np.array_equal(k[3], free))
+
+    def system(self, y: sp.csr_matrix, pq_mask: np.ndarray) -> "_ReducedSystem":
+        """The linear solver for the split where ``pq_mask`` (per bus) marks the PQ buses."""
+        keep_mag = pq_mask[self.free]
+        tag = np.packbits(keep_mag).tobytes()
+        sysm = self._systems.get(tag)
+        if sysm is None:
+            if len(self._systems) > 32:         # a long sweep of splits: keep memory bounded
+                self._systems.clear()
+            sysm = _ReducedSystem(self, keep_mag)
+            self._systems[tag] = sysm
+        sysm.y = y
+        return sysm
+
+    def set_order_from(self, keep_full: np.ndarray, reduced_order: np.ndarray) -> None:
+        """Adopt the ordering of the first factorised split for the full unknown set.
+
+        ``reduced_order`` lists reduced indices in elimination order. Each |V| unknown that the
+        split leaves out (a PV bus) is placed right after its bus's angle: it couples to the
+        same neighbours, so the full ordering keeps the fill of the one the LU chose.
+        """
+        m = self.m
+        full_of_red = np.flatnonzero(keep_full)
+        seq = full_of_red[reduced_order]
+        pos = np.empty(len(seq), np.int64)
+        pos[:] = np.arange(len(seq)) * 2
+        missing = np.flatnonzero(~keep_full)             # full indices m + i of left-out |V|
+        angle_pos = np.empty(2 * m, np.int64)
+        angle_pos[seq] = pos
+        extra_pos = angle_pos[missing - m] + 1
+        keys = np.concatenate([pos, extra_pos])
+        items = np.concatenate([seq, missing])
+        self.order = items[np.argsort(keys, kind="stable")]
+        self._permuted = self.full.permuted(self.order)
+
+
+def _topology_key(y, free):
+    return (y.shape[0], y.indptr.copy(), y.indices.copy(), np.asarray(free).copy())
+
+
+class _ReducedSystem:
+    """Jacobian of one PV / PQ split, filled directly in the kept ordering."""
+
+    def __init__(self, sym: JacobianSymbolic, keep_mag: np.ndarray):
+        self.sym = sym
+        m = sym.m
+        keep_full = np.concatenate([np.ones(m, bool), keep_mag])
+        # reduced layout: [angle at every free bus, |V| at the PQ ones], both ascending by bus
+        red_index = np.cumsum(keep_full) - 1
+        self.size = int(keep_full.sum())
+        self.keep_full = keep_full
+        self.red_index = red_index
+        self.y = None
+        self._built = False
+
+    def _natural(self):
+        """Structure of this split's Jacobian in its own (unpermuted) layout."""
+        p = self.sym.full
+        return _restrict(p.indices, p.indptr, p.src, self.keep_full, self.size)
+
+    def _build(self):
+        sym = self.sym
+        order = sym.order
+        kept_perm = self.keep_full[order]                 # kept flag at each permuted position
+        p = sym._permuted
+        self.indices, self.indptr, self.src = _restrict(p.indices, p.indptr, p.src, kept_perm, self.size)
+        # reduced index of the unknown at each reduced permuted position
+        self.perm = self.red_index[order[kept_perm]]
+        self._built = True
+
+    def solve(self, v: np.ndarray, dload_dvm: np.ndarray | None, rhs: np.ndarray) -> np.ndarray:
+        sym = self.sym
+        full = sym.full
+        d_va, d_vm = bus_derivatives(self.y, v, full.diag_pos, full.rows, dload_dvm)
+        stacked = np.concatenate([d_va.real, d_vm.real, d_va.imag, d_vm.imag])
+        if sym.order is None:
+            # first factorisation of this topology: let SuperLU choose the ordering, keep it
+            indices, indptr, src = self._natural()
+            lu = factorize(sp.csc_matrix((stacked[src], indices, indptr), shape=(self.size, self.size)))
+            sym.set_order_from(self.keep_full, np.argsort(lu.perm_c))
+            return lu.solve(rhs)
+        if not self._built:
+            self._build()
+        j = sp.csc_matrix((stacked[self.src], self.indices, self.indptr), shape=(self.size, self.size))
+        lu = spla.splu(j, **_LU_ORDERED)
+        x = np.empty_like(rhs)
+        x[self.perm] = lu.solve(rhs[self.perm])
+        return x
+
+
+def _restrict(indices, indptr, src, keep, size):
+    """CSC structure of the principal submatrix on the kept rows and columns (order kept)."""
+    renum = np.cumsum(keep) - 1
+    cols = np.repeat(np.arange(len(indptr) - 1), np.diff(indptr))
+    ent = keep[indices] & keep[cols]
+    counts = np.bincount(renum[cols[ent]], minlength=size)
+    return (renum[indices[ent]].astype(np.int32),
+            np.concatenate([[0], np.cumsum(counts)]).astype(np.int32), src[ent])
+
+
+class SymbolicCache:
+    """Reusable symbolic work of the load flow: pass one to :func:`~planner.flow.newton.solve_flow`
+    (``symbolic=``) across many solves of networks with the same branches and bus kinds.
+
+    It holds one :class:`JacobianSymbolic` and checks, at every use, that the admittance
+    pattern and the set of live non-slack buses are still those it was built for (a cheap
+    array comparison); if not, it is rebuilt. So reusing it is always safe, only faster.
+
+    >>> cache = SymbolicCache()
+    >>> cache.builds
+    0
+    """
+
+    def __init__(self):
+        self.sym: JacobianSymbolic | None = None
+        self.builds = 0
+        self.extra: dict = {}      # other reusable work, each entry checking its own key
+
+    def get(self, y: sp.csr_matrix, free: np.ndarray) -> JacobianSymbolic:
+        if self.sym is None or not self.sym.matches(y, free):
+            self.sym = JacobianSymbolic(y, free)
+            self.builds += 1
+        return self.sym

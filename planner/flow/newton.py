@@ -1,45 +1,83 @@
-"""Polar Newton-Raphson load flow with reactive-limit enforcement.
+"""Polar Newton-Raphson load flow with reactive limits, continuation and a plausibility check.
 
 One public function, :func:`solve_flow`, returns a :class:`~planner.flow.result.FlowResult`
-whether or not the case converged; it never raises on a numerical failure.
+whether or not the case converged; it never raises on a numerical failure and never prints
+(numpy floating-point warnings are turned into the result's status inside the solver).
 
 Method
 ------
 * Unknowns: bus angles at PV and PQ buses, magnitudes at PQ buses. Mismatch
-  ``V conj(Y V) - (S_gen - S_load(|V|))`` with voltage-dependent (ZIP) loads.
-* Each iteration: one Jacobian fill on a fixed sparsity pattern, one sparse LU (SuperLU).
-* Step control: a backtracking line search on the 2-norm of the mismatch, so a poor start
-  does not run away to a far-off solution; a solution with a live bus below 0.5 pu is not
-  accepted as the normal operating point.
+  ``V conj(Y V) - (S_gen - S_load(|V|))`` with voltage-dependent (ZIP) loads
+  (:mod:`planner.flow.equations`).
+* Each iteration: one Jacobian fill on a fixed sparsity pattern and one sparse LU (SuperLU) in
+  a fill-reducing ordering computed once per network topology (:class:`SymbolicCache`).
+* Step control, non-monotone: the full Newton step is taken unless the mismatch 2-norm would
+  grow past ``GROWTH_BOUND`` times the best of the last ``WINDOW`` iterates (the early
+  excursion of a flat start on a large meshed network is allowed; a runaway is not). A
+  rejected step is scaled by the optimal multiplier (Iwamoto and Tamura 1981, here from the
+  quadratic model ``F(x + mu dx) ~ (1 - mu) F + mu^2 F(x + dx)`` through the full-step point),
+  then halved until the mismatch falls. Three tiny steps in a row end the attempt as stalled.
+* Continuation: if Newton fails from the requested start, load and generation are scaled to
+  ``CONT_FIRST`` of the schedule, solved, and raised in steps (doubling after an easy step,
+  halving after a failed one), each step warm-started from a secant prediction of the last two
+  solutions; reactive limits are switched at every step. It reaches the operable
+  (high-voltage) solution whenever the path from light load does not fold.
 * Reactive limits (on by default): PV buses whose generators would exceed their summed limits
   become PQ at the limit; a limited bus returns to PV when its voltage would move back past the
-  setpoint. The limits are first checked once the mismatch falls below
-  ``LIMIT_CHECK_PU`` (with a margin of the current mismatch, so an unconverged point does not
-  switch a bus that sits on the edge), so each switching round need not converge fully; a
-  round that changes nothing carries on to full convergence, and the converged point is
-  checked again without a margin. Repeated until no bus changes.
+  setpoint. Limits are first checked once the mismatch falls below ``LIMIT_CHECK_PU`` (with a
+  margin of the current mismatch), so each switching round need not converge fully; at most
+  ``MAX_LIMIT_ROUNDS`` rounds; a generator that returns to PV and is limited again
+  ``FLIP_LIMIT`` times is held at its limit and reported in ``oscillating_buses``.
+* Plausibility (:func:`implausible`): a converged point with a live bus far below its band, a
+  branch beyond its maximum-transfer angle, or losses far above a DC estimate is checked by the
+  continuation; if that reaches another solution, that one is reported; if it reaches the
+  same one, the point is confirmed; else the status is ``SUSPECT``.
+
+Every decision depends on iteration counts and mismatch values only, never on time.
 """
 from __future__ import annotations
 
+import math
 import time
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, compile_network
-from .jacobian import JacobianPattern, NewtonLinearSolver
-from .result import FlowResult, build_result
+from .equations import bus_mismatch, injection, load_derivative, load_power
+from .jacobian import SymbolicCache
+from .result import FlowResult, FlowStatus, build_result
 
-LOW_VOLTAGE_SOLUTION_PU = 0.5     # below this a "converged" point is a low-voltage solution
-MAX_LIMIT_ROUNDS = 20
+__all__ = ["solve_flow", "initial_voltage", "dc_angles", "implausible", "SymbolicCache",
+           "bus_mismatch", "load_power", "FlowStatus"]
+
+MAX_LIMIT_ROUNDS = 12
 LIMIT_CHECK_PU = 1e-3             # mismatch at which limits are first checked in each round
+FLIP_LIMIT = 2                    # returns to PV after which a flip-flopping generator is held
 LINE_SEARCH_STEPS = 10
+GROWTH_BOUND = 1e2                # full step accepted unless the mismatch grows past this x best
+WINDOW = 5                        # ... of the last WINDOW iterates
+TINY_STEP = 0.05                  # a multiplier below this counts towards a stall
+STALL_STEPS = 3
+CONT_FIRST = 0.1                  # first fraction of the schedule solved by the continuation
+CONT_FLOOR = 0.01                 # ... and the fraction tried when that fails
+CONT_STEP = 0.15                  # first step of the fraction
+CONT_MIN_STEP = 1e-3
+CONT_STEP_ITERS = 8               # Newton iterations allowed per continuation step
+CONT_TOL_PU = 1e-6                # tolerance at intermediate continuation steps
+CONT_MAX_ITERS = 400              # all continuation iterations together
+FAR_BELOW_BAND_PU = 0.15          # a voltage this far below its band minimum is suspect
+LOSS_FACTOR = 5.0                 # losses above this x (DC estimate + 1 % of load) are suspect
+SAME_SOLUTION_PU = 1e-4
+MAX_ITER_CAP = 100_000
 
 
 def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | None = None,
                max_iter: int = 30, enforce_q_limits: bool = True, start="flat",
-               build_tables: bool = True) -> FlowResult:
+               build_tables: bool = True, continuation: bool = True, check_plausibility: bool = True,
+               symbolic: SymbolicCache | None = None) -> FlowResult:
     """Solve the AC load flow of a network by Newton-Raphson.
 
     Parameters
@@ -50,17 +88,43 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
         Arrays of the network (from :func:`~planner.network.compile.compile_network`), for
         callers that change levers between solves.
     tol_mva : float, optional
-        Convergence tolerance on the largest bus mismatch, MW or Mvar. Default 1e-8 pu of
-        the system base.
+        Convergence tolerance on the largest bus mismatch, MW or Mvar, finite and between 1e-15
+        and 0.1 pu of the system base. Default 1e-8 pu of the system base.
     max_iter : int
-        Newton iterations allowed in total (all reactive-limit rounds together).
+        Newton iterations allowed from the requested start (all reactive-limit rounds
+        together), 1 to 100,000. The continuation, when it runs, has its own budget.
     enforce_q_limits : bool
         Hold generator reactive output within limits by turning PV buses into PQ buses.
     start : "flat", "dc", "stored" or FlowResult
         Initial voltages: flat (1.0 pu or setpoint, angle 0); angles from a DC load flow;
         the voltages stored in the bus table; or a previous solution (warm start).
     build_tables : bool
-        Build the pandas result tables (turn off inside optimisation loops).
+        Build the pandas result tables (turn off inside optimisation loops;
+        ``FlowResult.to_frames()`` builds them later).
+    continuation : bool
+        When Newton fails, or its solution is implausible, solve from light load upwards.
+    check_plausibility : bool
+        Test a converged point (see :func:`implausible`); off, any converged point is reported.
+    symbolic : SymbolicCache, optional
+        Symbolic work (Jacobian sparsity pattern and fill-reducing ordering) to reuse. The
+        optimiser, N-1 and hourly sweeps call this function hundreds of times on networks that
+        differ only in shunts, setpoints, taps or loads: create one ``SymbolicCache()`` and pass
+        it to every call. It checks the admittance pattern and the live non-slack buses at each
+        use and rebuilds itself when they differ, so passing it is always safe. Without it the
+        cache kept on ``compiled`` is used, shared by repeated solves of one ``Compiled`` and of
+        its copies made by :func:`planner.network.compile.replace`.
+
+    Returns
+    -------
+    FlowResult
+        ``success``, ``status`` (:class:`~planner.flow.result.FlowStatus`), ``message``,
+        iterations, voltages and tables. A ``SUSPECT`` status means solved but likely
+        inoperable (see ``message``).
+
+    Raises
+    ------
+    ValueError
+        For a tolerance or iteration limit that is not a sensible number.
 
     Examples
     --------
@@ -72,58 +136,139 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
     ...     loads=make_table("loads", [{"load_id": "D2", "bus": 2, "mw": 50.0, "mvar": 20.0}]),
     ...     lines=make_table("lines", [{"line_id": "L1", "from_bus": 1, "to_bus": 2, "r_pu": 0.01, "x_pu": 0.1}]))
     >>> res = solve_flow(net)
-    >>> res.converged, res.iterations
-    (True, 3)
+    >>> res.success, res.status.name, res.iterations
+    (True, 'CONVERGED', 3)
     >>> round(res.losses_mw, 4)
     0.3063
+    >>> cache = SymbolicCache()
+    >>> [solve_flow(net, symbolic=cache).iterations for _ in range(2)], cache.builds
+    ([3, 3], 1)
     """
     c = compiled if compiled is not None else compile_network(net)
-    tol = (1e-8 * c.base_mva if tol_mva is None else float(tol_mva)) / c.base_mva
+    tol = _check_tolerance(tol_mva, c.base_mva)
+    max_iter = _check_max_iter(max_iter)
+    if symbolic is None:
+        # shared by every copy of this Compiled made with compile.replace (lever changes)
+        symbolic = c._cache.setdefault("shared", {}).setdefault("flow_symbolic", SymbolicCache())
     t0 = time.perf_counter()
-    v = initial_voltage(c, start)
-    kind = c.kind.copy()
-    q_fixed = np.zeros(c.n)          # reactive output (pu) of buses held at a limit
-    at_limit = np.zeros(c.n, np.int8)  # +1 at max, -1 at min
+    y = c.ybus()
+    ctx = _Context(c, y, tol, enforce_q_limits, symbolic)
+    with np.errstate(all="ignore"):
+        v = initial_voltage(c, start)
+    st = _LimitState.fresh(c)
     if isinstance(start, FlowResult) and enforce_q_limits and start.compiled is not None \
             and start.compiled.n == c.n:
         # a warm start keeps the limit states it had
-        at_limit = start.limit_state.copy()
-        kind = np.where(at_limit != 0, PQ, kind)
-        q_fixed = np.where(at_limit > 0, c.q_max, np.where(at_limit < 0, c.q_min, 0.0))
-        # a bus held at a limit starts from its solved voltage, not from its setpoint
-        held = (at_limit != 0) & c.alive
+        st = _LimitState.from_result(c, start)
+        held = (st.at_limit != 0) & c.alive
         v[held] = start.v[held]
-    y = c.ybus()
     history: list[float] = []
-    iters = 0
-    status, message = 1, ""
-
-    def early_check(vv, margin):
-        return _update_limits(c, y, vv, kind, q_fixed, at_limit, margin=margin)
-
-    for _ in range(MAX_LIMIT_ROUNDS + 1):
-        v, iters, status, message = _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history,
-                                            early_check if enforce_q_limits else None)
-        if status == SWITCHED:
-            continue
-        if status != 0 or not enforce_q_limits:
-            break
-        changed = _update_limits(c, y, v, kind, q_fixed, at_limit)
-        if not changed:
-            break
-    else:
-        status, message = 5, "reactive-limit switching did not settle"
-    alive = c.alive
-    if status == 0 and alive.any() and np.abs(v[alive]).min() < LOW_VOLTAGE_SOLUTION_PU:
-        k = np.flatnonzero(alive)[np.argmin(np.abs(v[alive]))]
-        status = 4
-        message = (f"converged to a low-voltage solution (bus {c.bus_ids[k]} at {abs(v[k]):.3f} pu); "
-                   "not the normal operating point")
-    seconds = time.perf_counter() - t0
-    if status == 0:
+    v1, st1, iters, status, message = _solve_schedule(ctx, v, st, 1.0, tol, max_iter, history)
+    strategy, steps = "newton", 0
+    total = iters
+    if status == FlowStatus.CONVERGED and check_plausibility:
+        reason = implausible(c, y, v1, symbolic)
+        if reason is not None:
+            status, message = FlowStatus.SUSPECT, f"solution looks inoperable: {reason}"
+    if continuation and status != FlowStatus.CONVERGED:
+        vc, stc, it_c, status_c, msg_c, steps = _continuation(ctx, history)
+        total += it_c
+        if status_c == FlowStatus.CONVERGED:
+            if status == FlowStatus.SUSPECT and np.abs(vc - v1).max() < SAME_SOLUTION_PU:
+                # the continuation from light load reaches the same point: it is the operable one
+                status, message = FlowStatus.CONVERGED, (
+                    f"converged in {iters} iterations ({reason}; confirmed by continuation from "
+                    "light load)")
+            else:
+                first = message
+                v1, st1, status, strategy = vc, stc, FlowStatus.CONVERGED, "continuation"
+                message = (f"converged by continuation from light load in {steps} load steps "
+                           f"({total} iterations in all); plain Newton: {first}")
+        elif status == FlowStatus.SUSPECT:
+            message += f"; continuation from light load found no other solution ({msg_c})"
+        else:
+            message += f"; continuation from light load: {msg_c}"
+            if status_c == FlowStatus.COLLAPSE:
+                status = FlowStatus.COLLAPSE
+    elif status == FlowStatus.CONVERGED:
         message = f"converged in {iters} iterations"
-    return build_result(c, y, v, kind, q_fixed, at_limit, status=status, message=message,
-                        iterations=iters, history=history, seconds=seconds, build_tables=build_tables)
+    if st1.oscillating.size and status == FlowStatus.CONVERGED:
+        message += ("; generators at bus " + ", ".join(str(b) for b in c.bus_ids[st1.oscillating])
+                    + " flip-flopped between PV and their limit and are held at the limit")
+    seconds = time.perf_counter() - t0
+    return build_result(c, y, v1, st1.kind, st1.q_fixed, st1.at_limit, status=status, message=message,
+                        iterations=total, history=history, seconds=seconds, build_tables=build_tables,
+                        equations_solved=status in (FlowStatus.CONVERGED, FlowStatus.SUSPECT),
+                        oscillating_buses=[int(b) for b in c.bus_ids[st1.oscillating]],
+                        continuation_steps=steps, strategy=strategy)
+
+
+def _check_tolerance(tol_mva, base_mva) -> float:
+    if tol_mva is None:
+        return 1e-8
+    if isinstance(tol_mva, bool):
+        raise ValueError(f"tol_mva must be a number of MVA, got {tol_mva!r}")
+    try:
+        t = float(tol_mva)
+    except (TypeError, ValueError):
+        raise ValueError(f"tol_mva must be a number of MVA, got {tol_mva!r}") from None
+    lo, hi = 1e-15 * base_mva, 0.1 * base_mva
+    if not (math.isfinite(t) and lo <= t <= hi):
+        raise ValueError(f"tol_mva must be between {lo:.3g} and {hi:.3g} MVA (1e-15 to 0.1 pu of the "
+                         f"{base_mva:g} MVA base), got {tol_mva!r}")
+    return t / base_mva
+
+
+def _check_max_iter(max_iter) -> int:
+    if isinstance(max_iter, bool) or not isinstance(max_iter, (int, np.integer)):
+        raise ValueError(f"max_iter must be a whole number, got {max_iter!r}")
+    if not 1 <= max_iter <= MAX_ITER_CAP:
+        raise ValueError(f"max_iter must be between 1 and {MAX_ITER_CAP}, got {max_iter}")
+    return int(max_iter)
+
+
+@dataclass
+class _Context:
+    c: Compiled
+    y: sp.csr_matrix
+    tol: float
+    enforce: bool
+    cache: SymbolicCache
+
+    def __post_init__(self):
+        c = self.c
+        self.free = np.flatnonzero((c.kind != SLACK) & c.alive)
+        self.sym = self.cache.get(self.y, self.free)
+
+
+@dataclass
+class _LimitState:
+    """Bus kinds and reactive-limit states during a solve (copied before a trial)."""
+    kind: np.ndarray
+    q_fixed: np.ndarray       # reactive output (pu) of buses held at a limit
+    at_limit: np.ndarray      # +1 at max, -1 at min
+    returns: np.ndarray       # times each bus went back from a limit to PV
+    frozen: np.ndarray        # held at the limit for good (flip-flopped)
+
+    @classmethod
+    def fresh(cls, c):
+        return cls(c.kind.copy(), np.zeros(c.n), np.zeros(c.n, np.int8), np.zeros(c.n, np.int16),
+                   np.zeros(c.n, bool))
+
+    @classmethod
+    def from_result(cls, c, res):
+        at = res.limit_state.copy()
+        kind = np.where(at != 0, PQ, c.kind)
+        q = np.where(at > 0, c.q_max, np.where(at < 0, c.q_min, 0.0))
+        return cls(kind, q, at, np.zeros(c.n, np.int16), np.zeros(c.n, bool))
+
+    def copy(self):
+        return _LimitState(self.kind.copy(), self.q_fixed.copy(), self.at_limit.copy(),
+                           self.returns.copy(), self.frozen.copy())
+
+    @property
+    def oscillating(self) -> np.ndarray:
+        return np.flatnonzero(self.frozen)
 
 
 def initial_voltage(c: Compiled, start) -> np.ndarray:
@@ -136,10 +281,10 @@ def initial_voltage(c: Compiled, start) -> np.ndarray:
         vm = np.abs(v)
         vm[controlled] = c.v_set[controlled]
         v = vm * np.exp(1j * np.angle(v))
-    elif start == "stored":
+    elif isinstance(start, str) and start == "stored":
         vm = np.where(controlled, c.v_set, c.vm_stored)
         v = vm * np.exp(1j * c.va_stored)
-    elif start in ("flat", "dc"):
+    elif isinstance(start, str) and start in ("flat", "dc"):
         vm = np.where(controlled, c.v_set, 1.0)
         va = np.where(c.kind == SLACK, c.va_stored, 0.0)
         if start == "dc":
@@ -150,119 +295,261 @@ def initial_voltage(c: Compiled, start) -> np.ndarray:
     return np.where(c.alive, v, 0.0)
 
 
-def dc_angles(c: Compiled, va_slack: np.ndarray) -> np.ndarray:
-    """Bus angles of a DC load flow (lossless, 1 pu, series reactance only, phase shifts kept)."""
+def _dc_matrix(c: Compiled):
     n = c.n
     bser = 1.0 / np.imag(1.0 / c.ys)  # 1/x
     bser = np.where(np.isfinite(bser), bser, 0.0)
     b = sp.csr_matrix((np.concatenate([bser, bser, -bser, -bser]),
                        (np.concatenate([c.f, c.t, c.f, c.t]), np.concatenate([c.f, c.t, c.t, c.f]))),
                       shape=(n, n))
-    # a phase shifter on the from side injects b*phi at its ends
-    p_shift = np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
-    p = (c.s_gen - c.s_load_p - c.s_load_i - c.s_load_z).real - c.ysh.real - p_shift
-    free = np.flatnonzero((c.kind != SLACK) & c.alive)
-    fixed = np.flatnonzero((c.kind == SLACK) & c.alive)
-    va = va_slack.copy()
-    if len(free):
-        rhs = p[free] - b[free][:, fixed] @ va[fixed]
-        try:
-            va[free] = spla.spsolve(b[free][:, free].tocsc(), rhs)
-        except RuntimeError:
-            return va_slack
-        if not np.all(np.isfinite(va)):
-            return va_slack
+    return b, bser
+
+
+def dc_angles(c: Compiled, va_slack: np.ndarray) -> np.ndarray:
+    """Bus angles of a DC load flow (lossless, 1 pu, series reactance only, phase shifts kept)."""
+    n = c.n
+    with np.errstate(all="ignore"):
+        b, bser = _dc_matrix(c)
+        # a phase shifter on the from side injects b*phi at its ends
+        p_shift = np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
+        p = (c.s_gen - c.s_load_p - c.s_load_i - c.s_load_z).real - c.ysh.real - p_shift
+        free = np.flatnonzero((c.kind != SLACK) & c.alive)
+        fixed = np.flatnonzero((c.kind == SLACK) & c.alive)
+        va = va_slack.copy()
+        if len(free):
+            rhs = p[free] - b[free][:, fixed] @ va[fixed]
+            try:
+                va[free] = spla.spsolve(b[free][:, free].tocsc(), rhs)
+            except RuntimeError:
+                return va_slack
+            if not np.all(np.isfinite(va)):
+                return va_slack
     return va
 
 
-def load_power(c: Compiled, vm: np.ndarray) -> np.ndarray:
-    """Complex load at voltage magnitudes ``vm`` (ZIP model)."""
-    return c.s_load_p + c.s_load_i * vm + c.s_load_z * vm ** 2
+# --- plausibility ---------------------------------------------------------------------------
 
+def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = None) -> str | None:
+    """Why a converged point looks like an inoperable (low-voltage) solution, or None.
 
-def bus_mismatch(c: Compiled, y, v: np.ndarray, q_fixed: np.ndarray) -> np.ndarray:
-    """Complex mismatch per bus: computed injection minus scheduled injection (pu)."""
+    Three tests (rules of the trade, common practice): a live bus more than
+    ``FAR_BELOW_BAND_PU`` below its band minimum; a branch whose angle across its series
+    impedance exceeds the impedance angle ``atan2(x, r)``, past which the power it delivers
+    falls as the angle grows (the far side of the nose of its transfer curve); total losses more
+    than ``LOSS_FACTOR`` times a DC estimate (``sum r P_dc^2``) plus 1 % of the load.
+    """
+    alive = c.alive
+    if not alive.any():
+        return None
     vm = np.abs(v)
-    s_spec = c.s_gen + 1j * q_fixed - load_power(c, vm)
-    return v * np.conj(y @ v) - s_spec
+    short = np.where(alive, c.v_min - FAR_BELOW_BAND_PU - vm, -np.inf)
+    k = int(np.argmax(short))
+    if short[k] > 0:
+        return (f"bus {c.bus_ids[k]} at {vm[k]:.3f} pu, far below its band minimum "
+                f"{c.v_min[k]:.2f} pu")
+    z = 1.0 / c.ys
+    ang = np.angle(v)
+    on_f = np.where(c.tap_from, c.shift, 0.0)
+    on_t = np.where(c.tap_from, 0.0, c.shift)
+    delta = np.angle(np.exp(1j * ((ang[c.f] - on_f) - (ang[c.t] - on_t))))
+    limit = np.arctan2(z.imag, z.real)
+    ok_branch = (z.imag > 0) & alive[c.f] & alive[c.t]
+    over = np.where(ok_branch, np.abs(delta) - limit, -np.inf)
+    if len(over) and over.max() > 0:
+        j = int(np.argmax(over))
+        return (f"branch {c.branch_ids[j]} carries {np.rad2deg(abs(delta[j])):.1f} deg across it, beyond "
+                f"its maximum-transfer angle {np.rad2deg(limit[j]):.1f} deg")
+    losses = float((injection(y, v).real * alive).sum() - (c.ysh.real * vm ** 2 * alive).sum())
+    estimate = _dc_loss_estimate(c, cache)
+    load = float(np.abs(load_power(c, vm).real[alive]).sum())
+    if estimate is not None and losses > LOSS_FACTOR * (estimate + 0.01 * load):
+        return (f"losses {losses * c.base_mva:.1f} MW, over {LOSS_FACTOR:g} x a DC estimate of "
+                f"{estimate * c.base_mva:.1f} MW plus 1 % of load")
+    return None
 
 
-SWITCHED = -1                     # internal status: the early limit check changed bus kinds
+def _dc_loss_estimate(c: Compiled, cache: SymbolicCache | None = None):
+    """sum over branches of r |P_dc|^2 (pu), from a DC load flow; None if it cannot be made.
+
+    The factorised DC matrix is kept in ``cache`` (valid while the branch impedances and the
+    slack buses are the same), so the check costs one triangular solve per load flow."""
+    free = np.flatnonzero((c.kind != SLACK) & c.alive)
+    fixed = np.flatnonzero((c.kind == SLACK) & c.alive)
+    key = (c.ys.tobytes(), c.f.tobytes(), c.t.tobytes(), free.tobytes())
+    with np.errstate(all="ignore"):
+        hit = cache.extra.get("dc") if cache is not None else None
+        if hit is None or hit[0] != key:
+            b, bser = _dc_matrix(c)
+            try:
+                lu = spla.splu(b[free][:, free].tocsc()) if len(free) else None
+            except RuntimeError:
+                lu = None
+            hit = (key, lu, b[free][:, fixed], bser)
+            if cache is not None:
+                cache.extra["dc"] = hit
+        _, lu, b_fx, bser = hit
+        if lu is None:
+            return None
+        n = c.n
+        p_shift = np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
+        p = (c.s_gen - c.s_load_p - c.s_load_i - c.s_load_z).real - c.ysh.real - p_shift
+        va = np.where(c.kind == SLACK, c.va_stored, 0.0)
+        va[free] = lu.solve(p[free] - b_fx @ va[fixed])
+        flow = bser * (va[c.f] - va[c.t] + np.where(c.tap_from, -c.shift, c.shift))
+        r = (1.0 / c.ys).real
+        est = float(np.nansum(np.where(r > 0, r * flow * flow, 0.0)))
+    return est if math.isfinite(est) else None
 
 
-def _newton(c, y, v, kind, q_fixed, tol, max_iter, iters, history, early_check=None):
+# --- one schedule: Newton with limit rounds -------------------------------------------------
+
+def _solve_schedule(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, history):
+    """Newton iterations and reactive-limit rounds at one fraction ``scale`` of the schedule.
+
+    Returns (v, limit state, iterations, status, message); ``st`` is not modified."""
+    st = st.copy()
+    c, y = ctx.c, ctx.y
+    iters = 0
+    status, message = FlowStatus.DIVERGED, ""
+
+    def early_check(vv, margin):
+        return _update_limits(c, y, vv, st, scale, margin=margin)
+
+    for _ in range(MAX_LIMIT_ROUNDS + 1):
+        v, iters, status, message = _newton(ctx, v, st, scale, tol, max_iter, iters, history,
+                                            early_check if ctx.enforce else None)
+        if status == _SWITCHED:
+            continue
+        if status != FlowStatus.CONVERGED or not ctx.enforce:
+            break
+        if not _update_limits(c, y, v, st, scale):
+            break
+    else:
+        status, message = FlowStatus.LIMITS_UNSETTLED, (
+            f"reactive-limit switching did not settle in {MAX_LIMIT_ROUNDS} rounds")
+    return v, st, iters, status, message
+
+
+_SWITCHED = -1                    # internal: the early limit check changed bus kinds
+
+
+def _optimal_multiplier(f0: np.ndarray, f1: np.ndarray) -> float:
+    """Step multiplier minimising ``|(1 - mu) f0 + mu^2 f1|^2`` on (0, 1].
+
+    ``f1`` is the mismatch after the full step; the quadratic model through it is the polar
+    counterpart of Iwamoto's optimal multiplier (exact for rectangular coordinates).
+    """
+    aa, ac, cc = float(f0 @ f0), float(f0 @ f1), float(f1 @ f1)
+    roots = np.roots([2.0 * cc, -3.0 * ac, aa + 2.0 * ac, -aa])
+    cand = [r.real for r in roots if abs(r.imag) < 1e-9 and 0.0 < r.real <= 1.0] + [1.0]
+
+    def g(mu):
+        return (1 - mu) ** 2 * aa + 2 * (1 - mu) * mu * mu * ac + mu ** 4 * cc
+
+    return float(min(cand, key=g))
+
+
+def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, history, early_check=None):
     """Newton iterations for one set of bus kinds. Returns (v, iterations, status, message).
 
     ``early_check(v, margin)``, if given, is called once, when the mismatch first falls below
     ``LIMIT_CHECK_PU``; if it returns True (bus kinds changed, ``v`` possibly adjusted in
-    place) the iterations stop with status ``SWITCHED``.
+    place) the iterations stop with status ``_SWITCHED``.
     """
-    alive = c.alive
-    pv = np.flatnonzero((kind == PV) & alive)
-    pq = np.flatnonzero((kind == PQ) & alive)
-    pvpq = np.concatenate([pv, pq])
-    system = NewtonLinearSolver(JacobianPattern(y, pvpq, pq))
-    na = len(pvpq)
+    c, y = ctx.c, ctx.y
+    free = ctx.free
+    pq = np.flatnonzero((st.kind == PQ) & c.alive)
+    pq_mask = np.zeros(c.n, bool)
+    pq_mask[pq] = True
+    system = ctx.sym.system(y, pq_mask)
+    na = len(free)
+    q_fixed = st.q_fixed
+    diverged = FlowStatus.DIVERGED
 
     def residual(vv):
-        mis = bus_mismatch(c, y, vv, q_fixed)
-        return np.concatenate([mis.real[pvpq], mis.imag[pq]])
+        mis = bus_mismatch(c, y, vv, q_fixed, scale)
+        return np.concatenate([mis.real[free], mis.imag[pq]])
 
-    def dload(vm):
-        return (c.s_load_i + 2.0 * c.s_load_z * vm)
-
-    vm, va = np.abs(v), np.angle(v)
-    F = residual(v)
-    while True:
-        norm = float(np.abs(F).max()) if F.size else 0.0
-        history.append(norm * c.base_mva)
-        if not np.isfinite(norm):
-            return v, iters, 2, "the iteration diverged (non-finite mismatch)"
-        if norm <= tol:
-            return v, iters, 0, ""
-        if early_check is not None and norm <= LIMIT_CHECK_PU:
-            if early_check(v, norm):
-                return v, iters, SWITCHED, ""
-            early_check = None
-        if iters >= max_iter:
-            return v, iters, 1, f"no convergence within {max_iter} iterations"
+    with np.errstate(all="raise", under="ignore"):
         try:
-            dx = -system.solve(v, dload(vm), F)
-        except RuntimeError:
-            return v, iters, 3, "the Jacobian is singular (voltage collapse or an unsupported island)"
-        if not np.all(np.isfinite(dx)):
-            return v, iters, 3, "the Jacobian is singular (voltage collapse or an unsupported island)"
-        iters += 1
-        # backtracking on the 2-norm keeps a poor start from running away
-        f0 = float(F @ F)
-        alpha = 1.0
-        for _ in range(LINE_SEARCH_STEPS):
-            va_new = va.copy()
-            vm_new = vm.copy()
-            va_new[pvpq] += alpha * dx[:na]
-            vm_new[pq] += alpha * dx[na:]
-            if vm_new[pq].size == 0 or vm_new[pq].min() > 0.05:
+            vm, va = np.abs(v), np.angle(v)
+            F = residual(v)
+        except FloatingPointError:
+            return v, iters, diverged, "the iteration diverged (numerical overflow)"
+        recent: list[float] = []
+        tiny = 0
+        while True:
+            norm = float(np.abs(F).max()) if F.size else 0.0
+            history.append(norm * c.base_mva)
+            if not np.isfinite(norm):
+                return v, iters, diverged, "the iteration diverged (non-finite mismatch)"
+            if norm <= tol:
+                return v, iters, FlowStatus.CONVERGED, ""
+            if early_check is not None and norm <= LIMIT_CHECK_PU:
+                if early_check(v, norm):
+                    return v, iters, _SWITCHED, ""
+                early_check = None
+            if iters >= max_iter:
+                return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
+            try:
+                dx = -system.solve(v, load_derivative(c, vm, scale), F)
+            except RuntimeError:
+                return v, iters, FlowStatus.SINGULAR, \
+                    "the Jacobian is singular (voltage collapse or an unsupported island)"
+            except FloatingPointError:
+                return v, iters, diverged, "the iteration diverged (numerical overflow)"
+            if not np.all(np.isfinite(dx)):
+                return v, iters, FlowStatus.SINGULAR, \
+                    "the Jacobian is singular (voltage collapse or an unsupported island)"
+            iters += 1
+            merit = float(np.sqrt(F @ F))
+            recent = (recent + [merit])[-WINDOW:]
+
+            def trial(alpha):
+                va_new = va.copy()
+                vm_new = vm.copy()
+                va_new[free] += alpha * dx[:na]
+                vm_new[pq] += alpha * dx[na:]
                 v_new = vm_new * np.exp(1j * va_new)
-                F_new = residual(v_new)
-                f1 = float(F_new @ F_new)
-                if np.isfinite(f1) and f1 <= (1.0 - 1e-4 * alpha) * f0:
-                    break
-            alpha *= 0.5
-        else:
-            # no decrease along the Newton direction: take the shortest step and let the
-            # next iteration (or the iteration limit) decide
-            if not (vm_new[pq].size == 0 or vm_new[pq].min() > 0.05):
-                return v, iters, 2, "the iteration diverged (voltages collapsing towards zero)"
-        v, vm, va, F = v_new, vm_new, va_new, F_new
+                try:
+                    F_new = residual(v_new)
+                    m = float(np.sqrt(F_new @ F_new))
+                except FloatingPointError:
+                    F_new, m = None, np.inf
+                positive = vm_new[pq].size == 0 or vm_new[pq].min() > 0.0
+                return v_new, vm_new, va_new, F_new, (m if positive else np.inf)
+
+            v_new, vm_new, va_new, F_new, m1 = trial(1.0)
+            alpha = 1.0
+            if not (m1 <= GROWTH_BOUND * min(recent)):
+                # rejected: optimal multiplier from the full-step point, then halving
+                if F_new is not None and np.isfinite(m1):
+                    alpha = _optimal_multiplier(F, F_new)
+                else:
+                    alpha = 0.5
+                for _ in range(LINE_SEARCH_STEPS):
+                    v_new, vm_new, va_new, F_new, m = trial(alpha)
+                    if m <= (1.0 - 1e-4 * alpha) * merit:
+                        break
+                    alpha *= 0.5
+                else:
+                    return v, iters, diverged, (
+                        "the iteration diverged (no step along the Newton direction lowers the mismatch)")
+            tiny = tiny + 1 if alpha < TINY_STEP else 0
+            if tiny >= STALL_STEPS:
+                return v, iters, diverged, "the iteration diverged (stalled: only tiny steps lower the mismatch)"
+            v, vm, va, F = v_new, vm_new, va_new, F_new
 
 
-def _update_limits(c, y, v, kind, q_fixed, at_limit, margin: float = 0.0) -> bool:
+def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0) -> bool:
     """Switch PV buses at a reactive limit to PQ and back; True if anything changed.
 
     ``margin`` (pu of Mvar and of voltage) widens both tests, for a point not yet converged.
+    A bus that has gone back to PV ``FLIP_LIMIT`` times is not let back again.
     """
+    kind, q_fixed, at_limit = st.kind, st.q_fixed, st.at_limit
     vm = np.abs(v)
-    q_gen = (v * np.conj(y @ v)).imag + load_power(c, vm).imag - c.s_gen.imag
+    q_gen = injection(y, v).imag + load_power(c, vm, scale).imag - scale * c.s_gen.imag
     tol_q = 1e-9 + margin
     pv_now = (kind == PV) & c.alive
     over = pv_now & (q_gen > c.q_max + tol_q)
@@ -270,6 +557,7 @@ def _update_limits(c, y, v, kind, q_fixed, at_limit, margin: float = 0.0) -> boo
     # a bus held at its maximum whose voltage is above the setpoint could give less: back to PV
     tol_v = 1e-9 + margin
     back = ((at_limit > 0) & (vm > c.v_set + tol_v)) | ((at_limit < 0) & (vm < c.v_set - tol_v))
+    back &= ~st.frozen
     if not (over.any() or under.any() or back.any()):
         return False
     kind[over | under] = PQ
@@ -280,6 +568,70 @@ def _update_limits(c, y, v, kind, q_fixed, at_limit, margin: float = 0.0) -> boo
     kind[back] = PV
     at_limit[back] = 0
     q_fixed[back] = 0.0
+    st.returns[back] += 1
+    st.frozen |= (st.returns >= FLIP_LIMIT) & (over | under)
     # a bus back on voltage control starts from its setpoint
     v[back] = c.v_set[back] * np.exp(1j * np.angle(v[back]))
     return True
+
+
+# --- continuation on load and generation ----------------------------------------------------
+
+def _continuation(ctx: _Context, history):
+    """Solve at a fraction of the schedule and step up to the full schedule.
+
+    Returns (v, limit state, iterations, status, message, steps)."""
+    c = ctx.c
+    vm0 = np.where(c.kind != PQ, c.v_set, 1.0)
+    va0 = np.where(c.kind == SLACK, c.va_stored, 0.0)
+    v = np.where(c.alive, vm0 * np.exp(1j * va0), 0.0)
+    st = _LimitState.fresh(c)
+    iters = 0
+    lam, step = 0.0, CONT_STEP
+    target = CONT_FIRST
+    prev = None                    # (lam, v) of the solution before the current one
+    steps = 0
+    while True:
+        budget = CONT_STEP_ITERS if lam > 0 else 3 * CONT_STEP_ITERS
+        tol = ctx.tol if target >= 1.0 else max(ctx.tol, CONT_TOL_PU)
+        guess = v
+        if prev is not None and lam > prev[0]:
+            # secant predictor on magnitude and angle
+            w = (target - lam) / (lam - prev[0])
+            vm_g = np.abs(v) + w * (np.abs(v) - np.abs(prev[1]))
+            va_g = np.angle(v) + w * _angle_diff(v, prev[1])
+            vm_g = np.where(c.kind != PQ, np.abs(v), np.maximum(vm_g, 0.3))
+            guess = np.where(c.alive, vm_g * np.exp(1j * va_g), 0.0)
+        v_new, st_new, it, status, message = _solve_schedule(ctx, guess, st, target, tol, budget, history)
+        iters += it
+        if status == FlowStatus.CONVERGED:
+            steps += 1
+            if lam > 0:
+                prev = (lam, v)
+            v, st, lam = v_new, st_new, target
+            if lam >= 1.0:
+                return v, st, iters, FlowStatus.CONVERGED, "", steps
+            if it <= 3:
+                step = min(2.0 * step, 0.5)
+            target = min(1.0, lam + step)
+        else:
+            if lam == 0.0:
+                if target > CONT_FLOOR:
+                    target = CONT_FLOOR
+                    continue
+                return v_new, st_new, iters, FlowStatus.DIVERGED, \
+                    f"no solution even at {target:.0%} of the schedule ({message})", steps
+            step *= 0.5
+            if step < CONT_MIN_STEP:
+                return v, st, iters, FlowStatus.COLLAPSE, (
+                    f"solutions reach only {lam:.1%} of the scheduled load and generation "
+                    "(likely beyond the network's loadability)"), steps
+            target = min(1.0, lam + step)
+        if iters >= CONT_MAX_ITERS:
+            return v, st, iters, FlowStatus.ITERATION_LIMIT, (
+                f"iteration budget spent at {lam:.1%} of the schedule"), steps
+
+
+def _angle_diff(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Angle of ``a`` minus angle of ``b``, wrapped to (-pi, pi]."""
+    return np.angle(a * np.conj(b))

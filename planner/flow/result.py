@@ -1,33 +1,76 @@
 """The one result object of a load flow, converged or not."""
 from __future__ import annotations
 
+import enum
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from ..network.compile import PQ, SLACK, KIND_NAMES, Compiled
+from .equations import branch_flows, bus_mismatch, load_power
 
+__all__ = ["FlowStatus", "FlowResult", "build_result", "branch_flows", "generator_table"]
+
+
+class FlowStatus(enum.IntEnum):
+    """Outcome of a load flow. Integer values are kept from earlier releases, so
+    ``res.status == 0`` still means converged.
+
+    CONVERGED
+        Every mismatch is within tolerance, reactive limits settled, and the solution passed the
+        plausibility checks (or was confirmed by continuation from light load).
+    ITERATION_LIMIT
+        The iteration budget ran out before the mismatch fell within tolerance.
+    DIVERGED
+        The iteration ran away or stalled (no step lowered the mismatch, or a numerical
+        overflow); the continuation could not rescue it either.
+    SINGULAR
+        The Jacobian is singular (voltage collapse, or an island the model cannot carry).
+    SUSPECT
+        The equations are solved to tolerance, but the solution looks inoperable (voltages far
+        below the band, a branch beyond its maximum-transfer angle, or losses far above a DC
+        estimate) and continuation from light load found no other solution. ``message`` says
+        why; ``success`` is False. The voltages are a valid solution of the equations.
+    LIMITS_UNSETTLED
+        Reactive-limit switching did not settle within the allowed rounds.
+    COLLAPSE
+        Continuation from light load stopped short of the full schedule (the fraction reached
+        is in ``message``): most likely no operable solution exists at this loading.
+    """
+    CONVERGED = 0
+    ITERATION_LIMIT = 1
+    DIVERGED = 2
+    SINGULAR = 3
+    SUSPECT = 4
+    LIMITS_UNSETTLED = 5
+    COLLAPSE = 6
+
+
+# the words of earlier releases, kept for the JSON output
 STATUS = {
-    0: "converged",
-    1: "iteration limit reached",
-    2: "diverged",
-    3: "singular Jacobian",
-    4: "low-voltage solution rejected",
-    5: "reactive-limit switching did not settle",
+    FlowStatus.CONVERGED: "converged",
+    FlowStatus.ITERATION_LIMIT: "iteration limit reached",
+    FlowStatus.DIVERGED: "diverged",
+    FlowStatus.SINGULAR: "singular Jacobian",
+    FlowStatus.SUSPECT: "converged to a suspect (likely inoperable) solution",
+    FlowStatus.LIMITS_UNSETTLED: "reactive-limit switching did not settle",
+    FlowStatus.COLLAPSE: "no solution reached from light load",
 }
 
 
-@dataclass
+@dataclass(repr=False)
 class FlowResult:
     """Outcome of :func:`planner.flow.newton.solve_flow`.
 
-    Always check ``converged`` (or ``status == 0``) before using the voltages: a failed
-    solve returns its last iterate with ``message``, ``worst_bus`` and ``mismatch_history``
-    saying what went wrong.
+    Always check ``success`` (or ``status == FlowStatus.CONVERGED``) before using the voltages:
+    a failed solve returns its last iterate with ``message``, ``worst_bus`` and
+    ``mismatch_history`` saying what went wrong. ``converged`` is a read-only alias of
+    ``success``. ``equations_solved`` is True when the mismatch is within tolerance, even for a
+    ``SUSPECT`` solution.
     """
-    converged: bool
-    status: int
+    success: bool
+    status: FlowStatus
     message: str
     iterations: int
     mismatch_history: list
@@ -44,8 +87,31 @@ class FlowResult:
     buses: pd.DataFrame | None = None
     generators: pd.DataFrame | None = None
     branches: pd.DataFrame | None = None
-    bus_q_gen: np.ndarray = field(default=None, repr=False)   # pu per bus
-    bus_p_gen: np.ndarray = field(default=None, repr=False)
+    bus_q_gen: np.ndarray = field(default=None)   # pu per bus
+    bus_p_gen: np.ndarray = field(default=None)
+    equations_solved: bool = False
+    oscillating_buses: list = field(default_factory=list)   # generators frozen at a limit after flip-flopping
+    continuation_steps: int = 0      # load steps taken by the continuation (0: plain Newton sufficed)
+    strategy: str = "newton"         # "newton" or "continuation": what produced the reported point
+
+    @property
+    def converged(self) -> bool:
+        """Read-only alias of ``success``."""
+        return self.success
+
+    def __repr__(self) -> str:
+        return (f"FlowResult(success={self.success}, status={self.status.name}, "
+                f"iterations={self.iterations}, buses={self.compiled.n if self.compiled is not None else 0}, "
+                f"losses_mw={self.losses_mw:.4g}, message={self.message!r})")
+
+    def to_frames(self) -> dict:
+        """The result tables (buses, generators, branches) as pandas DataFrames.
+
+        Builds them if the solve was run with ``build_tables=False``.
+        """
+        if self.buses is None:
+            _fill_tables(self)
+        return {"buses": self.buses, "generators": self.generators, "branches": self.branches}
 
     @property
     def vm(self) -> np.ndarray:
@@ -58,10 +124,11 @@ class FlowResult:
     def summary(self) -> str:
         """A few lines a person reads: convergence, losses, voltage extremes, limited generators."""
         c = self.compiled
-        lines = [f"load flow: {self.message}" + ("" if self.converged else
+        lines = [f"load flow: {self.message}" + ("" if self.equations_solved else
                  f"; worst bus {self.worst_bus} mismatch {self.worst_mismatch_mva:.4g} MVA")]
-        lines.append(f"iterations: {self.iterations}   Newton time: {self.solve_seconds * 1000:.1f} ms")
-        if self.converged:
+        lines.append(f"iterations: {self.iterations}   Newton time: {self.solve_seconds * 1000:.1f} ms"
+                     + (f"   continuation steps: {self.continuation_steps}" if self.continuation_steps else ""))
+        if self.equations_solved:
             vm = self.vm
             alive = c.alive
             lo = np.flatnonzero(alive)[np.argmin(vm[alive])]
@@ -75,22 +142,26 @@ class FlowResult:
                     zip(self.limited_buses, self.limit_state[c.index_of(self.limited_buses)])))
             else:
                 lines.append("generators at a reactive limit: none")
+            if self.oscillating_buses:
+                lines.append("generators that flip-flopped and were held at a limit: "
+                             + ", ".join(f"bus {b}" for b in self.oscillating_buses))
         return "\n".join(lines)
 
 
-def branch_flows(c: Compiled, v: np.ndarray):
-    """Complex power entering each branch at its from and to ends (pu)."""
-    yff, yft, ytf, ytt = c.branch_admittances()
-    vf, vt = v[c.f], v[c.t]
-    s_from = vf * np.conj(yff * vf + yft * vt)
-    s_to = vt * np.conj(ytf * vf + ytt * vt)
-    return s_from, s_to
-
-
 def build_result(c: Compiled, y, v, kind, q_fixed, at_limit, *, status, message, iterations, history,
-                 seconds, build_tables=True) -> FlowResult:
-    from .newton import bus_mismatch, load_power  # local: newton imports this module
+                 seconds, build_tables=True, equations_solved=None, **extra) -> FlowResult:
+    """Assemble a :class:`FlowResult` from the solver's final state (no printing, no raising)."""
+    with np.errstate(all="ignore"):     # a diverged iterate may hold huge values: report, never warn
+        res = _build(c, y, v, kind, q_fixed, at_limit, status=FlowStatus(status), message=message,
+                     iterations=iterations, history=history, seconds=seconds,
+                     equations_solved=equations_solved, **extra)
+        if build_tables:
+            _fill_tables(res)
+    return res
 
+
+def _build(c, y, v, kind, q_fixed, at_limit, *, status, message, iterations, history, seconds,
+           equations_solved, **extra) -> FlowResult:
     base = c.base_mva
     mis = bus_mismatch(c, y, v, q_fixed)
     # only equations that were solved count for the worst bus (P at PV/PQ, Q at PQ)
@@ -109,14 +180,29 @@ def build_result(c: Compiled, y, v, kind, q_fixed, at_limit, *, status, message,
     p_gen_bus = np.where(kind == SLACK, s_gen_bus.real, c.s_gen.real)
     limited = [int(b) for b in c.bus_ids[at_limit != 0]]
     res = FlowResult(
-        converged=status == 0, status=status, message=message, iterations=iterations,
+        success=status == FlowStatus.CONVERGED, status=status, message=message, iterations=iterations,
         mismatch_history=list(history), worst_bus=int(c.bus_ids[worst]) if c.n else None,
         worst_mismatch_mva=float(np.abs(err[worst]) * base) if c.n else 0.0,
         losses_mw=float(loss.real.sum() * base), losses_mvar=float(loss.imag.sum() * base),
         solve_seconds=seconds, limited_buses=limited, v=v, compiled=c, limit_state=at_limit.copy(),
         kind=kind.copy(), bus_q_gen=q_gen_bus, bus_p_gen=p_gen_bus,
+        equations_solved=bool(status in (FlowStatus.CONVERGED, FlowStatus.SUSPECT)
+                              if equations_solved is None else equations_solved),
+        **extra,
     )
-    if build_tables:
+    return res
+
+
+def _fill_tables(res: FlowResult) -> None:
+    """Build the pandas tables of a result in place."""
+    c, v, kind, at_limit = res.compiled, res.v, res.kind, res.limit_state
+    base = c.base_mva
+    vm = np.abs(v)
+    s_load = load_power(c, vm)
+    p_gen_bus, q_gen_bus = res.bus_p_gen, res.bus_q_gen
+    s_from, s_to = branch_flows(c, v)
+    loss = s_from + s_to
+    with np.errstate(all="ignore"):
         res.buses = pd.DataFrame({
             "bus": c.bus_ids, "name": c.names, "kind": KIND_NAMES[kind], "v_pu": vm,
             "angle_deg": np.rad2deg(np.angle(v)),
@@ -137,7 +223,6 @@ def build_result(c: Compiled, y, v, kind, q_fixed, at_limit, *, status, message,
             "rating_mva": rating,
             "loading_pct": np.where(rating > 0, 100.0 * s_max / np.where(rating > 0, rating, 1.0), np.nan),
         })
-    return res
 
 
 def generator_table(c: Compiled, kind, p_gen_bus, q_gen_bus, at_limit) -> pd.DataFrame:

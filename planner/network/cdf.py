@@ -43,6 +43,7 @@ found: a mismatch means a record was lost or added, and is an error.
 """
 from __future__ import annotations
 
+import io
 import re
 from pathlib import Path
 
@@ -137,15 +138,132 @@ def _parse_fields(text: str, fields, file, lineno, section):
         if kind == "int":
             if value != int(value) or abs(value) >= 2 ** 63:   # beyond int64: no table can hold it
                 raise InputError(f"{raw!r} is not a whole number", file=file, line=lineno, field=where)
+            if abs(value) >= 2 ** 53:
+                raise InputError(f"{raw!r} is out of range for a whole number", file=file, line=lineno,
+                                 field=where)
             value = int(value)
         out[key] = value
     return out
 
 
+_ALLOWED = np.zeros(256, bool)
+_ALLOWED[np.frombuffer(b"0123456789+-.eEdD ", np.uint8)] = True
+_SPACE, _LOWER_D, _UPPER_D, _E = ord(" "), ord("d"), ord("D"), ord("e")
+
+
+def _parse_section(records, fields, file, section):
+    """Slice every record of a section at once: {key: array} for the fields that are read.
+
+    Numbers are converted column by column (numpy); a value that the column conversion cannot
+    take, or that fails a check (characters other than digits, sign, point, exponent; not
+    finite; not whole in an integer field), marks its record, and the first marked record is
+    re-read by :func:`_parse_fields`, which raises the same one-line error, naming file, line
+    and field, that a record-by-record reader would. Returns (columns, first bad row or None):
+    the caller raises it only if no earlier record has another error.
+    """
+    n = len(records)
+    width = max(b for _, _, _, b, _ in fields)
+    texts = [t for _, t in records]
+    raw = b"".join(t.encode("latin-1")[:width].ljust(width) for t in texts)
+    mat = np.frombuffer(raw, np.uint8).reshape(n, width) if n else np.zeros((0, width), np.uint8)
+    out, bad = {}, np.zeros(n, bool)
+    numeric = []
+    for key, label, a, b, kind in fields:
+        if key in _NOT_READ:
+            continue
+        if kind == "str":
+            out[key] = np.array([t[a - 1:b].strip() for t in texts], dtype=object)
+            continue
+        sub = mat[:, a - 1:b].copy()
+        sub[(sub == _LOWER_D) | (sub == _UPPER_D)] = _E
+        nonblank = sub != _SPACE
+        blank = ~nonblank.any(axis=1)
+        flagged = ~_ALLOWED[sub].all(axis=1)
+        # a space between two non-blank characters would make two numbers of one field
+        first_nb = np.argmax(nonblank, axis=1)
+        last_nb = sub.shape[1] - 1 - np.argmax(nonblank[:, ::-1], axis=1)
+        flagged |= ~blank & (nonblank.sum(axis=1) != last_nb - first_nb + 1)
+        sub[blank | flagged, -1] = ord("0")
+        sub[blank | flagged, :-1] = _SPACE
+        numeric.append((key, kind, sub, flagged))
+    values = _block_floats([sub for _, _, sub, _ in numeric])
+    for k, (key, kind, sub, flagged) in enumerate(numeric):
+        vals = values[:, k].copy() if values is not None else None
+        if vals is None:
+            text = np.ascontiguousarray(sub).view(f"S{sub.shape[1]}").ravel()
+            vals = np.array([_float_or_nan(x) for x in text])
+            flagged |= np.isnan(vals)
+        with np.errstate(invalid="ignore"):
+            flagged |= ~np.isfinite(vals)
+            if kind == "int":
+                flagged |= (vals != np.round(vals)) | (np.abs(vals) >= 2 ** 53)
+        vals[flagged] = 0.0
+        out[key] = vals.astype(np.int64) if kind == "int" else vals
+        bad |= flagged
+    # the record-by-record parser names the exact field of the first bad record; a marked record
+    # it reads without complaint (it is the stricter of the two) takes its values
+    error = None
+    for row in np.flatnonzero(bad):
+        lineno, text = records[row]
+        try:
+            f = _parse_fields(text, fields, file, lineno, section)
+        except InputError as exc:
+            error = (int(row), exc)
+            break
+        for k, v in f.items():
+            out[k][row] = v
+    return out, error
+
+
+def _block_floats(subs):
+    """Numbers of several fixed-width fields (one block of bytes per field, no inner spaces,
+    blanks filled) for all records in one pass of pandas' C reader: the fields of a record are
+    joined by commas, records by newlines. None if any field is not a plain number; the caller
+    then converts field by field to find it."""
+    n = subs[0].shape[0] if subs else 0
+    if n == 0:
+        return np.zeros((0, len(subs)))
+    width = sum(sb.shape[1] + 1 for sb in subs)
+    buf = np.empty((n, width), np.uint8)
+    pos = 0
+    for sb in subs:
+        w = sb.shape[1]
+        buf[:, pos:pos + w] = sb
+        buf[:, pos + w] = ord(",")
+        pos += w + 1
+    buf[:, -1] = ord("\n")
+    try:
+        df = pd.read_csv(io.BytesIO(buf.tobytes()), header=None, dtype=np.float64, engine="c",
+                         na_filter=False, skipinitialspace=True)
+    except (ValueError, pd.errors.ParserError):
+        return None
+    vals = df.to_numpy(np.float64)
+    return vals if vals.shape == (n, len(subs)) else None
+
+
+def _float_or_nan(x: bytes) -> float:
+    try:
+        return float(x)
+    except ValueError:
+        return float("nan")
+
+
+def _raise_first(candidates):
+    """Raise the error of the earliest record among ``(row, error)`` pairs (None skipped); on the
+    same record the earlier candidate wins, as in a record-by-record reader."""
+    live = [(row, k, exc) for k, cand in enumerate(candidates) if cand is not None for row, exc in [cand]]
+    if live:
+        raise min(live, key=lambda t: (t[0], t[1]))[2]
+
+
+def _first_row(mask):
+    return int(np.argmax(mask)) if mask.any() else None
+
+
 def _split_lines(data: bytes):
     # latin-1 maps every byte to one character, so the fixed columns stay byte columns and no
     # byte sequence can fail to decode; CR, LF and CRLF all end a line.
-    return re.split(r"\r\n|\r|\n", data.decode("latin-1"))
+    return data.decode("latin-1").replace("\r\n", "\n").replace("\r", "\n").split("\n")
 
 
 def _section(lines, start, file, name):
@@ -211,65 +329,82 @@ def read_cdf(path) -> Network:
                          file=file, line=bus_end + 1)
     branch_records, _ = _section(lines, br_hdr, file, "branch")
 
-    buses, loads, gens = [], [], []
-    seen_bus = {}
-    for lineno, text in bus_records:
-        f = _parse_fields(text, BUS_FIELDS, file, lineno, "bus")
-        n = f["bus"]
-        if n <= 0:
-            raise InputError(f"bus number must be positive, got {n}", file=file, line=lineno,
-                             field="bus section, field 'bus number' (cols 1-4)")
-        if n in seen_bus:
-            raise InputError(f"bus {n} is already defined at line {seen_bus[n]}", file=file,
-                             line=lineno, field="bus section, field 'bus number' (cols 1-4)")
-        seen_bus[n] = lineno
-        btype = f["type"]
-        if btype not in (0, 1, 2, 3):
-            raise InputError(f"bus type must be 0, 1, 2 or 3, got {btype}", file=file, line=lineno,
-                             field="bus section, field 'type' (cols 25-26)")
-        kind = {0: "PQ", 1: "PQ", 2: "PV", 3: "slack"}[btype]
-        v_final = f["v"] if f["v"] > 0 else 1.0   # 0 (blank) is no stored solution: start at 1 pu
-        buses.append({"bus": n, "name": f["name"], "base_kv": f["base_kv"], "kind": kind,
-                      "shunt_draw_mw": f["g"] * base_mva, "shunt_supply_mvar": f["b"] * base_mva, "area": f["area"],
-                      "v_pu": v_final, "angle_deg": f["angle"]})
-        if f["load_mw"] != 0 or f["load_mvar"] != 0:
-            loads.append({"load_id": f"D{n}", "bus": n, "mw": f["load_mw"], "mvar": f["load_mvar"]})
-        if btype in (2, 3) or f["gen_mw"] != 0 or f["gen_mvar"] != 0:
-            q_min, q_max = -_WIDE_Q, _WIDE_Q
-            if btype in (2, 3) and (f["q_max"] != 0 or f["q_min"] != 0):
-                q_min, q_max = f["q_min"], f["q_max"]
-            gens.append({"gen_id": f"G{n}", "bus": n, "mw": f["gen_mw"], "mvar": f["gen_mvar"],
-                         "v_set_pu": f["v_desired"] if f["v_desired"] > 0 else v_final,
-                         "q_min_mvar": q_min, "q_max_mvar": q_max})
+    bus, perr = _parse_section(bus_records, BUS_FIELDS, file, "bus")
+    bus_lines = np.array([ln for ln, _ in bus_records], np.int64)
+    n = bus["bus"]
+    nonpositive = n <= 0
+    # a repeated bus number: every occurrence after the first
+    order = np.argsort(n, kind="stable")
+    dup_sorted = np.r_[False, n[order][1:] == n[order][:-1]]
+    repeated = np.zeros(len(n), bool)
+    repeated[order[dup_sorted]] = True
+    btype = bus["type"]
+    bad_type = ~np.isin(btype, (0, 1, 2, 3))
+    bus_field = "bus section, field 'bus number' (cols 1-4)"
 
-    parsed = []
-    for lineno, text in branch_records:
-        f = _parse_fields(text, BRANCH_FIELDS, file, lineno, "branch")
-        if f["type"] not in (0, 1, 2, 3, 4):
-            raise InputError(f"branch type must be 0 to 4, got {f['type']}", file=file, line=lineno,
-                             field="branch section, field 'type' (col 19)")
-        parsed.append((lineno, f))
-    ids = _branch_ids([(f["tap_bus"], f["z_bus"], f["circuit"]) for _, f in parsed])
+    def err_nonpositive(row):
+        return InputError(f"bus number must be positive, got {n[row]}", file=file, line=int(bus_lines[row]),
+                          field=bus_field)
 
-    lines_out, xfmrs = [], []
-    for (lineno, f), bid in zip(parsed, ids):
-        common = {"from_bus": f["tap_bus"], "to_bus": f["z_bus"], "r_pu": f["r"], "x_pu": f["x"],
-                  "b_pu": f["b"], "rating_mva": f["rating1"]}
-        if f["type"] == 0 and f["ratio"] == 0 and f["shift"] == 0:
-            lines_out.append({"line_id": bid, **common})
-            continue
-        shifter = f["type"] == 4
-        lo, hi = f["tap_min"], f["tap_max"]
-        if shifter or (lo == 0 and hi == 0):
-            lo, hi = 0.9, 1.1
-        xfmrs.append({"xfmr_id": bid, **common,
-                      "ratio_pu": f["ratio"] if f["ratio"] != 0 else 1.0, "tap_side": "from",
-                      "shift_deg": f["shift"], "ratio_min_pu": lo, "ratio_max_pu": hi,
-                      "ratio_step_pu": f["step"] if f["type"] in (2, 3) else 0.0,
-                      "adjustable": f["type"] in (2, 3)})
+    def err_repeated(row):
+        first = int(bus_lines[np.flatnonzero(n == n[row])[0]])
+        return InputError(f"bus {n[row]} is already defined at line {first}", file=file,
+                          line=int(bus_lines[row]), field=bus_field)
 
-    def table(kind, records):
-        return make_table(kind, records) if records else None
+    def err_type(row):
+        return InputError(f"bus type must be 0, 1, 2 or 3, got {btype[row]}", file=file,
+                          line=int(bus_lines[row]), field="bus section, field 'type' (cols 25-26)")
+
+    # per record the checks run in this order: fields, bus number, repetition, type
+    _raise_first([perr] + [(r, mk(r)) if r is not None else None for r, mk in
+                           ((_first_row(nonpositive), err_nonpositive),
+                            (_first_row(repeated & ~nonpositive), err_repeated),
+                            (_first_row(bad_type), err_type))])
+
+    kind = np.array(["PQ", "PQ", "PV", "slack"], dtype=object)[btype] if len(btype) else np.array([], object)
+    v_final = np.where(bus["v"] > 0, bus["v"], 1.0)   # 0 (blank) is no stored solution: start at 1 pu
+    buses = pd.DataFrame({"bus": n, "name": bus["name"], "base_kv": bus["base_kv"], "kind": kind,
+                          "shunt_draw_mw": bus["g"] * base_mva, "shunt_supply_mvar": bus["b"] * base_mva,
+                          "area": bus["area"], "v_pu": v_final, "angle_deg": bus["angle"]})
+    has_load = (bus["load_mw"] != 0) | (bus["load_mvar"] != 0)
+    loads = pd.DataFrame({"load_id": _prefixed("D", n[has_load]), "bus": n[has_load],
+                          "mw": bus["load_mw"][has_load], "mvar": bus["load_mvar"][has_load]})
+    controlled = (btype == 2) | (btype == 3)
+    has_gen = controlled | (bus["gen_mw"] != 0) | (bus["gen_mvar"] != 0)
+    given = controlled & ((bus["q_max"] != 0) | (bus["q_min"] != 0))
+    gens = pd.DataFrame({"gen_id": _prefixed("G", n[has_gen]), "bus": n[has_gen],
+                         "mw": bus["gen_mw"][has_gen], "mvar": bus["gen_mvar"][has_gen],
+                         "v_set_pu": np.where(bus["v_desired"] > 0, bus["v_desired"], v_final)[has_gen],
+                         "q_min_mvar": np.where(given, bus["q_min"], -_WIDE_Q)[has_gen],
+                         "q_max_mvar": np.where(given, bus["q_max"], _WIDE_Q)[has_gen]})
+
+    br, perr = _parse_section(branch_records, BRANCH_FIELDS, file, "branch")
+    br_lines = np.array([ln for ln, _ in branch_records], np.int64)
+    bt = br["type"]
+    bad_bt = _first_row(~np.isin(bt, (0, 1, 2, 3, 4)))
+    _raise_first([perr, None if bad_bt is None else (bad_bt, InputError(
+        f"branch type must be 0 to 4, got {bt[bad_bt]}", file=file, line=int(br_lines[bad_bt]),
+        field="branch section, field 'type' (col 19)"))])
+    ids = _branch_ids_vectorized(br["tap_bus"], br["z_bus"], br["circuit"])
+    is_line = (bt == 0) & (br["ratio"] == 0) & (br["shift"] == 0)
+    common = {"from_bus": br["tap_bus"], "to_bus": br["z_bus"], "r_pu": br["r"], "x_pu": br["x"],
+              "b_pu": br["b"], "rating_mva": br["rating1"]}
+    lines_out = pd.DataFrame({"line_id": ids[is_line], **{k: v[is_line] for k, v in common.items()}})
+    tr = ~is_line
+    shifter = bt == 4
+    lo, hi = br["tap_min"], br["tap_max"]
+    default_taps = shifter | ((lo == 0) & (hi == 0))
+    variable = (bt == 2) | (bt == 3)
+    xfmrs = pd.DataFrame({"xfmr_id": ids[tr], **{k: v[tr] for k, v in common.items()},
+                          "ratio_pu": np.where(br["ratio"] != 0, br["ratio"], 1.0)[tr], "tap_side": "from",
+                          "shift_deg": br["shift"][tr],
+                          "ratio_min_pu": np.where(default_taps, 0.9, lo)[tr],
+                          "ratio_max_pu": np.where(default_taps, 1.1, hi)[tr],
+                          "ratio_step_pu": np.where(variable, br["step"], 0.0)[tr],
+                          "adjustable": variable[tr]})
+
+    def table(kind, df):
+        return make_table(kind, df) if len(df) else None
 
     net = Network(base_mva=float(base_mva), name=case or Path(file).stem, source=file,
                   **{k: v for k, v in (("buses", table("buses", buses)), ("loads", table("loads", loads)),
@@ -279,12 +414,32 @@ def read_cdf(path) -> Network:
     return net
 
 
-def _branch_ids(keys):
+def _prefixed(prefix: str, numbers: np.ndarray) -> np.ndarray:
+    return np.char.add(prefix, numbers.astype(str)).astype(object) if len(numbers) else np.array([], object)
+
+
+def _branch_ids_vectorized(a: np.ndarray, b: np.ndarray, circuit: np.ndarray) -> np.ndarray:
+    """:func:`_branch_ids` for whole columns: ``"i-j"`` built at once for the (usual) pairs with
+    one branch; the few parallel branches go through the record-by-record rule."""
+    if not len(a):
+        return np.array([], object)
+    lo, hi = np.minimum(a, b), np.maximum(a, b)
+    key = pd.MultiIndex.from_arrays([lo, hi])
+    single = ~key.duplicated(keep=False)
+    ids = np.char.add(np.char.add(a.astype(str), "-"), b.astype(str)).astype(object)
+    if not single.all():
+        multi = np.flatnonzero(~single)
+        ids[multi] = _branch_ids([(int(a[k]), int(b[k]), int(circuit[k])) for k in multi],
+                                 used=set(ids[single]))
+    return ids
+
+
+def _branch_ids(keys, used=None):
     """Ids for branches given as (tap bus, Z bus, circuit): ``"i-j"`` when a pair of buses has one
     branch, ``"i-j#c"`` for parallel ones (c is the circuit, or the next free number)."""
     pair = [frozenset((a, b)) for a, b, _ in keys]
     counts = pd.Series(pair, dtype=object).value_counts() if keys else {}
-    used, out = set(), []
+    used, out = (set() if used is None else set(used)), []
     for (a, b, c), p in zip(keys, pair):
         if counts[p] == 1:
             bid = f"{a}-{b}"

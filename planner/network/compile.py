@@ -254,5 +254,10 @@ def compile_network(net: Network) -> Compiled:
 
 
 def replace(c: Compiled, **changes) -> Compiled:
-    """A copy of ``c`` with some arrays replaced (a fresh cache; the original is untouched)."""
-    return dataclasses.replace(c, _cache={}, **changes)
+    """A copy of ``c`` with some arrays replaced (a fresh cache; the original is untouched).
+
+    One entry is shared by ``c`` and all copies made from it: ``"shared"``, a dict for caches
+    that check their own validity at each use (the load flow's symbolic work), so a sweep of
+    lever changes reuses them."""
+    shared = c._cache.setdefault("shared", {})
+    return dataclasses.replace(c, _cache={"shared": shared}, **changes)

@@ -159,7 +159,65 @@ def _tie_lines(base: Network, copies: int, offset: int, ties_per_copy: int, seed
         "rating_mva": TIE_RATING_MVA, "energised": True}))
 
 
-def meshed_grid(rows: int, cols: int, seed: int = 0) -> Network:
+def ring_copies(base: Network, copies: int, *, ties_per_link: int = 1, slack_mw: float | None = None,
+                tie_r_pu: float = 0.001, tie_x_pu: float = 0.01) -> Network:
+    """``copies`` copies of ``base`` joined in a ring by short ties between the same buses.
+
+    Copy ``k`` is joined to copy ``k + 1`` (and the last to the first) by ``ties_per_link``
+    lossless-charging ties (``tie_r_pu + j tie_x_pu``, no charging) between the same bus numbers:
+    the first ``ties_per_link`` buses, in bus order, of the highest voltage level of the base.
+    Numbering and ids follow :func:`tiled_network`. Only copy 0 keeps the slack bus; in the other
+    copies it becomes a PV bus whose generators produce ``slack_mw`` in all (shared equally), at
+    the slack's setpoint and reactive limits. With ``slack_mw`` equal to the slack output of the
+    base case's own solution, every copy balances by itself and the ring's solution is known:
+    every copy has the voltages of the single case and no tie carries current. ``slack_mw=None``
+    keeps the slack generators' stored output.
+
+    >>> from planner.network.synthetic import meshed_grid, ring_copies
+    >>> ring = ring_copies(meshed_grid(3, 4), copies=4, ties_per_link=2)
+    >>> len(ring.buses), int((ring.buses.kind == "slack").sum()), len(ring.lines) - 4 * len(meshed_grid(3, 4).lines)
+    (48, 1, 8)
+    """
+    copies = int(copies)
+    if copies < 2:
+        raise ValueError(f"a ring needs at least two copies, got {copies}")
+    if ties_per_link < 1:
+        raise ValueError(f"ties_per_link must be at least 1, got {ties_per_link}")
+    b = base.buses
+    slack = b.bus[b.kind == "slack"].to_numpy()
+    if len(slack) != 1:
+        raise ValueError(f"base network must have exactly one slack bus, it has {len(slack)}")
+    big = tiled_network(base, copies, ties_per_copy=1)
+    offset = _power_of_ten_above(int(b.bus.max()))
+    # drop the grid ties of tiled_network: the ring has its own
+    lines = big.lines[~big.lines.line_id.astype(str).str.startswith("TIE")]
+    gens = big.generators
+    at_slack = (gens.bus.to_numpy() % offset == slack[0]) & gens.energised.to_numpy()
+    if slack_mw is not None:
+        share = float(slack_mw) / max(int((base.generators.bus == slack[0]).sum()), 1)
+        gens.loc[at_slack, "mw"] = share
+    else:
+        stored = base.generators.set_index("gen_id").mw
+        gens.loc[at_slack, "mw"] = [stored[g.split("/")[0]] for g in gens.gen_id[at_slack]]
+    top = b.bus[b.base_kv == b.base_kv.max()].sort_values().to_numpy()[:ties_per_link]
+    k = np.arange(copies)
+    nxt = (k + 1) % copies
+    if copies == 2:
+        k, nxt = k[:1], nxt[:1]
+    kk = np.repeat(k, len(top))
+    nn = np.repeat(nxt, len(top))
+    tb = np.tile(top, len(k))
+    ties = make_table("lines", pd.DataFrame({
+        "line_id": [f"RING{a}-{z}/{t}" for a, z, t in zip(kk, nn, tb)],
+        "from_bus": kk * offset + tb, "to_bus": nn * offset + tb,
+        "r_pu": tie_r_pu, "x_pu": tie_x_pu, "b_pu": 0.0, "rating_mva": 0.0, "energised": True}))
+    return Network(base_mva=base.base_mva, name=f"{base.name or 'network'} ring x{copies}",
+                   buses=big.buses, loads=big.loads, generators=gens,
+                   lines=pd.concat([lines, ties], ignore_index=True), transformers=big.transformers,
+                   shunts=big.shunts)
+
+
+def meshed_grid(rows: int, cols: int, seed: int = 0, *, load_scale: float = 1.0) -> Network:
     """A synthetic 132 kV meshed grid of ``rows x cols`` buses, reproducible from ``seed``.
 
     Buses sit on a rectangular lattice, numbered ``r * cols + c + 1`` row by row. Lines join
@@ -172,6 +230,10 @@ def meshed_grid(rows: int, cols: int, seed: int = 0) -> Network:
     dependent. Each plant is dispatched to cover the load of the buses nearest to it plus
     expected losses, with a rating 20-60 % above that output, so power flows stay regional and
     the slack takes up only the remainder, whatever the size of the grid.
+
+    ``load_scale`` multiplies every load and every plant's dispatch and rating (the random
+    draws are the same for every scale): above 1 the same grid carries heavier flows, voltages
+    sag and more plants reach their reactive limits.
 
     >>> from planner.network.synthetic import meshed_grid
     >>> net = meshed_grid(4, 5, seed=1)
@@ -237,6 +299,12 @@ def meshed_grid(rows: int, cols: int, seed: int = 0) -> Network:
 
     # each plant covers the load of the buses nearest to it (plus expected losses), so flows
     # stay regional and any size of grid solves; ratings leave 20-60 % headroom
+    if not (np.isfinite(load_scale) and load_scale > 0):
+        raise ValueError(f"load_scale must be a positive number, got {load_scale}")
+    if load_scale != 1.0:
+        p = np.round(p * load_scale, 3)
+        q = np.round(q * load_scale, 3)
+        loads["mw"], loads["mvar"] = p, q
     nearest = cKDTree(np.c_[r_of[gbus], c_of[gbus]]).query(np.c_[r_of[lb], c_of[lb]])[1]
     pg = np.bincount(nearest, p, len(gbus)) * (1.0 + GRID_LOSS_SHARE)
     rating = pg * rng.uniform(1.2, 1.6, len(gbus)) + 10.0

@@ -46,6 +46,7 @@ import math
 import re
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from planner.atomic import write_folder
@@ -188,33 +189,129 @@ def table_from_cells(kind: str, header, rows, bus_kv: dict | None, base_mva: flo
             hint = f" (or {alt[0]!r})" if alt else ""
             raise InputError(f"missing required column {c!r}{hint}", **places.table())
 
-    records = []
-    for i, cells in enumerate(rows):
-        rec, per_unit = {}, []
-        for k, (name, raw) in enumerate(zip(header, cells)):
-            target, how = units.get(name, (name, None))
-            where = places.cell(i, k, name)
-            if raw is None or (isinstance(raw, str) and raw.strip() == ""):
-                if target in defaults:
-                    rec[target] = defaults[target]
-                    continue
-                raise InputError("value missing in a required column", **where)
-            dtype = "float64" if how else cols[name]
-            value = _parse(raw.strip(), dtype, where) if isinstance(raw, str) else _take(raw, dtype, where)
-            if name in _CANONICAL:
-                value = _CANONICAL[name].get(value.lower(), value)
-            if how == _KILO:
-                value = value / 1000.0
-            elif how in (_OHM, _MICROSIEMENS):
-                per_unit.append((target, how))   # after the row: needs from_bus, wherever it stands
-            rec[target] = value
-        for target, how in per_unit:
-            k = header.index("from_bus")
-            rec[target] = _ohm_or_us_to_pu(rec[target], how, rec.get("from_bus"), bus_kv, base_mva,
-                                           places.cell(i, k, "from_bus"))
-        records.append(rec)
-    df = pd.DataFrame(records, columns=[c for c in cols if c in given])
+    if all(isinstance(c, str) for cells in rows for c in cells):
+        columns = _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, places)
+        df = pd.DataFrame(columns, columns=[c for c in cols if c in given])
+    else:   # a workbook's typed cells: row by row
+        records = [_row_values(i, cells, header, cols, units, defaults, bus_kv, base_mva, places)
+                   for i, cells in enumerate(rows)]
+        df = pd.DataFrame(records, columns=[c for c in cols if c in given])
     return make_table(kind, df)
+
+
+def _row_values(i, cells, header, cols, units, defaults, bus_kv, base_mva, places) -> dict:
+    """One data row converted cell by cell; raises the row's first error (header order)."""
+    rec, per_unit = {}, []
+    for k, (name, raw) in enumerate(zip(header, cells)):
+        target, how = units.get(name, (name, None))
+        where = places.cell(i, k, name)
+        if raw is None or (isinstance(raw, str) and raw.strip() == ""):
+            if target in defaults:
+                rec[target] = defaults[target]
+                continue
+            raise InputError("value missing in a required column", **where)
+        dtype = "float64" if how else cols[name]
+        value = _parse(raw.strip(), dtype, where) if isinstance(raw, str) else _take(raw, dtype, where)
+        if name in _CANONICAL:
+            value = _CANONICAL[name].get(value.lower(), value)
+        if how == _KILO:
+            value = value / 1000.0
+        elif how in (_OHM, _MICROSIEMENS):
+            per_unit.append((target, how))   # after the row: needs from_bus, wherever it stands
+        rec[target] = value
+    for target, how in per_unit:
+        k = header.index("from_bus")
+        rec[target] = _ohm_or_us_to_pu(rec[target], how, rec.get("from_bus"), bus_kv, base_mva,
+                                       places.cell(i, k, "from_bus"))
+    return rec
+
+
+_NUMBER_BYTES = np.zeros(256, bool)
+_NUMBER_BYTES[np.frombuffer(b"0123456789+-.eE", np.uint8)] = True
+
+
+def _plain_number_chars(cells) -> np.ndarray:
+    """Per cell: only digits, signs, point and exponent letters (no ``inf``, ``nan``, ``1_0``),
+    checked on the bytes of the whole column at once. The numeric conversion then refuses any
+    arrangement of these characters that is not a number."""
+    text = "".join(cells)
+    if text.isascii():
+        lengths = np.fromiter(map(len, cells), np.int64, len(cells))
+    else:
+        lengths = np.fromiter((len(c.encode("utf-8")) for c in cells), np.int64, len(cells))
+    bad_byte = ~_NUMBER_BYTES[np.frombuffer(text.encode("utf-8"), np.uint8)]
+    row_of_byte = np.repeat(np.arange(len(cells)), lengths)
+    return np.bincount(row_of_byte[bad_byte], minlength=len(cells)) == 0
+
+
+def _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, places) -> dict:
+    """Whole columns of text cells converted at once (pandas / numpy). Cells a column conversion
+    cannot take (or would take too generously: ``inf``, ``nan``, ``1_0``) mark their row; marked
+    rows are re-read by :func:`_row_values` in file order, which raises the same one-line error
+    (file, row, line, column) as a row-by-row reader, or supplies the row's values."""
+    n = len(rows)
+    cells_by_col = list(zip(*rows)) if n else [() for _ in header]
+    out: dict[str, np.ndarray] = {}
+    bad = np.zeros(n, bool)
+    per_unit = []
+    for j, name in enumerate(header):
+        target, how = units.get(name, (name, None))
+        raw = pd.Series(cells_by_col[j], dtype=object).str.strip() if n else pd.Series([], dtype=object)
+        blank = (raw == "").to_numpy(bool)
+        flagged = blank & (target not in defaults)
+        dtype = "float64" if how else cols[name]
+        if dtype == "object":
+            vals = raw.to_numpy(object)
+            if name in _CANONICAL:
+                low = raw.str.lower()
+                vals = low.map(_CANONICAL[name]).where(low.isin(list(_CANONICAL[name])), raw).to_numpy(object)
+        elif dtype == "bool":
+            low = raw.str.lower()
+            is_true, is_false = low.isin(_TRUE).to_numpy(bool), low.isin(_FALSE).to_numpy(bool)
+            flagged |= ~blank & ~is_true & ~is_false
+            vals = is_true
+        else:
+            ok = _plain_number_chars(list(raw)) if n else np.zeros(0, bool)
+            vals = pd.to_numeric(raw.where(ok & ~blank, "0"), errors="coerce").to_numpy(np.float64)
+            with np.errstate(invalid="ignore"):
+                flagged |= ~blank & (~ok | ~np.isfinite(vals))
+                if dtype == "int64":
+                    flagged |= ~blank & ((vals != np.round(vals)) | (np.abs(vals) >= 2 ** 63))
+            if how == _KILO:
+                vals = vals / 1000.0
+            elif how in (_OHM, _MICROSIEMENS):
+                per_unit.append((target, how, blank))
+        if target in defaults:
+            vals = np.where(blank, defaults[target], vals)
+        if dtype == "int64":
+            vals = np.where(flagged, 0, vals).astype(np.int64)
+        elif dtype == "bool":
+            vals = np.where(flagged, False, vals).astype(bool)
+        elif dtype == "float64" or how:
+            vals = np.where(flagged, 0.0, vals).astype(np.float64)
+        else:
+            vals = np.asarray(vals, dtype=object)
+        out[target] = vals
+        bad |= flagged
+    for target, how, blank in per_unit:          # after the row, as the row-by-row reader does
+        if "from_bus" not in out:
+            bad |= ~blank
+            continue
+        lookup = pd.Series(bus_kv or {}, dtype=np.float64)
+        kv = lookup.reindex(out["from_bus"]).to_numpy(np.float64)
+        usable = np.isfinite(kv) & (kv >= 0.01) & (kv <= 2000)
+        bad |= ~blank & ~usable
+        z_base = np.where(usable, kv * kv / base_mva, 1.0)
+        conv = out[target] / z_base if how == _OHM else out[target] * 1e-6 * z_base
+        out[target] = np.where(blank, out[target], conv)
+    for k, arr in out.items():                        # vectorised results may be read-only views
+        if isinstance(arr, np.ndarray) and not arr.flags.writeable:
+            out[k] = arr.copy()
+    for i in np.flatnonzero(bad):
+        rec = _row_values(int(i), rows[i], header, cols, units, defaults, bus_kv, base_mva, places)
+        for k, v in rec.items():
+            out[k][i] = v
+    return out
 
 
 def _take(raw, dtype: str, where: dict):

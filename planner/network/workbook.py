@@ -48,6 +48,7 @@ import numpy as np
 import pandas as pd
 
 from planner.errors import InputError, PlannerError
+from planner.inputs import MAX_NETWORK_BYTES, read_input_bytes
 from planner.network.model import TABLES, Network
 from planner.network.tabular import table_from_cells
 
@@ -62,7 +63,9 @@ class MissingExtra(PlannerError, ImportError):
     """An optional library this feature needs is not installed; the message says how to get it."""
 
 
-def _openpyxl(action: str):
+def need_openpyxl(action: str):
+    """The openpyxl module, or ``MissingExtra`` saying how to install it (``action`` is
+    "reading" or "writing"), so a command can fail before any work."""
     try:
         import openpyxl
     except ImportError:
@@ -72,12 +75,8 @@ def _openpyxl(action: str):
 
 def _letter(k: int) -> str:
     """Spreadsheet column letter of 0-based column ``k`` (0 -> A, 26 -> AA)."""
-    out = ""
-    k += 1
-    while k:
-        k, rem = divmod(k - 1, 26)
-        out = chr(65 + rem) + out
-    return out
+    from openpyxl.utils import get_column_letter
+    return get_column_letter(k + 1)
 
 
 # --- reading --------------------------------------------------------------------------------
@@ -86,8 +85,8 @@ class SheetPlaces:
     """Where a value of a sheet is, for error messages (the same methods as
     ``tabular.CsvPlaces``): file, sheet, spreadsheet row number, column letter and name."""
 
-    def __init__(self, path: Path, sheet: str, header_row: int, rows, header):
-        self.path, self.sheet, self.header_row, self.rows, self.header = path, sheet, header_row, rows, header
+    def __init__(self, path: Path, sheet: str, header_row: int, rows):
+        self.path, self.sheet, self.header_row, self.rows = path, sheet, header_row, rows
 
     def _at(self, row: int) -> str:
         return f"sheet {self.sheet!r} row {row}"
@@ -177,11 +176,16 @@ def read_workbook(path) -> Network:
     not validated here (``planner.network.io.read_network`` does that). Raises ``InputError``
     naming the file, sheet, row and column of the first value it cannot read."""
     path = Path(path)
-    openpyxl = _openpyxl("reading")
+    openpyxl = need_openpyxl("reading")
+    data = read_input_bytes(path, what="network workbook")    # a regular file, of a bounded size
     try:
-        wb = openpyxl.load_workbook(path, read_only=True, data_only=True)
-    except OSError as exc:
-        raise InputError(f"cannot read file: {exc.strerror or exc}", file=path) from None
+        unpacked = sum(info.file_size for info in zipfile.ZipFile(io.BytesIO(data)).infolist())
+        if unpacked > MAX_NETWORK_BYTES:   # a few kilobytes may unpack to gigabytes
+            raise InputError(f"network workbook unpacks to {unpacked:,} bytes, more than the "
+                             f"{MAX_NETWORK_BYTES:,} accepted", file=path)
+        wb = openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=True)
+    except InputError:
+        raise
     except Exception as exc:   # openpyxl reports a damaged file in many ways (zip, XML, key errors)
         raise InputError(f"not a readable .xlsx workbook ({type(exc).__name__}: {exc})", file=path) from None
     try:
@@ -198,7 +202,7 @@ def read_workbook(path) -> Network:
             if kind not in wb.sheetnames:
                 continue
             header, hrow, numbers, rows = _sheet_rows(wb[kind], path)
-            places = SheetPlaces(path, kind, hrow, numbers, header)
+            places = SheetPlaces(path, kind, hrow, numbers)
             tables[kind] = table_from_cells(kind, header, rows, bus_kv, base_mva, places)
             if kind == "buses":
                 b = tables["buses"]
@@ -243,7 +247,7 @@ def workbook_bytes(frames: Mapping[str, pd.DataFrame]) -> bytes:
     given order, the column names as a bold, frozen header row, numbers at full precision,
     NaN as an empty cell, infinities as the text ``inf`` / ``-inf``, text always as text. Raises ``ValueError`` for a name
     a workbook cannot hold (sheet name, or text with control characters)."""
-    openpyxl = _openpyxl("writing")
+    openpyxl = need_openpyxl("writing")
     from openpyxl.cell import WriteOnlyCell
     from openpyxl.cell.cell import ILLEGAL_CHARACTERS_RE
     from openpyxl.styles import Font
@@ -321,7 +325,7 @@ def write_tables_workbook(path, frames: Mapping[str, pd.DataFrame]) -> Path:
 def have_openpyxl() -> bool:
     """Whether workbooks can be written here (openpyxl installed), for outputs that are extras."""
     try:
-        _openpyxl("writing")
+        need_openpyxl("writing")
     except MissingExtra:
         return False
     return True

@@ -1,153 +1,201 @@
-"""Load-flow scaling figures on synthetic networks (prints a table; not a pytest module).
+"""Load flow at utility scale: convergence, Newton time against the LU, reading time, memory.
 
-    python tests/perf/bench_flow.py            # tiled IEEE 30-bus and meshed grid, 300 .. 20,000 buses
-    python tests/perf/bench_flow.py --quick    # sizes up to 3,000 only
-    python tests/perf/bench_flow.py --repeat 5 # best of 5 solves per case (default 3)
+    python tests/perf/bench_flow.py              # every case below, limits on and off
+    python tests/perf/bench_flow.py --quick      # the 10,000-bus cases only
+    python tests/perf/bench_flow.py --repeat 3   # best of 3 solves per case (default 2)
 
-For each case: buses, branches, Newton iterations, total solve time (FlowResult.solve_seconds,
-best of ``--repeat`` identical solves, since the machine may be shared),
-the time of one sparse LU factorisation of the solver's own Jacobian at the solution, with the
-solver's own ordering (planner.flow.jacobian.factorize), the ratio solve / (iterations x one
-LU), the same LU with scipy's default splu options for comparison, and whether a flat start
-converged (a DC start is tried when it did not). Finally the import time of the solver module
-in a fresh interpreter, and the import time of a small ``planner flow`` run per package.
+Cases (built from the two standard cases the project holds, tests/data/ieee14cdf.txt and
+ieee30cdf.txt, in the shapes of issue 8):
+
+* ``ring14 x714`` / ``ring14 x3574``: copies of IEEE 14 joined in a ring by two short ties between the
+  same buses of neighbouring copies (9,996 / 50,036 buses). Each copy balances by itself, so the
+  known solution is the single case's, copy by copy ("dev" = largest |V - V_known| in pu).
+* ``ring30 x330`` / ``ring30 x1667``: the same with IEEE 30 (9,900 / 50,010 buses).
+* ``grid 100x100`` / ``grid 224x224``: the meshed synthetic grid (10,000 / 50,176 buses), at normal
+  loading and at 1.5 x load and generation (``heavy``).
+
+For each case and reactive-limit setting: status, Newton iterations, continuation steps, Newton time
+(``FlowResult.solve_seconds``: the whole solve, limit rounds, continuation and plausibility check
+included; best of ``--repeat``), one sparse LU of the final Jacobian with the best of SuperLU's
+orderings (MMD on J+J^T with diagonal pivots preferred, COLAMD; best of 3), and the ratio
+Newton time / (iterations x one LU); target <= 1.5.
+
+Reading: the 10,000-bus cases written as IEEE CDF files (buses renumbered 1..N, since the format holds
+four-digit bus numbers), read time (best of 3) plus result-table building time against the Newton
+time; target read + tables <= Newton. Memory: peak resident set of a fresh process that reads a
+50,000-bus network from tabular CSV files, solves it and builds the result tables (target < 500 MB;
+the interpreter and libraries are included). The machine is shared: times are noisy.
 """
 from __future__ import annotations
 
 import argparse
-import re
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import scipy.sparse.linalg as spla
 
-from planner.flow.jacobian import JacobianPattern, factorize
+from planner.flow.jacobian import JacobianPattern
 from planner.flow.newton import solve_flow
-from planner.network.cdf import read_cdf
+from planner.network.cdf import read_cdf, write_cdf
 from planner.network.compile import PQ, PV, compile_network
-from planner.network.synthetic import meshed_grid, tiled_network
+from planner.network.model import Network
+from planner.network.synthetic import meshed_grid, ring_copies
+from planner.network.tabular import read_tables, write_tables
 
 DATA = Path(__file__).resolve().parents[1] / "data"
-SIZES = (300, 1_000, 3_000, 10_000, 20_000)
+BASES = {"ring14": "ieee14cdf.txt", "ring30": "ieee30cdf.txt"}
 
 
-def jacobian_at(res):
-    """The solver's Jacobian at a solved point, with the final PV / PQ split."""
+def ring_case(tag: str, copies: int, limits: bool):
+    base = read_cdf(DATA / BASES[tag])
+    single = solve_flow(base, enforce_q_limits=limits)
+    slack_mw = float(single.generators.mw[single.compiled.kind[single.compiled.gen_bus] == 2].sum())
+    return ring_copies(base, copies, slack_mw=slack_mw, ties_per_link=2), np.tile(single.v, copies)
+
+
+def cases(quick: bool):
+    out = [("ring14 x714", lambda lim: ring_case("ring14", 714, lim)),
+           ("ring30 x330", lambda lim: ring_case("ring30", 330, lim)),
+           ("grid 100x100", lambda lim: (meshed_grid(100, 100), None)),
+           ("grid 100x100 heavy", lambda lim: (meshed_grid(100, 100, load_scale=1.5), None))]
+    if not quick:
+        out += [("ring14 x3574", lambda lim: ring_case("ring14", 3574, lim)),
+                ("ring30 x1667", lambda lim: ring_case("ring30", 1667, lim)),
+                ("grid 224x224", lambda lim: (meshed_grid(224, 224), None)),
+                ("grid 224x224 heavy", lambda lim: (meshed_grid(224, 224, load_scale=1.5), None))]
+    return out
+
+
+def final_jacobian(res):
+    """The solver's Jacobian at its solution, with the final PV / PQ split."""
     c = res.compiled
-    kind = np.where(res.limit_state != 0, PQ, c.kind)
+    kind = res.kind
     pv = np.flatnonzero((kind == PV) & c.alive)
     pq = np.flatnonzero((kind == PQ) & c.alive)
-    y = c.ybus()
-    pattern = JacobianPattern(y, np.concatenate([pv, pq]), pq)
+    pattern = JacobianPattern(c.ybus(), np.sort(np.concatenate([pv, pq])), pq)
     vm = np.abs(res.v)
     return pattern.matrix(res.v, c.s_load_i + 2.0 * c.s_load_z * vm)
 
 
-def time_lu(j, repeat=5, lu=factorize):
+def best_lu_seconds(j, repeat=3):
     best = np.inf
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        lu(j)
-        best = min(best, time.perf_counter() - t0)
+    for spec, sym in (("MMD_AT_PLUS_A", True), ("COLAMD", False)):
+        for _ in range(repeat):
+            t0 = time.perf_counter()
+            spla.splu(j, permc_spec=spec, options=dict(SymmetricMode=sym))
+            best = min(best, time.perf_counter() - t0)
     return best
 
 
-def cases(sizes):
-    ieee30 = read_cdf(DATA / "ieee30cdf.txt")
-    for n in sizes:
-        copies = max(1, round(n / len(ieee30.buses)))
-        yield f"ieee30 x{copies}", lambda copies=copies: tiled_network(ieee30, copies, seed=0)
-    for n in sizes:
-        side = int(round(np.sqrt(n)))
-        yield f"grid {side}x{side}", lambda side=side: meshed_grid(side, side, seed=0)
-
-
-def best_solve(c, start, repeat):
-    """The result of the fastest of ``repeat`` identical solves (all give the same answer)."""
-    best = None
-    for _ in range(repeat):
-        res = solve_flow(compiled=c, start=start, build_tables=False)
-        if best is None or res.solve_seconds < best.solve_seconds:
-            best = res
-    return best
-
-
-def run(sizes, repeat=3):
-    head = (f"{'case':<14}{'buses':>8}{'branches':>10}{'iters':>7}{'solve s':>10}{'one LU s':>10}"
-            f"{'ratio':>8}{'splu dflt s':>12}  {'flat start':<12}{'compile s':>10}")
+def solve_cases(quick, repeat):
+    head = (f"{'case':<20}{'buses':>7} {'limits':<7}{'status':<11}{'iters':>6}{'cont':>5}{'Newton s':>10}"
+            f"{'one LU s':>10}{'ratio':>7}{'min V':>7}{'dev pu':>9}")
     print(head)
     print("-" * len(head))
-    for label, make in cases(sizes):
-        net = make()
-        t0 = time.perf_counter()
-        c = compile_network(net)
-        t_compile = time.perf_counter() - t0
-        res = best_solve(c, "flat", repeat)
-        flat = "yes" if res.converged else "no"
-        if not res.converged:
-            res = best_solve(c, "dc", repeat)
-            flat = "no; dc " + ("yes" if res.converged else "no")
-        jac = jacobian_at(res)
-        t_lu = time_lu(jac)
-        t_lu_default = time_lu(jac, repeat=3, lu=spla.splu)
-        ratio = res.solve_seconds / (max(res.iterations, 1) * t_lu)
-        print(f"{label:<14}{c.n:>8}{len(c.f):>10}{res.iterations:>7}{res.solve_seconds:>10.3f}{t_lu:>10.4f}"
-              f"{ratio:>8.2f}{t_lu_default:>12.4f}  {flat:<12}{t_compile:>10.3f}", flush=True)
+    newton_time = {}
+    for label, make in cases(quick):
+        for limits in (True, False):
+            net, known = make(limits)
+            c = compile_network(net)
+            best = None
+            for _ in range(repeat):
+                res = solve_flow(compiled=c, enforce_q_limits=limits, build_tables=False)
+                if best is None or res.solve_seconds < best.solve_seconds:
+                    best = res
+            res = best
+            t_lu = best_lu_seconds(final_jacobian(res))
+            ratio = res.solve_seconds / (max(res.iterations, 1) * t_lu)
+            dev = f"{np.abs(res.v - known).max():9.1e}" if known is not None else f"{'-':>9}"
+            print(f"{label:<20}{c.n:>7} {'on' if limits else 'off':<7}{res.status.name:<11}{res.iterations:>6}"
+                  f"{res.continuation_steps:>5}{res.solve_seconds:>10.3f}{t_lu:>10.4f}{ratio:>7.2f}"
+                  f"{res.vm[c.alive].min():>7.3f}{dev}", flush=True)
+            newton_time[(label, limits)] = (res.solve_seconds, net)
+    return newton_time
 
 
-HEAVY = ("pyomo", "matplotlib", "highspy")   # must not be imported by ``planner flow``
+def renumbered(net: Network) -> Network:
+    """The same network with buses numbered 1..N (and areas of 1,000 buses), for the CDF's columns."""
+    ids = net.buses.bus.to_numpy()
+    new = pd.Series(np.arange(1, len(ids) + 1), index=ids)
+    tables = {}
+    for kind, cols in {"buses": ["bus"], "loads": ["bus"], "generators": ["bus"], "lines": ["from_bus", "to_bus"],
+                       "transformers": ["from_bus", "to_bus"], "shunts": ["bus"]}.items():
+        df = getattr(net, kind).copy()
+        for col in cols:
+            df[col] = new[df[col].to_numpy()].to_numpy()
+        if kind == "buses":
+            df["area"] = 1 + (df["bus"] - 1) // 1000
+        tables[kind] = df
+    return Network(base_mva=net.base_mva, name=net.name, **tables)
 
 
-def import_breakdown(args):
-    """Seconds of import time per top-level package (sum of -X importtime self times)."""
-    out = subprocess.run([sys.executable, "-X", "importtime", *args], capture_output=True, text=True,
-                         cwd=Path(__file__).resolve().parents[2]).stderr
-    per: dict[str, float] = {}
-    for m in re.finditer(r"^import time:\s+(\d+) \|\s+\d+ \|\s*([\w.]+)\s*$", out, re.M):
-        root = m.group(2).split(".")[0]
-        per[root] = per.get(root, 0.0) + int(m.group(1)) / 1e6
-    return per
+def reading(newton_time):
+    print()
+    head = f"{'CDF file':<20}{'buses':>7}{'read s':>9}{'tables s':>10}{'Newton s':>10}{'(read+tables)/Newton':>22}"
+    print(head)
+    print("-" * len(head))
+    with tempfile.TemporaryDirectory() as tmp:
+        for label in ("ring14 x714", "grid 100x100"):
+            t_newton, net = newton_time[(label, True)]
+            path = Path(tmp) / "case.cdf"
+            write_cdf(renumbered(net), path)
+            t_read = np.inf
+            for _ in range(3):
+                t0 = time.perf_counter()
+                back = read_cdf(path)
+                t_read = min(t_read, time.perf_counter() - t0)
+            res = solve_flow(back, build_tables=False)
+            t_tables = np.inf
+            for _ in range(3):
+                res.buses = None
+                t0 = time.perf_counter()
+                res.to_frames()
+                t_tables = min(t_tables, time.perf_counter() - t0)
+            print(f"{label:<20}{len(back.buses):>7}{t_read:>9.3f}{t_tables:>10.3f}{res.solve_seconds:>10.3f}"
+                  f"{(t_read + t_tables) / res.solve_seconds:>22.2f}", flush=True)
 
 
-def import_times():
-    out = subprocess.run([sys.executable, "-X", "importtime", "-c", "import planner.flow.newton"],
-                         capture_output=True, text=True, check=True).stderr
-    cum = [int(m.group(1)) for m in re.finditer(r"import time:\s+\d+ \|\s+(\d+) \| planner\.flow\.newton\s*$",
-                                                 out, re.M)]
-    if cum:
-        print(f"import planner.flow.newton (fresh interpreter, -X importtime cumulative): {cum[-1] / 1e6:.3f} s")
-    for mod in ("planner.flow.newton", "planner.cli"):
-        best = np.inf
-        for _ in range(3):
-            t0 = time.perf_counter()
-            r = subprocess.run([sys.executable, "-c", f"import {mod}"], capture_output=True, text=True)
-            best = min(best, time.perf_counter() - t0)
-        if r.returncode == 0:
-            print(f"python -c 'import {mod}' wall time (best of 3, includes interpreter start): {best:.3f} s")
-        else:
-            print(f"python -c 'import {mod}' failed: {r.stderr.strip().splitlines()[-1]}")
-    # what a small `planner flow` run pays for, package by package (best of 3 per package)
-    runs = [import_breakdown(["-m", "planner", "flow", str(DATA / "ieee14cdf.txt"), "-q"]) for _ in range(3)]
-    names = sorted(set().union(*runs), key=lambda k: -min(r.get(k, 0.0) for r in runs))
-    best = {k: min(r.get(k, 0.0) for r in runs) for k in names}
-    top = [k for k in names if best[k] >= 0.005]
-    print("planner flow ieee14 imports (s, best of 3): " + ", ".join(f"{k} {best[k]:.3f}" for k in top)
-          + f", all others {sum(best[k] for k in names if k not in top):.3f}")
-    heavy = [k for k in HEAVY if k in names]
-    print("planner flow imports " + (", ".join(heavy) if heavy else f"none of {', '.join(HEAVY)}"))
+MEMORY_CHILD = """
+import resource, sys, time
+from planner.network.tabular import read_tables
+from planner.flow.newton import solve_flow
+t0 = time.perf_counter()
+net = read_tables(sys.argv[1])
+t_read = time.perf_counter() - t0
+res = solve_flow(net)
+print(len(net.buses), res.status.name, f"{t_read:.2f}", f"{res.solve_seconds:.2f}",
+      resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)
+"""
+
+
+def memory():
+    print()
+    print(f"{'tabular folder':<20}{'buses':>7} {'status':<11}{'read s':>8}{'Newton s':>10}{'peak RSS MB':>13}")
+    with tempfile.TemporaryDirectory() as tmp:
+        for label, net in (("grid 224x224", meshed_grid(224, 224)),
+                           ("ring30 x1667", ring_case("ring30", 1667, True)[0])):
+            folder = Path(tmp) / "net"
+            write_tables(net, folder)
+            out = subprocess.run([sys.executable, "-c", MEMORY_CHILD, str(folder)], capture_output=True,
+                                 text=True, check=True).stdout.split()
+            print(f"{label:<20}{out[0]:>7} {out[1]:<11}{float(out[2]):>8.2f}{float(out[3]):>10.2f}"
+                  f"{float(out[4]):>13.0f}", flush=True)
 
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--quick", action="store_true", help="sizes up to 3,000 buses only")
-    ap.add_argument("--repeat", type=int, default=3, help="solves per case, the fastest is shown (default 3)")
+    ap.add_argument("--quick", action="store_true", help="the 10,000-bus cases only")
+    ap.add_argument("--repeat", type=int, default=2, help="solves per case, the fastest is shown (default 2)")
     args = ap.parse_args(argv)
-    run(SIZES[:3] if args.quick else SIZES, repeat=max(1, args.repeat))
-    print()
-    import_times()
+    newton_time = solve_cases(args.quick, max(1, args.repeat))
+    reading(newton_time)
+    if not args.quick:
+        memory()
 
 
 if __name__ == "__main__":
