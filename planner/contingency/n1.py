@@ -53,6 +53,7 @@ import scipy.sparse.linalg as spla
 from scipy.sparse.csgraph import connected_components
 
 from ..flow.jacobian import JacobianPattern
+from ..flow.result import FlowStatus
 from ..network.compile import PQ, PV, SLACK, Compiled, compile_network, replace
 from ..network.model import Network
 from ..sweep.repeated import PointSolution, RepeatedFlow
@@ -295,7 +296,7 @@ class _Screen:
         if (held & back).any():
             return None
         s_f, s_t = self.rf.branch_power(v, [k])
-        return PointSolution(True, 0, f"converged in {it} chord iterations", it, v, self.base.at_limit.copy(),
+        return PointSolution(True, FlowStatus.CONVERGED, f"converged in {it} chord iterations", it, v, self.base.at_limit.copy(),
                              -1, float(norm * c.base_mva), float((s_f + s_t).real.sum() * c.base_mva))
 
 
@@ -426,7 +427,7 @@ class _Context:
             if self.screener is not None and not cut.any():
                 v_est = self.screener.estimate(k)
                 # the estimate is Newton's first step: a full solve continues from it
-                start = PointSolution(True, 0, "", 0, v_est, base.at_limit, -1, 0.0, 0.0)
+                start = PointSolution(True, FlowStatus.CONVERGED, "", 0, v_est, base.at_limit, -1, 0.0, 0.0)
                 if _clearly_inside(rf, v_est, k, alive, lo, hi, rate, *self.margins, self.screener):
                     row["checked_by"] = "estimate"
                     row["iterations"] = 1

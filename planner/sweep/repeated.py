@@ -37,6 +37,7 @@ import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, diagonal_positions
 from ..flow.jacobian import JacobianPattern, bus_derivatives
+from ..flow.result import FlowStatus
 
 _LU_FIRST = dict(permc_spec="MMD_AT_PLUS_A", options=dict(SymmetricMode=True))
 _LU_ORDERED = dict(permc_spec="NATURAL", options=dict(SymmetricMode=True))
@@ -49,12 +50,11 @@ LOW_VOLTAGE_SOLUTION_PU = 0.5
 class PointSolution:
     """One solved point: complex voltages and what a sweep keeps of it.
 
-    ``status``: 0 converged, 1 iteration limit, 2 diverged, 3 singular Jacobian, 4 low-voltage
-    solution rejected, 5 reactive-limit switching did not settle (the codes of
-    :mod:`planner.flow.result`).
+    ``status``: a :class:`~planner.flow.result.FlowStatus` (CONVERGED, ITERATION_LIMIT, DIVERGED,
+    SINGULAR, SUSPECT for a low-voltage solution, LIMITS_UNSETTLED).
     """
     success: bool
-    status: int
+    status: FlowStatus
     message: str
     iterations: int
     v: np.ndarray
@@ -64,7 +64,7 @@ class PointSolution:
     losses_mw: float            # branch losses (series and charging), MW
 
     def __repr__(self):
-        return (f"PointSolution(success={self.success}, status={self.status}, iterations={self.iterations}, "
+        return (f"PointSolution(success={self.success}, status={self.status.name}, iterations={self.iterations}, "
                 f"losses_mw={self.losses_mw:.4f})")
 
 
@@ -226,7 +226,7 @@ class RepeatedFlow:
         loss = float((s_f + s_t).real.sum() * c.base_mva)
         if status == 0:
             message = f"converged in {iters} iterations"
-        return PointSolution(success=status == 0, status=status, message=message, iterations=iters, v=v,
+        return PointSolution(success=status == 0, status=FlowStatus(status), message=message, iterations=iters, v=v,
                              at_limit=at_limit, worst_bus=int(c.bus_ids[worst]) if c.n else -1,
                              worst_mismatch_mva=float(np.abs(err[worst]) * c.base_mva) if c.n else 0.0,
                              losses_mw=loss)
