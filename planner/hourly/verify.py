@@ -124,7 +124,7 @@ class HourlyResult:
                              "hours_v": vo.duration_h.cumsum().to_numpy(), "v_min_pu": vo.v_min_pu.to_numpy()})
 
 
-def _span(rfs, factors, level_of, banks, steps, lo, hi, first, last, start_sol=None, keep_last=False):
+def _span(rfs, factors, level_of, banks, steps, lo, hi, first, last, start_sol=None, keep_last=False, cache=None):
     """Solve intervals ``first .. last-1`` with fixed bank steps (``steps[t, b]``); returns
     per-interval arrays (and, with ``keep_last``, the last solution). Stateless apart from the
     warm start, so spans can run anywhere."""
@@ -134,15 +134,19 @@ def _span(rfs, factors, level_of, banks, steps, lo, hi, first, last, start_sol=N
     out.update({k: np.empty(T, np.int64) for k in ("v_min_bus", "v_max_bus", "iterations", "worst_bus",
                                                     "status")})
     prev = [start_sol] * len(rfs)
-    bus_idx = np.array([c.index_of([b.bus])[0] for b in banks], np.int64) if banks else np.zeros(0, np.int64)
-    step_pu = np.array([b.mvar_per_step for b in banks]) / c.base_mva if banks else np.zeros(0)
-    ysh_cache = {}
+    cache = {} if cache is None else cache       # bank arrays and shunt changes, kept across calls
+    if "bus_idx" not in cache:
+        cache["bus_idx"] = np.array([c.index_of([b.bus])[0] for b in banks], np.int64) if banks else np.zeros(0, np.int64)
+        cache["step_pu"] = np.array([b.mvar_per_step for b in banks]) / c.base_mva if banks else np.zeros(0)
+        cache["level_steps"] = np.array([b.steps_by_level for b in banks], np.int64).T if banks else None
+    bus_idx, step_pu = cache["bus_idx"], cache["step_pu"]
+    ysh_cache = cache.setdefault("ysh", {})
     for j, t in enumerate(range(first, last)):
         l = int(level_of[t])
         rf = rfs[l]
         delta = None
         if len(banks):
-            d = steps[t] - np.array([b.steps_by_level[l] for b in banks])
+            d = steps[t] - cache["level_steps"][l]
             if d.any():
                 key = (l, d.tobytes())
                 delta = ysh_cache.get(key)
@@ -300,9 +304,10 @@ def _voltage_controlled(rfs, factors, level_of, duration_h, banks, rule, lo, hi,
     smax = np.array([b.steps_max for b in banks], np.int64)
     parts = []
     prev = base_sol
+    cache = {}
     for t in range(T):
         steps[t] = now
-        part, sol = _span(rfs, factors, level_of, banks, steps, lo, hi, t, t + 1, prev, keep_last=True)
+        part, sol = _span(rfs, factors, level_of, banks, steps, lo, hi, t, t + 1, prev, keep_last=True, cache=cache)
         parts.append(part)
         if sol.success:
             prev = sol
