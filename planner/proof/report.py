@@ -15,7 +15,8 @@ def _fmt(v, spec):
     if v is None:
         return ""
     try:
-        return format(float(v), spec)
+        x = float(v)
+        return "" if x != x else format(x, spec)       # NaN: nothing to show
     except (TypeError, ValueError):
         return str(v)
 
