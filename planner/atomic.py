@@ -178,7 +178,20 @@ def _check_parent(target: Path, option: str | None) -> None:
 def check_file_target(path, option: str | None = None) -> Path:
     """Check, before any work, that ``path`` can be written as a file; raise :class:`OutputError`
     naming ``option`` (e.g. ``"--json"``) if not. Missing parent folders are allowed (they are
-    created on writing) if the nearest existing one is writable."""
+    created on writing) if the nearest existing one is writable.
+
+    >>> import tempfile, pathlib
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     _ = (pathlib.Path(d) / "a.txt").write_text("x")
+    ...     for p in ("new/out.json", "", "a.txt/out.json"):
+    ...         try:
+    ...             print(check_file_target(pathlib.Path(d) / p, "--json").name)
+    ...         except OutputError as e:
+    ...             print(str(e).replace(d, "D"))
+    out.json
+    --json D: is a folder; give a file name
+    --json D/a.txt/out.json: D/a.txt is not a folder, so the output cannot go under it
+    """
     target = Path(path)
     if target.name in ("", ".", ".."):
         _raise_output(option, target, "needs a file name")
@@ -193,7 +206,19 @@ def check_file_target(path, option: str | None = None) -> Path:
 def check_folder_target(folder, option: str | None = None, *, own_names: Iterable[str] = (),
                         marker: str | None = None) -> Path:
     """Check, before any work, that ``folder`` may be written (or replaced) by :func:`write_folder`
-    with the same ``own_names`` / ``marker``; raise :class:`OutputError` naming ``option`` if not."""
+    with the same ``own_names`` / ``marker``; raise :class:`OutputError` naming ``option`` if not.
+
+    >>> import tempfile, pathlib
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     mine = pathlib.Path(d) / "mine"
+    ...     mine.mkdir()
+    ...     _ = (mine / "notes.txt").write_text("keep")
+    ...     try:
+    ...         check_folder_target(mine, "--csv", own_names={"buses.csv"})
+    ...     except OutputError as e:
+    ...         print(str(e).replace(d, "D"))
+    --csv D/mine: folder holds 'notes.txt', which is not a file this command writes; refusing to replace it (choose a new or empty folder)
+    """
     target = Path(folder)
     if target.name in ("", ".", ".."):
         _raise_output(option, target, "needs a folder name")

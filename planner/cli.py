@@ -13,7 +13,7 @@ import warnings
 
 from .commands import flow, plan, study
 from .commands.console import (BAD_INPUT, INTERNAL, INTERRUPTED, OUTPUT_PROBLEM, Console,
-                               ignore_further_interrupts, install_signal_handlers)
+                               ignore_further_interrupts, install_signal_handlers, restore_signal_handlers)
 from .commands.options import EXIT_EPILOG, Formatter
 
 
@@ -51,13 +51,13 @@ def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
     from .errors import OutputError, PlannerError
     con = Console()
-    install_signal_handlers()
+    handlers = install_signal_handlers()
     old_show = warnings.showwarning
     warnings.showwarning = _one_line_warning
     try:
         return args.run(args)
     except KeyboardInterrupt:
-        ignore_further_interrupts()
+        handlers = {**ignore_further_interrupts(), **handlers}
         from .atomic import remove_live_temporaries
         remove_live_temporaries()
         con.err("interrupted: stopped; no partial output left behind")
@@ -82,6 +82,7 @@ def main(argv=None) -> int:
         return INTERNAL
     finally:
         warnings.showwarning = old_show
+        restore_signal_handlers(handlers)     # main() may be called from a program that has its own
 
 
 def _describe(exc) -> str:

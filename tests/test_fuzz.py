@@ -402,3 +402,11 @@ def test_leap_year_hours_accepted_and_one_more_refused(tmp_path):
     p.write_text(base.replace("hours = 8784", "hours = 8785"))
     with pytest.raises(InputError, match="8,784"):
         read_study(p)
+
+
+def test_digits_of_other_scripts_are_not_numbers(tmp_path):
+    # found by the tabular fuzzer: Arabic-Indic digits passed the row reader's pattern (Python's
+    # \d is Unicode) while the fast path refused them
+    folder = _tables(tmp_path, "loads.csv", "D26,26,60,25", "D26,26,\u0661\u0662,25")
+    msg = _error(folder)
+    assert "loads.csv:" in msg and "kw" in msg and "cannot read" in msg

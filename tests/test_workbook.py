@@ -372,3 +372,17 @@ def test_study_folder_has_results_workbook_with_every_csv_table(tmp_path):
         assert list(got.columns) == list(want.columns), p.name
         got = got.replace({"inf": math.inf, "-inf": -math.inf})      # text cells for infinities
         pd.testing.assert_frame_equal(got, want, check_dtype=False, obj=p.name)
+
+
+def test_damaged_sheet_is_one_line_error(tmp_path):
+    import zipfile
+    good, bad = tmp_path / "good.xlsx", tmp_path / "bad.xlsx"
+    write_network(read_network(FEEDER), good)
+    with zipfile.ZipFile(good) as src, zipfile.ZipFile(bad, "w") as dst:
+        for info in src.infolist():
+            body = src.read(info)
+            if info.filename == "xl/worksheets/sheet5.xml":      # the lines sheet, cut short
+                body = body[: len(body) * 9 // 10]
+            dst.writestr(info, body)
+    with pytest.raises(InputError, match=r"bad.xlsx: .*not a readable (sheet|.xlsx workbook) \(ParseError"):
+        read_network(bad)

@@ -148,12 +148,13 @@ class Progress:
         return self._bar is not None
 
     def __call__(self, text) -> None:
+        check_interrupted()            # the library calls back often: the place to stop it
         if self.quiet or self._closed:
             return
         line = fit(clean(" ".join(str(text).split())), WIDTH - 10)
         self._track(line)
         if self._bar is not None:
-            self._bar.update(self._task, description=line[:60])
+            self._bar.update(self._task, description=line[:48])
             return
         stamp = time.strftime("%H:%M:%S")
         try:
@@ -198,25 +199,66 @@ class Interrupted(KeyboardInterrupt):
     ``KeyboardInterrupt``), so every ``try/finally`` and the atomic writers' clean-up run."""
 
 
-def install_signal_handlers() -> None:
-    """SIGTERM and SIGHUP stop the command like Ctrl-C (clean-up, "interrupted", status 130)."""
+def warn_about_model(con: "Console", path) -> None:
+    """Print the network's likely modelling mistakes (legal, so the work goes on) as warning
+    lines on stderr, also under ``-q``."""
+    from ..network.io import read_network
+    from ..network.validate import model_warnings
+    for w in model_warnings(read_network(path)):
+        con.err(f"warning: {w}")
+
+
+_interrupt = {"signal": None}
+
+
+def check_interrupted() -> None:
+    """Raise :class:`Interrupted` if a stop signal arrived, even if the library swallowed the
+    exception it raised (the MILP solver turns Ctrl-C into a cancelled solve and carries on)."""
+    if _interrupt["signal"] is not None:
+        raise Interrupted(f"signal {_interrupt['signal']}")
+
+
+def install_signal_handlers() -> dict:
+    """Ctrl-C (SIGINT), SIGTERM and SIGHUP stop the command: the signal is remembered and
+    :class:`Interrupted` raised, so clean-up runs, "interrupted" is printed and the status is 130.
+    An ignored SIGINT (a background job) stays ignored. Returns the handlers replaced, for
+    :func:`restore_signal_handlers`."""
+    _interrupt["signal"] = None
+
     def handler(signum, frame):
+        _interrupt["signal"] = signum
         raise Interrupted(f"signal {signum}")
-    for name in ("SIGTERM", "SIGHUP"):
+    old = {}
+    for name in ("SIGINT", "SIGTERM", "SIGHUP"):
         sig = getattr(signal, name, None)
-        if sig is not None:
-            try:
-                signal.signal(sig, handler)
-            except (ValueError, OSError):      # not the main thread, or not allowed here
-                pass
+        if sig is None:
+            continue
+        try:
+            if sig == signal.SIGINT and signal.getsignal(sig) is signal.SIG_IGN:
+                continue
+            old[sig] = signal.signal(sig, handler)
+        except (ValueError, OSError):      # not the main thread, or not allowed here
+            pass
+    return old
 
 
-def ignore_further_interrupts() -> None:
-    """While cleaning up after one interrupt, a second Ctrl-C must not cut the clean-up short."""
+def restore_signal_handlers(old: dict) -> None:
+    for sig, handler in old.items():
+        try:
+            signal.signal(sig, handler if handler is not None else signal.SIG_DFL)
+        except (ValueError, OSError, TypeError):
+            pass
+
+
+def ignore_further_interrupts() -> dict:
+    """While cleaning up after one interrupt, a second Ctrl-C must not cut the clean-up short.
+    Returns the handlers it replaced."""
+    old = {}
     for name in ("SIGINT", "SIGTERM", "SIGHUP"):
         sig = getattr(signal, name, None)
         if sig is not None:
             try:
-                signal.signal(sig, signal.SIG_IGN)
+                old[sig] = signal.signal(sig, signal.SIG_IGN)
             except (ValueError, OSError):
                 pass
+    return old

@@ -27,7 +27,7 @@ def add_parser(sub):
                    help="do not retry from light load when Newton fails or its solution looks inoperable")
     f.add_argument("--accept-suspect", action="store_true",
                    help="exit 0 for a solution the plausibility check marks suspect (likely inoperable)")
-    f.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
+    f.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors and warnings")
     f.set_defaults(run=run)
     return f
 

@@ -5,7 +5,7 @@ import math
 from pathlib import Path
 
 from . import options
-from .console import NOT_SUCCESS, OK, Console, Progress
+from .console import NOT_SUCCESS, OK, Console, Progress, check_interrupted, warn_about_model
 
 
 def add_parser(sub):
@@ -17,7 +17,7 @@ def add_parser(sub):
     pl.add_argument("--json", metavar="FILE", help="where to write the plan (default: STUDY.plan.json in the "
                     "study's output folder, the parent of its report folder)")
     pl.add_argument("--level", help="load level to optimise (default: the heaviest)")
-    pl.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
+    pl.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors and warnings")
     pl.set_defaults(run=run)
     return pl
 
@@ -55,6 +55,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
     option = "--json" if json_path else (f"{spec.path.name}: study.output" if spec.output else
                                          "default plan file")
     check_file_target(out, option)
+    warn_about_model(con, spec.network_path)
     spec.levels = chosen
     spec.peak_level = chosen[0].name
     spec.alternatives = [AlternativeSpec(name="plan", description="every lever the study file enables")]
@@ -63,6 +64,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
         _, plans = run_study(spec, progress=progress)
     finally:
         progress.close()
+    check_interrupted()       # a stop during the last solver call must not pass for a result
     plan = plans[0][1]
     with options.output_errors(option, out):
         write_json(out, plan_to_dict(plan))
@@ -78,7 +80,28 @@ def plan_verified(plan, level: str) -> bool:
     holds. A failed optimisation step is never called verified, whatever else says so."""
     fr = plan.flows_after.get(level)
     flow_ok = fr is not None and bool(getattr(fr, "success", getattr(fr, "converged", False)))
-    return bool(plan.verified) and bool(getattr(plan, "success", True)) and flow_ok
+    steps = [{"iteration": e.get("iteration", 0), "accepted": e.get("accepted")} for e in plan.log]
+    return bool(plan.verified) and bool(getattr(plan, "success", True)) and flow_ok \
+        and not optimizer_failed(plan.status, steps)
+
+
+def optimizer_failed(status, steps=()) -> bool:
+    """True when the optimiser's status says a step failed (e.g. the MILP could not be solved)
+    before any step was accepted: nothing was optimised, so the plan is not a verified plan,
+    whatever the load flows of the unchanged network show. ``steps`` are the log entries
+    (``iteration``, ``accepted``).
+
+    >>> optimizer_failed("MILP step failed (error)", [{"iteration": 0, "accepted": True}])
+    True
+    >>> optimizer_failed("MILP step failed (time limit)", [{"iteration": 1, "accepted": True}])
+    False
+    >>> optimizer_failed("converged (no further change)")
+    False
+    """
+    name = getattr(status, "name", None) or str(status)
+    if "fail" not in name.lower():
+        return False
+    return not any(s.get("accepted") and s.get("iteration", 0) >= 1 for s in steps)
 
 
 def _num(x) -> float | None:

@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 from . import options
-from .console import NOT_SUCCESS, OK, Console, Progress
+from .console import NOT_SUCCESS, OK, Console, Progress, check_interrupted, warn_about_model
 
 
 def add_parser(sub):
@@ -13,7 +13,7 @@ def add_parser(sub):
     st.add_argument("study", help="study file (TOML)")
     st.add_argument("--out", metavar="FOLDER", help="parent folder of the report (default: the study's "
                     "output key, else reports/ beside the study file)")
-    st.add_argument("-q", "--quiet", action="store_true", help="no progress or summary output")
+    st.add_argument("-q", "--quiet", action="store_true", help="no progress or summary: only errors and warnings")
     st.set_defaults(run=run)
     return st
 
@@ -47,11 +47,13 @@ def run_study_file(path, out_dir=None, quiet=False) -> int:
     option = output_option(spec, out_dir)
     target = report_folder(spec, out_dir)
     check_folder_target(target, option, marker=MARKER)
+    warn_about_model(con, spec.network_path)
     progress = Progress(quiet, iterations=spec.max_iterations)
     try:
         data, plans = run_study(spec, progress=progress)
     finally:
         progress.close()
+    check_interrupted()       # a stop during the last solver call must not pass for a result
     files = report_files(data)
     files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
     from ..network.workbook import csv_files_workbook, have_openpyxl
@@ -63,7 +65,13 @@ def run_study_file(path, out_dir=None, quiet=False) -> int:
         con.out(alternative_line(alt))
     con.out(f"report: {folder / 'report.html'}", width=None)
     # alternatives that cannot meet the limits are findings of the study, not failures of the run
-    return OK if any(a["verified"] for a in data["alternatives"]) else NOT_SUCCESS
+    return OK if any(verified(a) for a in data["alternatives"]) else NOT_SUCCESS
+
+
+def verified(alt: dict) -> bool:
+    """An alternative is verified only if its plan is and its optimisation did not fail."""
+    from .plan import optimizer_failed
+    return bool(alt["verified"]) and not optimizer_failed(alt.get("status", ""), alt.get("convergence", []))
 
 
 def alternative_line(alt: dict) -> str:
@@ -75,5 +83,5 @@ def alternative_line(alt: dict) -> str:
     """
     lv = ", ".join(f"{n} {d['losses_mw']:.4f} MW" if d.get("losses_mw") is not None else f"{n} not converged"
                    for n, d in alt["levels"].items())
-    state = "verified" if alt["verified"] else "NOT verified: " + str(alt["message"])
+    state = "verified" if verified(alt) else "NOT verified: " + str(alt["message"])
     return f"{alt['name']}: {state}; losses after: {lv}"

@@ -72,6 +72,7 @@ FAR_BELOW_BAND_PU = 0.15          # a voltage this far below its band minimum is
 LOSS_FACTOR = 5.0                 # losses above this x (DC estimate + 1 % of load) are suspect
 SAME_SOLUTION_PU = 1e-4
 MAX_ITER_CAP = 100_000
+GIVE_UP_ITERS = 10                # an attempt still above its first mismatch after this many ends
 
 
 def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | None = None,
@@ -163,8 +164,19 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
         held = (st.at_limit != 0) & c.alive
         v[held] = start.v[held]
     history: list[float] = []
+    ctx.give_up = continuation
     v1, st1, iters, status, message = _solve_schedule(ctx, v, st, 1.0, tol, max_iter, history)
     strategy, steps = "newton", 0
+    if continuation and status not in (FlowStatus.CONVERGED, FlowStatus.SUSPECT):
+        # second start: flat magnitudes, angles of a DC flow whose imbalance the loads take up
+        v2 = _balanced_dc_start(c, 1.0)
+        more = max(max_iter - iters, 1)
+        v2, st2, it2, status2, message2 = _solve_schedule(ctx, v2, _LimitState.fresh(c), 1.0, tol, more, history)
+        iters += it2
+        if status2 == FlowStatus.CONVERGED:
+            v1, st1, status, strategy = v2, st2, status2, "dc-start"
+            message = f"converged in {iters} iterations (flat start: {message}; then from DC angles)"
+    ctx.give_up = False
     total = iters
     if status == FlowStatus.CONVERGED and check_plausibility:
         reason = implausible(c, y, v1, symbolic)
@@ -190,7 +202,7 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
             message += f"; continuation from light load: {msg_c}"
             if status_c == FlowStatus.COLLAPSE:
                 status = FlowStatus.COLLAPSE
-    elif status == FlowStatus.CONVERGED:
+    elif status == FlowStatus.CONVERGED and strategy == "newton":
         message = f"converged in {iters} iterations"
     if st1.oscillating.size and status == FlowStatus.CONVERGED:
         message += ("; generators at bus " + ", ".join(str(b) for b in c.bus_ids[st1.oscillating])
@@ -234,6 +246,7 @@ class _Context:
     tol: float
     enforce: bool
     cache: SymbolicCache
+    give_up: bool = False     # end an attempt that makes no progress (another start follows)
 
     def __post_init__(self):
         c = self.c
@@ -305,16 +318,25 @@ def _dc_matrix(c: Compiled):
     return b, bser
 
 
-def dc_angles(c: Compiled, va_slack: np.ndarray) -> np.ndarray:
-    """Bus angles of a DC load flow (lossless, 1 pu, series reactance only, phase shifts kept)."""
+def dc_angles(c: Compiled, va_slack: np.ndarray, spread_imbalance: bool = False, scale: float = 1.0) -> np.ndarray:
+    """Bus angles of a DC load flow (lossless, 1 pu, series reactance only, phase shifts kept).
+
+    ``spread_imbalance``: the difference between scheduled generation and load (which the AC
+    solution mostly spends on losses) is taken up by the loads in proportion to their size
+    rather than by the slack bus alone, so it does not flow across the whole network towards the
+    slack; a better start on large networks. ``scale`` multiplies generation and load."""
     n = c.n
     with np.errstate(all="ignore"):
         b, bser = _dc_matrix(c)
         # a phase shifter on the from side injects b*phi at its ends
         p_shift = np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
-        p = (c.s_gen - c.s_load_p - c.s_load_i - c.s_load_z).real - c.ysh.real - p_shift
+        load = (c.s_load_p + c.s_load_i + c.s_load_z).real
+        p = scale * (c.s_gen.real - load) - c.ysh.real - p_shift
         free = np.flatnonzero((c.kind != SLACK) & c.alive)
         fixed = np.flatnonzero((c.kind == SLACK) & c.alive)
+        if spread_imbalance and load[c.alive].sum() > 0:
+            live_load = np.where(c.alive, load, 0.0)
+            p = p - p[c.alive].sum() * live_load / live_load.sum()
         va = va_slack.copy()
         if len(free):
             rhs = p[free] - b[free][:, fixed] @ va[fixed]
@@ -478,9 +500,14 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             return v, iters, diverged, "the iteration diverged (numerical overflow)"
         recent: list[float] = []
         tiny = 0
+        start_norm, local = None, 0
         while True:
             norm = float(np.abs(F).max()) if F.size else 0.0
             history.append(norm * c.base_mva)
+            start_norm = norm if start_norm is None else start_norm
+            if ctx.give_up and local >= GIVE_UP_ITERS and norm > start_norm:
+                return v, iters, diverged, (
+                    f"the iteration diverged (no progress in {GIVE_UP_ITERS} iterations)")
             if not np.isfinite(norm):
                 return v, iters, diverged, "the iteration diverged (non-finite mismatch)"
             if norm <= tol:
@@ -502,6 +529,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
             iters += 1
+            local += 1
             merit = float(np.sqrt(F @ F))
             recent = (recent + [merit])[-WINDOW:]
 
@@ -582,9 +610,7 @@ def _continuation(ctx: _Context, history):
 
     Returns (v, limit state, iterations, status, message, steps)."""
     c = ctx.c
-    vm0 = np.where(c.kind != PQ, c.v_set, 1.0)
-    va0 = np.where(c.kind == SLACK, c.va_stored, 0.0)
-    v = np.where(c.alive, vm0 * np.exp(1j * va0), 0.0)
+    v = _balanced_dc_start(c, CONT_FIRST)
     st = _LimitState.fresh(c)
     iters = 0
     lam, step = 0.0, CONT_STEP
@@ -594,7 +620,7 @@ def _continuation(ctx: _Context, history):
     while True:
         budget = CONT_STEP_ITERS if lam > 0 else 3 * CONT_STEP_ITERS
         tol = ctx.tol if target >= 1.0 else max(ctx.tol, CONT_TOL_PU)
-        guess = v
+        guess = v if lam > 0 else _balanced_dc_start(c, target)
         if prev is not None and lam > prev[0]:
             # secant predictor on magnitude and angle
             w = (target - lam) / (lam - prev[0])
@@ -630,6 +656,13 @@ def _continuation(ctx: _Context, history):
         if iters >= CONT_MAX_ITERS:
             return v, st, iters, FlowStatus.ITERATION_LIMIT, (
                 f"iteration budget spent at {lam:.1%} of the schedule"), steps
+
+
+def _balanced_dc_start(c: Compiled, scale: float) -> np.ndarray:
+    """Setpoint / 1 pu magnitudes with the angles of :func:`dc_angles` (imbalance spread)."""
+    vm = np.where(c.kind != PQ, c.v_set, 1.0)
+    va = dc_angles(c, np.where(c.kind == SLACK, c.va_stored, 0.0), spread_imbalance=True, scale=scale)
+    return np.where(c.alive, vm * np.exp(1j * va), 0.0)
 
 
 def _angle_diff(a: np.ndarray, b: np.ndarray) -> np.ndarray:

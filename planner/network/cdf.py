@@ -106,7 +106,7 @@ BRANCH_FIELDS = [
 
 # A number with an explicit decimal point or an integer, optional exponent (E or Fortran D).
 # Stricter than float(): rejects "nan", "inf" and "1_0", which float() would accept.
-_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eEdD][+-]?\d+)?")
+_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eEdD][+-]?\d+)?", re.ASCII)
 _ITEMS = re.compile(r"(\d+)\s+ITEMS", re.IGNORECASE)
 _WIDE_Q = 9999.0
 # Fields a load flow does not need are not read: real files are not always aligned there (the

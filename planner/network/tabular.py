@@ -68,7 +68,7 @@ UNIT_COLUMNS = {
     "shunts": {"kvar_per_step": ("mvar_per_step", _KILO)},
     "buses": {},
 }
-_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
+_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)   # ASCII digits only: other scripts' digits are not numbers in a table
 _TRUE = {"true", "t", "yes", "y", "1"}
 _FALSE = {"false", "f", "no", "n", "0"}
 _CANONICAL = {"kind": {"pq": "PQ", "pv": "PV", "slack": "slack"},

@@ -201,7 +201,13 @@ def read_workbook(path) -> Network:
         for kind in TABLES:   # buses first: ohm columns need the bus base kV
             if kind not in wb.sheetnames:
                 continue
-            header, hrow, numbers, rows = _sheet_rows(wb[kind], path)
+            try:   # read-only sheets are parsed lazily: damage deep in a sheet shows up here
+                header, hrow, numbers, rows = _sheet_rows(wb[kind], path)
+            except InputError:
+                raise
+            except Exception as exc:
+                raise InputError(f"not a readable sheet ({type(exc).__name__}: {exc})", file=path,
+                                 record=f"sheet {kind!r}") from None
             places = SheetPlaces(path, kind, hrow, numbers)
             tables[kind] = table_from_cells(kind, header, rows, bus_kv, base_mva, places)
             if kind == "buses":

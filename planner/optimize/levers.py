@@ -1,7 +1,7 @@
 """What the optimiser may change, what it must respect, and what it minimises.
 
-Plain dataclasses: the study file reader fills them, :func:`planner.optimize.plan.plan_levers`
-and :func:`planner.optimize.engine.optimise` read them.
+Plain dataclasses: the study file reader fills them and :func:`planner.optimize.engine.plan`
+reads them.
 """
 from __future__ import annotations
 
@@ -37,6 +37,7 @@ class Levers:
     gen_v_range: dict | None = None                  # bus -> (lo, hi); None = setpoints fixed
     taps: bool = False                               # adjustable transformers move in their steps
     setpoints_per_level: bool = True                 # setpoints (and taps) may differ between levels
+    parallel_taps_together: bool = True             # transformers in parallel (same buses) share one tap lever
 
 
 @dataclass
@@ -77,7 +78,12 @@ class Options:
     min_voltage_radius_pu: float = 1e-4
     tangent_points: int = 12              # cuts per squared term of the loss model
     penalty: float = 1e4                  # MW of losses (at the heaviest level) per pu of violation
-    polish: bool = True                   # AC-checked one-unit moves after the loop
-    max_polish_flows: int = 400
+    polish: bool = True                   # the model-screened, AC-checked final search after the loop
+    max_polish_flows: int = 400           # AC load flows the final search may run
+    search_checks: int = 6                # moves AC-checked per batch of the final search (best first)
     mip_gap: float = 5e-4
-    time_limit_s: float = 30.0            # per optimiser step (all its MILP solves); best found is used
+    max_nodes: int = 2000                 # HiGHS branch-and-bound nodes per MILP solve: the work bound
+    time_limit_s: float = 30.0            # emergency stop per MILP solve; when it fires the result says so
+    bound: bool = True                    # compute the relaxation bound and gap of the final plan
+    jobs: int = 1                         # worker processes for the AC checks of the levels (1 = serial)
+    blas_threads: int = 1                 # BLAS threads inside a plan (needs threadpoolctl; 0 = leave alone)

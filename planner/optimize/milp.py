@@ -13,10 +13,19 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-import time
-
 import numpy as np
-import pyomo.environ as pyo
+
+pyo = None   # pyomo.environ, imported on first use: importing Pyomo costs seconds (see _load)
+
+
+def _load():
+    """Import Pyomo when a model is first built, so reading or solving a network never pays
+    for it."""
+    global pyo
+    if pyo is None:
+        import pyomo.environ as _pyo
+        pyo = _pyo
+    return pyo
 
 
 @dataclass
@@ -77,8 +86,9 @@ class StepSpec:
     tangent_points: int
     penalty: float
     tie_break: float = 1e-7       # per unit installed, to prefer the smaller of equal plans
-    time_limit: float = 60.0
+    time_limit: float = 60.0      # emergency stop per MILP solve (seconds); recorded when it fires
     mip_gap: float = 1e-7
+    max_nodes: int = 20000        # deterministic work bound per MILP solve (branch-and-bound nodes)
     levels: list = field(default_factory=list)   # list[LevelData]
     # lever changes (one (L, m) array each) at which the loss cuts start out exact: earlier
     # steps' solutions, so the cut refinement does not have to find that region again
@@ -100,8 +110,9 @@ def objective_scale(spec: "StepSpec") -> float:
     return total if total > 0 else 1.0
 
 
-def build_model(spec: StepSpec) -> pyo.ConcreteModel:
+def build_model(spec: StepSpec):
     """A Pyomo model of one trust-region step over all load levels."""
+    _load()
     m = pyo.ConcreteModel(name="loss_step")
     S = range(len(spec.unit_pu))
     E = range(len(spec.exist_step_pu))
@@ -198,10 +209,7 @@ def build_model(spec: StepSpec) -> pyo.ConcreteModel:
     return m
 
 
-_DEBUG = False
-
-
-def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, time_budget: float = 30.0):
+def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     """Build and solve one step, tightening the loss cuts until they are exact enough.
 
     The tangent cuts underestimate each square between tangent points. After each solve,
@@ -209,19 +217,22 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, t
     refinement) until the cut model agrees with the exact quadratic at the solution within
     ``rel_tol`` of the losses, or within half the MILP gap if that is wider. Returns (solution,
     number of MILP solves, every round's solution in order).
+
+    The work is bounded by counts only (rounds, branch-and-bound nodes per solve), so the same
+    step gives the same solution on a quiet or a loaded machine; the time limit of each solve
+    is an emergency stop whose firing the solution records (``time_limited``).
     """
     m = build_model(spec)
     solver = new_solver()
     solves = 0
     sol = prev = None
     rounds = []
-    t_end = time.perf_counter() + time_budget
+    timed_out = False
     for _ in range(max_rounds):
-        left = t_end - time.perf_counter()
-        if solves and left <= 0.5:
-            break   # out of time: keep the last solution (its cut gap only makes the step conservative)
-        sol = solve_model(m, spec, solver, time_limit=max(left, 1.0))
+        sol = solve_model(m, spec, solver)
         solves += 1
+        timed_out = timed_out or sol.time_limited
+        sol.time_limited = timed_out
         if not sol.ok:
             return sol, solves, rounds
         rounds.append(sol)
@@ -238,8 +249,6 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, t
                     gap += excess * lev.weight      # MW x weight
                     b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
                     added = True
-        if _DEBUG:
-            print("  cut round", solves, "gap", gap, "total", total)
         same = prev is not None and _same_solution(prev, sol)
         # HiGHS holds each cut only to its feasibility tolerance (1e-7), so a tiny gap remains
         # cuts closer than half the MILP's own optimality gap cannot change what it may return
@@ -312,6 +321,8 @@ class StepSolution:
     tap_change: np.ndarray  # (L, T) pu
     predicted_loss_pu: np.ndarray  # (L,) exact quadratic model at the solution
     objective: float
+    time_limited: bool = False     # the emergency time limit stopped this solve: a re-run may differ
+    bound: float = -np.inf         # HiGHS's lower bound of the model objective (model units)
 
 
 def new_solver():
@@ -321,17 +332,31 @@ def new_solver():
     return SolverFactory("highs")
 
 
-def solve_model(m: pyo.ConcreteModel, spec: StepSpec, solver=None, time_limit=None) -> StepSolution:
-    """Solve with HiGHS and read the solution back as arrays (integers rounded). With a time
-    limit, the best solution found in time is used."""
+def deterministic_options(spec) -> dict:
+    """HiGHS options that make a solve depend on the model only: one thread, a fixed seed, a
+    node limit as the work bound (the best solution within it is used)."""
+    return {"mip_rel_gap": spec_mip_gap(spec), "output_flag": False, "threads": 1, "random_seed": 0,
+            "mip_max_nodes": int(getattr(spec, "max_nodes", 20000)),
+            # primal heuristics cost most of the time of these small models and rarely beat
+            # branching on them (measured on the 33-bus placement cases)
+            "mip_heuristic_effort": 0.01}
+
+
+def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution:
+    """Solve with HiGHS and read the solution back as arrays (integers rounded). The node limit
+    bounds the work; the time limit is only an emergency stop, recorded in the solution."""
+    _load()
     solver = solver or new_solver()
     try:
-        res = solver.solve(m, load_solutions=False, time_limit=time_limit if time_limit is not None else spec_time_limit(spec),
+        res = solver.solve(m, load_solutions=False,
+                           time_limit=time_limit if time_limit is not None else spec_time_limit(spec),
                            raise_exception_on_nonoptimal_result=False,
-                           solver_options={"mip_rel_gap": spec_mip_gap(spec), "output_flag": False})
+                           solver_options=deterministic_options(spec))
         status = str(res.termination_condition).split(".")[-1]
         sol = str(res.solution_status).split(".")[-1]
         ok = sol in ("optimal", "feasible")
+        timed_out = "maxTimeLimit" in status or "TimeLimit" in status
+        bound = res.objective_bound if res.objective_bound is not None else -np.inf
         if ok:
             res.solution_loader.load_vars()
     except Exception as exc:  # HiGHS or Pyomo failure: report it, the outer loop decides
@@ -363,7 +388,7 @@ def solve_model(m: pyo.ConcreteModel, spec: StepSpec, solver=None, time_limit=No
         s = lev.d + lev.R @ du if len(lev.d) else np.zeros(0)
         pred.append(float(s @ s + lev.const))
     return StepSolution(True, status, fixed, switched, steps, exist, vset, tap, np.array(pred),
-                        float(pyo.value(m.objective)))
+                        float(pyo.value(m.objective)), timed_out, float(bound))
 
 
 def spec_time_limit(spec) -> float:

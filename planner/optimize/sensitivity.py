@@ -64,7 +64,7 @@ def series_current_parts(c):
     return c.ys, r, k_f, k_t
 
 
-def linearise(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Sensitivity:
+def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Sensitivity:
     """Sensitivities at a solved point.
 
     Parameters

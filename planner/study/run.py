@@ -14,7 +14,7 @@ import numpy as np
 
 from ..network.compile import PQ, compile_network
 from ..network.io import read_network
-from ..optimize.engine import LevelCase, PlanResult, optimise
+from ..optimize.engine import LevelCase, PlanResult, plan as make_plan
 from ..optimize.levers import BankSite, Levers, Limits, Objective, Options
 from .economics import Economics, capital_recovery_factor, evaluate
 from .spec import StudySpec, check_buses, read_study
@@ -192,7 +192,7 @@ def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
             else:
                 say(f"  {_alt.name}: iteration {entry['iteration']}, "
                     f"{'accepted' if entry['accepted'] else 'rejected'}, {worth}")
-        plan = optimise(cases, levers, limits, objective, options, progress=log)
+        plan = make_plan(cases, levers, limits, objective, options, progress=log)
         plans.append((alt, plan))
         if not data["base"]:
             for l, lc in enumerate(cases):
@@ -267,7 +267,7 @@ def _alternative_data(spec, alt, plan: PlanResult, cases, c0, names_by_bus, hour
                      "worst_violation": e.get("worst_violation")})
     out = {
         "name": alt.name, "description": alt.description, "verified": bool(plan.verified),
-        "message": plan.message, "status": plan.status, "capital_cost": plan.capital_cost,
+        "message": plan.message, "status": plan.stop_reason or plan.status.value, "capital_cost": plan.capital_cost,
         "banks": banks, "setpoints": setpoints, "taps": taps, "levels": levels, "convergence": conv,
         "existing_steps": plan.existing_steps, "ac_flows": plan.ac_flows, "milp_solves": plan.milp_solves,
         "seconds": plan.seconds,
@@ -298,7 +298,9 @@ def plan_to_dict(plan: PlanResult) -> dict:
     """A plan as plain data (the JSON that ``planner plan`` writes, per level)."""
     first = plan.levels[0]
     return {
-        "verified": bool(plan.verified), "status": plan.status, "message": plan.message,
+        "verified": bool(plan.verified), "status": plan.status.value, "stop_reason": plan.stop_reason,
+        "message": plan.message, "time_limited": plan.time_limited, "bound": plan.bound,
+        "losses_predicted_note": plan.predicted_note,
         "levels": plan.levels,
         "banks": [{"bus": b["bus"], "units": b["units"], "mvar": b["mvar"], "fixed_units": b["fixed_units"],
                    "switched_units": b["switched_units"], "steps_by_level": b["steps_by_level"]}
@@ -312,7 +314,7 @@ def plan_to_dict(plan: PlanResult) -> dict:
         "capital_cost": plan.capital_cost,
         "violations": [{"level": v.level, "kind": v.kind, "element": v.element, "value": v.value,
                         "limit": v.limit, "excess": v.excess, "text": v.text()} for v in plan.violations],
-        "iterations": plan.log, "ac_flows": plan.ac_flows, "milp_solves": plan.milp_solves,
+        "iterations": [e.to_dict() for e in plan.log], "ac_flows": plan.ac_flows, "milp_solves": plan.milp_solves,
         "seconds": plan.seconds,
     }
 

@@ -3,6 +3,7 @@
     python tests/perf/bench_flow.py              # every case below, limits on and off
     python tests/perf/bench_flow.py --quick      # the 10,000-bus cases only
     python tests/perf/bench_flow.py --repeat 3   # best of 3 solves per case (default 2)
+    python tests/perf/bench_flow.py --only "grid 224" --limits on --repeat 1   # one case
 
 Cases (built from the two standard cases the project holds, tests/data/ieee14cdf.txt and
 ieee30cdf.txt, in the shapes of issue 8):
@@ -92,14 +93,17 @@ def best_lu_seconds(j, repeat=3):
     return best
 
 
-def solve_cases(quick, repeat):
+def solve_cases(quick, repeat, only=None, limit_choice="both"):
     head = (f"{'case':<20}{'buses':>7} {'limits':<7}{'status':<11}{'iters':>6}{'cont':>5}{'Newton s':>10}"
             f"{'one LU s':>10}{'ratio':>7}{'min V':>7}{'dev pu':>9}")
     print(head)
     print("-" * len(head))
     newton_time = {}
+    settings = {"both": (True, False), "on": (True,), "off": (False,)}[limit_choice]
     for label, make in cases(quick):
-        for limits in (True, False):
+        if only is not None and only not in label:
+            continue
+        for limits in settings:
             net, known = make(limits)
             c = compile_network(net)
             best = None
@@ -191,10 +195,15 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="the 10,000-bus cases only")
     ap.add_argument("--repeat", type=int, default=2, help="solves per case, the fastest is shown (default 2)")
+    ap.add_argument("--only", metavar="TEXT", help="only the cases whose name contains TEXT (no reading part)")
+    ap.add_argument("--limits", choices=["both", "on", "off"], default="both", help="reactive limits (default both)")
+    ap.add_argument("--memory", action="store_true", help="only the peak-memory part")
     args = ap.parse_args(argv)
-    newton_time = solve_cases(args.quick, max(1, args.repeat))
-    reading(newton_time)
-    if not args.quick:
+    if not args.memory:
+        newton_time = solve_cases(args.quick, max(1, args.repeat), args.only, args.limits)
+        if args.only is None:
+            reading(newton_time)
+    if args.memory or (not args.quick and args.only is None):
         memory()
 
 

@@ -1,0 +1,149 @@
+"""AC checking: full Newton-Raphson load flows of a plan at every level, its limit breaches
+and the merit that decides acceptance; the voltage margins the linear model learns from them.
+
+The load flows of the levels of one proposal are independent: with ``Options.jobs`` > 1 they
+run in a pool of worker processes (created once per plan). Each worker runs exactly the
+computation the serial path runs, so results are identical.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..flow.newton import solve_flow
+from ..flow.result import FlowResult
+from ..network.compile import PQ
+from .problem import Evaluation, PlanProblem, Settings
+from .results import Violation
+
+_MARGIN_STEP = 5e-5   # pu added to a voltage row's margin beyond the breach that AC showed
+_MARGIN_CAP = 0.01    # pu: the most a row is moved inside the band
+
+
+def _solve_level(job):
+    """One level's AC load flow (a module-level function, so worker processes can run it)."""
+    c, start, tables = job
+    fr = solve_flow(compiled=c, start=start, build_tables=tables)
+    runs = 1
+    if not fr.converged and not isinstance(start, str):
+        fr = solve_flow(compiled=c, start="flat", build_tables=tables)
+        runs += 1
+    return fr, runs
+
+
+def level_pool(pb: PlanProblem):
+    """The plan's worker pool, or None for a serial run (one job or one level)."""
+    jobs = int(getattr(pb.options, "jobs", 1) or 1)
+    if jobs <= 1 or len(pb.levels) <= 1:
+        return None
+    if getattr(pb, "_pool", None) is None:
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+        ctx = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
+        pb._pool = ProcessPoolExecutor(max_workers=min(jobs, len(pb.levels)), mp_context=ctx)
+    return pb._pool
+
+
+def close_pool(pb: PlanProblem):
+    pool = getattr(pb, "_pool", None)
+    if pool is not None:
+        pool.shutdown()
+        pb._pool = None
+
+
+def evaluate(pb: PlanProblem, st: Settings, warm: list | None = None, tables=False) -> Evaluation:
+    """Full AC load flows (reactive limits enforced) of ``st`` at every level, and the merit
+    that decides acceptance. With ``pb.options.jobs`` > 1 the levels run in parallel processes;
+    each flow is the same computation either way, so the results are identical."""
+    flows, losses, viols = [], [], []
+    total = 0.0
+    ok = True
+    jobs = []
+    for l in range(len(pb.levels)):
+        start = warm[l] if warm is not None and warm[l] is not None and warm[l].converged else "flat"
+        jobs.append((pb.compiled_for(l, st), start, tables))
+    pool = level_pool(pb)
+    solved = list(pool.map(_solve_level, jobs)) if pool is not None else [_solve_level(j) for j in jobs]
+    for l, lc in enumerate(pb.levels):
+        fr, runs = solved[l]
+        pb.flows_run += runs
+        flows.append(fr)
+        if not fr.converged:
+            ok = False
+            losses.append(np.inf)
+            viols.append(Violation(lc.name, "no convergence", fr.message, np.nan, np.nan, np.inf))
+            total = np.inf
+            continue
+        losses.append(fr.losses_mw)
+        v, t = violations(pb, l, fr)
+        viols.extend(v)
+        total += t
+    losses = np.array(losses)
+    cap = pb.capital(st)
+    merit = (float(pb.loss_weights() @ losses) + pb.capital_weight() * cap
+             + pb.penalty() * total) if ok else np.inf
+    return Evaluation(flows, losses, viols, total, cap, merit, ok)
+
+
+def violations(pb: PlanProblem, l: int, fr: FlowResult):
+    """Limit breaches of a converged flow at level ``l``, and their sum in pu (for the merit)."""
+    c = fr.compiled
+    level = pb.levels[l].name
+    vmin, vmax = pb.vlim[l]
+    out = []
+    tol_v = 1e-6
+    vm = np.abs(fr.v)
+    alive = c.alive
+    lo = alive & (vm < vmin - tol_v)
+    hi = alive & (vm > vmax + tol_v)
+    total = float(np.sum(np.where(lo, vmin - vm, 0.0)) + np.sum(np.where(hi, vm - vmax, 0.0)))
+    for i in np.flatnonzero(lo):
+        out.append(Violation(level, "voltage", f"bus {c.bus_ids[i]}", vm[i], vmin[i], vmin[i] - vm[i]))
+    for i in np.flatnonzero(hi):
+        out.append(Violation(level, "voltage", f"bus {c.bus_ids[i]}", vm[i], vmax[i], vm[i] - vmax[i]))
+    if pb.limits.q_limits:
+        # enforcement keeps PV buses inside; the slack bus can still break its limits
+        gb = np.flatnonzero((c.kind != PQ) & alive)
+        q = fr.bus_q_gen[gb]
+        tol_q = 1e-6
+        for i, qi in zip(gb, q):
+            if qi > c.q_max[i] + tol_q:
+                out.append(Violation(level, "reactive", f"bus {c.bus_ids[i]}", qi * c.base_mva,
+                                     c.q_max[i] * c.base_mva, (qi - c.q_max[i]) * c.base_mva))
+                total += qi - c.q_max[i]
+            elif qi < c.q_min[i] - tol_q:
+                out.append(Violation(level, "reactive", f"bus {c.bus_ids[i]}", qi * c.base_mva,
+                                     c.q_min[i] * c.base_mva, (c.q_min[i] - qi) * c.base_mva))
+                total += c.q_min[i] - qi
+    if pb.limits.ratings:
+        from ..flow.result import branch_flows
+        sf, stt = branch_flows(c, fr.v)
+        s = np.maximum(np.abs(sf), np.abs(stt)) * c.base_mva
+        rated = c.rating > 0
+        over = rated & (s > c.rating * (1 + 1e-6))
+        for k in np.flatnonzero(over):
+            pct = 100 * s[k] / c.rating[k]
+            out.append(Violation(level, "loading", f"branch {c.branch_ids[k]}", pct, 100.0, pct - 100.0))
+            total += (s[k] - c.rating[k]) / c.base_mva
+    return out, total
+
+
+def learn_voltage_margins(pb: PlanProblem, ev: Evaluation):
+    """Tighten the voltage rows at buses where an AC check broke the band.
+
+    A linear row can sit exactly on its limit while the AC voltage lands a little past it;
+    every such point then pays the violation penalty and the step is wasted. Each breach
+    moves that bus's row inside the band by the breach plus a little (capped), a usual
+    remedy in successive linear programming.
+    """
+    if not ev.converged:
+        return
+    for l, fr in enumerate(ev.flows):
+        vmin, vmax = pb.vlim[l]
+        lo, hi = pb.v_margin[l]
+        vm = np.abs(fr.v)
+        alive = fr.compiled.alive
+        below = alive & (vm < vmin)
+        above = alive & (vm > vmax)
+        lo[below] = np.minimum(lo[below] + (vmin - vm)[below] + _MARGIN_STEP, _MARGIN_CAP)
+        hi[above] = np.minimum(hi[above] + (vm - vmax)[above] + _MARGIN_STEP, _MARGIN_CAP)
+
