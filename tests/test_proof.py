@@ -47,8 +47,9 @@ def _study(tmp_path, extra=SECTIONS, profile="hour,network\n0,1.0\n1,0.4\n2,0.5\
 def feeder_run(tmp_path_factory):
     d = tmp_path_factory.mktemp("proof")
     spec = read_study(_study(d))
-    data, plans = run_study(spec)
-    return spec, data, plans
+    from planner.report.convert import report_data
+    result = run_study(spec, jobs=1)
+    return spec, report_data(result), [(a.spec, a.plan) for a in result.alternatives]
 
 
 def test_plan_network_reproduces_the_plan_losses(feeder_run):

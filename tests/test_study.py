@@ -17,7 +17,9 @@ from planner.flow.newton import solve_flow
 from planner.network.io import read_network, write_network
 from planner.study.economics import Economics, evaluate
 from planner.commands.study import run_study_file
-from planner.study.run import run_study
+from planner.report.convert import report_data
+from planner.study.result import StudyStatus
+from planner.study.run import plan_alternatives, run_study
 from planner.study.spec import read_study
 
 DATA = Path(__file__).resolve().parent / "data"
@@ -97,7 +99,7 @@ def test_defaults_of_a_minimal_study(tmp_path):
     assert (s.banks.unit_mvar, s.banks.max_units, s.banks.kinds) == (0.3, 4, ("fixed", "switched"))
     assert s.banks.candidates == [] and s.gen_range is None and s.taps is False
     assert s.objective == "cost" and s.max_iterations == 30
-    assert (s.rel_tolerance, s.mip_gap, s.step_seconds) == (1e-4, 5e-4, 15.0)
+    assert (s.rel_tolerance, s.mip_gap, s.step_seconds) == (1e-4, 5e-4, 120.0)
     assert s.economics["discount_rate"] == 0.07 and s.economics["horizon_years"] == 20
     assert [a.name for a in s.alternatives] == ["Plan"]
     # the [generators] section alone makes setpoints levers, with the documented default range
@@ -280,8 +282,8 @@ SMALL = ('[study]\ntitle = "small"\nnetwork = "{net}"\n[limits]\nv_min_pu = 0.90
 def test_unknown_bus_in_study_is_input_error(tmp_path, extra, key):
     path = write_study(tmp_path, SMALL.format(net=FEEDER.as_posix(), extra=extra))
     if key is None:
-        data, _ = run_study(read_study(path))
-        assert data["alternatives"][0]["verified"] is True
+        result = run_study(read_study(path), jobs=1)
+        assert result.alternatives[0].verified is True
         return
     with pytest.raises(InputError) as info:
         run_study(read_study(path))
@@ -302,8 +304,9 @@ def test_unknown_candidate_bus_is_input_error(tmp_path):
 @pytest.fixture(scope="module")
 def two_level():
     spec = read_study(TWO_LEVELS)
-    data, plans = run_study(spec)
-    return spec, data, plans
+    result = run_study(spec, jobs=1)
+    plans = [(a.spec, a.plan) for a in result.alternatives]
+    return spec, report_data(result), plans, result
 
 
 HOURS = {"peak": 2000.0, "light": 6760.0}
@@ -325,14 +328,20 @@ def solve_level(level, mvar_by_bus=None):
 
 
 def bank_mvar_at(alt, level):
-    out = {}
-    for b in alt["banks"]:
-        out[b["bus"]] = out.get(b["bus"], 0.0) + b["steps_by_level"][level] * b["unit_mvar"]
-    return out
+    """Mvar in service at a level: every fixed unit plus the switched units on."""
+    return {s["bus"]: (s["fixed_units"] + s["switched_on_by_level"][level]) * s["unit_mvar"] for s in alt["sites"]}
 
 
 def test_run_study_base_case(two_level):
-    _, data, plans = two_level
+    _, data, plans, result = two_level
+    assert result.success and result.status is StudyStatus.VERIFIED
+    assert repr(result).startswith("StudyResult(status=VERIFIED, levels=['peak', 'light'], alternatives=2")
+    # the base case is solved once, and agrees with the optimiser's own base flows
+    for alt, plan in plans:
+        for n, b in result.base.items():
+            assert b.flow.losses_mw == pytest.approx(plan.losses_before_mw[n], abs=1e-9)
+    frames = result.to_frames()
+    assert list(frames["alternatives"]["alternative"]) == ["Banks, two sites", "Banks, one site"]
     assert data["title"] == "Feeder 33 two-level study (test)"
     assert [lv["name"] for lv in data["levels"]] == ["peak", "light"]
     assert data["peak_level"] == "peak"
@@ -352,11 +361,11 @@ def test_run_study_base_case(two_level):
 
 
 def test_every_alternative_level_verified_by_ac(two_level):
-    _, data, _ = two_level
+    _, data, _, _ = two_level
     for alt in data["alternatives"]:
         assert alt["verified"] is True, alt["message"]
         assert alt["remaining_violations"] == []
-        assert alt["banks"], alt["name"]
+        assert alt["sites"], alt["name"]
         for level in ("peak", "light"):
             lv = alt["levels"][level]
             assert lv["verified"] is True
@@ -372,34 +381,30 @@ def test_every_alternative_level_verified_by_ac(two_level):
 
 
 def test_alternatives_respect_catalogue_and_caps(two_level):
-    _, data, _ = two_level
+    _, data, _, _ = two_level
     caps = {"Banks, two sites": (2, None), "Banks, one site": (1, 12000.0)}
     for alt in data["alternatives"]:
-        sites = {b["bus"] for b in alt["banks"]}
-        assert sites <= CANDIDATES
+        sites = {s["bus"] for s in alt["sites"]}
+        assert sites <= CANDIDATES and len(sites) == len(alt["sites"])     # one row per site
         max_sites, budget = caps[alt["name"]]
         assert len(sites) <= max_sites
         capital = 0.0
-        for bus in sites:
-            entries = [b for b in alt["banks"] if b["bus"] == bus]
-            assert sum(b["units"] for b in entries) <= 8
-            fixed = sum(b["mvar"] for b in entries if b["kind"] == "fixed")
-            switched = sum(b["mvar"] for b in entries if b["kind"] == "switched")
+        for s in alt["sites"]:
+            assert s["fixed_units"] + s["switched_units"] <= 8
+            assert s["unit_mvar"] == 0.15
+            assert s["fixed_mvar"] == pytest.approx(0.15 * s["fixed_units"])
+            assert s["mvar"] == pytest.approx(s["fixed_mvar"] + s["switched_mvar"])
+            assert all(0 <= n <= s["switched_units"] for n in s["switched_on_by_level"].values())
+            fixed, switched = s["fixed_mvar"], s["switched_mvar"]
             # invented catalogue costs of the study file
             capital += 2000.0 + 8000.0 * (fixed + switched) + (1500.0 + 3000.0 * switched if switched else 0.0)
-        for b in alt["banks"]:
-            assert b["unit_mvar"] == 0.15 and b["mvar"] == pytest.approx(0.15 * b["units"])
-            if b["kind"] == "fixed":
-                assert b["steps_by_level"] == {"peak": b["units"], "light": b["units"]}
-            else:
-                assert all(0 <= s <= b["units"] for s in b["steps_by_level"].values())
         assert alt["capital_cost"] == pytest.approx(capital, abs=1e-6)
         if budget is not None:
             assert alt["capital_cost"] <= budget + 1e-6
 
 
 def test_economics_match_evaluate(two_level):
-    spec, data, _ = two_level
+    spec, data, _, _ = two_level
     econ = Economics(energy_value_per_mwh={"peak": 90.0, "light": 45.0}, demand_value_per_kw_year=60.0,
                      discount_rate=0.08, horizon_years=15, bank_life_years=20, om_fraction=0.02)
     for alt in data["alternatives"]:
@@ -420,6 +425,31 @@ def test_economics_match_evaluate(two_level):
         assert got["annual_om"] == pytest.approx(0.02 * alt["capital_cost"], rel=1e-12)
         assert got["energy_before_mwh"]["light"] == pytest.approx(before["light"] * 6760.0, rel=1e-12)
         assert got["annual_saving"] > 0 and got["npv"] > 0
+        # sensitivity: the value row moves NPV by +-25 % of the PV of savings (capital unchanged)
+        val = next(r for r in alt["sensitivity"] if r["input"] == "energy and demand value")
+        assert val["npv_base"] == pytest.approx(got["npv"], rel=1e-12)
+        assert val["npv_high"] - val["npv_base"] == pytest.approx(0.25 * got["pv_savings"], rel=1e-9)
+        assert val["npv_base"] - val["npv_low"] == pytest.approx(0.25 * got["pv_savings"], rel=1e-9)
+        rate = next(r for r in alt["sensitivity"] if r["input"] == "discount rate")
+        assert (rate["low"], rate["high"]) == pytest.approx((0.06, 0.10))
+        assert rate["npv_low"] > got["npv"] > rate["npv_high"]
+
+
+def test_parallel_run_gives_the_serial_plans_in_order(two_level):
+    _, _, plans, _ = two_level
+    result = run_study(read_study(TWO_LEVELS), jobs=2)
+    assert [a.name for a in result.alternatives] == [alt.name for alt, _ in plans]
+    for a, (_, serial) in zip(result.alternatives, plans):
+        assert a.plan.banks == serial.banks
+        assert a.plan.losses_after_mw == serial.losses_after_mw          # exactly, not approximately
+        assert [e["merit"] for e in a.plan.log] == [e["merit"] for e in serial.log]
+
+
+def test_plan_alternatives_builds_no_report_data():
+    spec = read_study(STUDIES / "feeder33_plan.toml")
+    out = plan_alternatives(spec, jobs=1)
+    assert len(out) == 1 and out[0][0].name == spec.alternatives[0].name
+    assert out[0][1].verified and out[0][1].banks
 
 
 # --- run_study_file: the report folder -----------------------------------------------------------
@@ -458,7 +488,7 @@ def test_failed_run_leaves_earlier_report_untouched(tmp_path, monkeypatch):
 
     import planner.report.render as render
 
-    def broken(data):
+    def broken(data, tables=None):
         raise RuntimeError("renderer failed")
     monkeypatch.setattr(render, "render_report", broken)
     with pytest.raises(RuntimeError, match="renderer failed"):
@@ -481,3 +511,34 @@ def test_bus_names_escaped_in_report(tmp_path):
     assert "A &amp; B &quot;q&quot;" in html and "A & B" not in html
     report = json.loads((tmp_path / "out" / "named" / "report.json").read_text())
     assert report["data"]["base"]["peak"]["v_min_bus"] == 18
+    row = report["tables"]["base_case"][0]
+    assert row["v_min_bus"] == 18 and row["v_min_bus_name"] == "<script>alert(1)</script>"
+
+
+def test_base_case_checked_against_the_optimisers_bands():
+    """Generator buses with a set-point lever are held to their set-point range, in the base case too."""
+    result = run_study(read_study(STUDIES / "ieee14_setpoints.toml"), jobs=1)
+    base = result.base["peak"]
+    plan = result.alternatives[0].plan
+    c = base.flow.compiled
+    lo, hi = plan.bands["peak"]
+    assert (base.v_min == lo).all() and (base.v_max == hi).all()
+    band = dict(zip(c.bus_ids.tolist(), zip(base.v_min.tolist(), base.v_max.tolist())))
+    assert band[1] == (1.00, 1.06) and band[2] == (0.98, 1.10) and band[4] == (0.94, 1.10)
+    # the profile written for the report carries each bus's own band
+    prof = {p["bus"]: p for p in report_data(result)["base"]["peak"]["profile"]}
+    assert (prof[1]["v_min_pu"], prof[1]["v_max_pu"]) == (1.00, 1.06)
+
+
+def test_model_warnings_reach_the_report_assumptions(tmp_path):
+    # two generators on bus 1 with different setpoints: legal, probably a mistake; said, not refused
+    net = read_network(FEEDER).copy()
+    from planner.network.model import make_table
+    net.generators = make_table("generators", list(net.generators.to_dict("records")) +
+                                [{"gen_id": "S1b", "bus": 1, "mw": 0.0, "v_set_pu": 1.02}])
+    write_network(net, tmp_path / "twogen")
+    study = write_study(tmp_path, SMALL.format(net="twogen", extra=""), "twogen.toml")
+    data = report_data(run_study(read_study(study), jobs=1))
+    assert [a for a in data["assumptions"] if a.startswith("Model warning:")] == [
+        "Model warning: generators 'S1b': v_set_pu: setpoint 1.02 pu differs from 1 pu of generator 'S1' "
+        "on the same bus 1; the first one ('S1') is used."]

@@ -40,7 +40,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
     """
     from ..atomic import check_file_target, write_json
     from ..errors import InputError
-    from ..study.run import plan_to_dict, run_study
+    from ..study.run import plan_alternatives, plan_to_dict
     from ..study.spec import AlternativeSpec, read_study
 
     con = Console(quiet)
@@ -61,7 +61,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
     spec.alternatives = [AlternativeSpec(name="plan", description="every lever the study file enables")]
     progress = Progress(quiet)
     try:
-        _, plans = run_study(spec, progress=progress)
+        plans = plan_alternatives(spec, progress=progress, jobs=1)
     finally:
         progress.close()
     check_interrupted()       # a stop during the last solver call must not pass for a result

@@ -50,10 +50,13 @@ def run_study_file(path, out_dir=None, quiet=False) -> int:
     warn_about_model(con, spec.network_path)
     progress = Progress(quiet, iterations=spec.max_iterations)
     try:
-        data, plans = run_study(spec, progress=progress)
+        result = run_study(spec, progress=progress)
     finally:
         progress.close()
     check_interrupted()       # a stop during the last solver call must not pass for a result
+    from ..report.convert import report_data
+    data = report_data(result)
+    plans = [(a.spec, a.plan) for a in result.alternatives]
     files = report_files(data)
     files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
     from ..network.workbook import csv_files_workbook, have_openpyxl

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 from html import escape
 from typing import Any, Sequence
 
-__all__ = ["esc", "fmt", "Table", "html_table", "csv_text", "CSS"]
+__all__ = ["esc", "fmt", "Table", "html_table", "csv_text", "clean_number", "money_round", "CSS"]
 
 
 def esc(value: Any) -> str:
@@ -29,17 +29,42 @@ def _is_num(v) -> bool:
 
 
 # kind -> (format spec, unit suffix) for the kinds that need nothing more
-_FORMATS = {"pu": (".4f", ""), "mvar": (".3f", ""), "mwh": (",.1f", ""), "pct": (".1f", " %"),
-            "years": (".1f", ""), "ratio": (".2f", ""), "hours": (",.0f", ""), "scale": (".3f", "")}
+_FORMATS = {"pu": (".4f", ""), "mwh": (",.0f", ""), "pct": (".1f", " %"), "pct1": (".1f", ""),
+            "years": (".1f", ""), "ratio": (".2f", ""), "hours": (",.0f", ""), "scale": (".3f", ""),
+            "kv": ("g", ""), "pf": (".3f", ""), "num": (".4g", "")}
 
 
-def fmt(value: Any, kind: str, *, mw_decimals: int = 3, currency: str = "") -> str:
+def money_round(v: float) -> float:
+    """Money to three significant figures (a planning estimate is not good to the unit).
+
+    >>> money_round(3_848_546.2), money_round(96_000), money_round(4_483.0), money_round(-1234.5)
+    (3850000.0, 96000.0, 4480.0, -1230.0)
+    """
+    if v == 0 or not math.isfinite(v):
+        return v
+    digits = 3 - int(math.floor(math.log10(abs(v)))) - 1
+    return float(round(v, digits))
+
+
+def clean_number(v: float) -> float:
+    """A float without binary noise: 12 significant digits, far finer than any input.
+
+    >>> clean_number(3.5999999999999996), clean_number(0.9624999999999999), clean_number(1e-20)
+    (3.6, 0.9625, 1e-20)
+    """
+    return float(f"{v:.12g}")
+
+
+def fmt(value: Any, kind: str, *, mw_decimals: int = 3, mvar_decimals: int = 3, currency: str = "") -> str:
     """Format one value for display (plain text, not yet escaped).
 
-    kinds: text, int, pu, mw, mvar, mwh, money, pct, years, ratio, rate, hours, scale, bool.
+    kinds: text, int, pu, mw, mvar, mwh, money, money_axis, pct, pct1, years, ratio, rate, hours,
+    scale, kv, pf, num, bool.
 
     >>> fmt(0.91312, "pu"), fmt(1234567.4, "money", currency="EUR"), fmt(float("inf"), "years")
-    ('0.9131', 'EUR 1,234,567', 'never')
+    ('0.9131', 'EUR 1,230,000', 'never')
+    >>> fmt(3.5999999999999996, "mvar", mvar_decimals=1), fmt(1234.56, "mwh")
+    ('3.6', '1,235')
     >>> fmt(None, "mw"), fmt(0.05, "rate"), fmt(True, "bool")
     ('', '5.0 %', 'yes')
     """
@@ -60,8 +85,12 @@ def fmt(value: Any, kind: str, *, mw_decimals: int = 3, currency: str = "") -> s
         return f"{int(round(v)):,}"
     if kind == "mw":
         return f"{v:.{mw_decimals}f}"
+    if kind == "mvar":
+        return f"{v:.{mvar_decimals}f}"
     if kind == "money":
-        return f"{currency} {v:,.0f}".strip()
+        return f"{currency} {money_round(v):,.0f}".strip()
+    if kind == "money_axis":
+        return f"{v / 1e6:,.1f} M" if abs(v) >= 1e6 else f"{v / 1e3:,.0f} k" if abs(v) >= 1e3 else f"{v:,.0f}"
     if kind == "rate":
         return f"{v * 100:.1f} %"
     if kind in _FORMATS:
@@ -82,7 +111,7 @@ class Table:
 
 
 def html_table(table: Table, *, show: Sequence[str] | None = None, rows: Sequence[dict] | None = None,
-               caption: str = "", mw_decimals: int = 3, currency: str = "",
+               caption: str = "", mw_decimals: int = 3, mvar_decimals: int = 3, currency: str = "",
                row_class=None, css_class: str = "data") -> str:
     """Render (some columns / rows of) a :class:`Table` as an HTML table; all text escaped.
 
@@ -106,7 +135,7 @@ def html_table(table: Table, *, show: Sequence[str] | None = None, rows: Sequenc
         for key, _, kind in cols:
             v = r.get(key)
             text = v if isinstance(v, str) and kind != "text" else fmt(
-                v, kind, mw_decimals=mw_decimals, currency=currency)
+                v, kind, mw_decimals=mw_decimals, mvar_decimals=mvar_decimals, currency=currency)
             align = "num" if kind not in ("text", "bool") else "txt"
             cells.append(f'<td class="{align}">{esc(text)}</td>')
         out.append(tr + "".join(cells) + "</tr>")
@@ -123,7 +152,11 @@ def _csv_cell(v: Any) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
     if _is_num(v):
-        return repr(float(v)) if isinstance(v, float) else str(v)
+        if isinstance(v, float) or hasattr(v, "dtype"):
+            v = float(v)
+            # never inf / nan in a CSV: the cell stays empty and a note column says why
+            return repr(clean_number(v)) if math.isfinite(v) else ""
+        return str(v)
     s = str(v)
     # A spreadsheet would run a cell starting with these as a formula; a leading quote keeps it
     # text (common practice against formula injection).
@@ -141,7 +174,7 @@ def _looks_numeric(s: str) -> bool:
 
 
 def csv_text(table: Table) -> str:
-    """CSV of a table, header = column keys, full float precision.
+    """CSV of a table, header = column keys, floats to 12 significant digits (no binary noise).
 
     >>> print(csv_text(Table("t", [("bus", "Bus", "int"), ("v_pu", "V", "pu")],
     ...                          [{"bus": 18, "v_pu": 0.91312}])), end="")
@@ -167,7 +200,7 @@ h1 { font-size: 26px; margin: 0 0 6px; }
 h2 { font-size: 21px; margin: 34px 0 10px; padding-bottom: 4px; border-bottom: 1px solid #c8c8c8; }
 h3 { font-size: 17px; margin: 26px 0 8px; }
 h3.alt { border-top: 2px solid #9cc3e0; padding-top: 10px; margin-top: 30px; }
-h2 + h3.alt { border-top: none; padding-top: 0; margin-top: 14px; }
+h2 + .althead h3.alt { border-top: none; padding-top: 0; margin-top: 14px; }
 p.meta { color: #444; margin: 2px 0; font-size: 14px; }
 .summary { border: 1px solid #9cc3e0; background: #f3f8fc; padding: 10px 16px; margin: 14px 0; }
 .summary ul { margin: 6px 0; padding-left: 20px; }
@@ -188,6 +221,8 @@ table.data.compact th, table.data.compact td { padding: 3px 6px; }
 table.data th { background: #eef1f4; font-weight: 600; }
 table.data td.num, table.data th.num { text-align: right; }
 table.data td.num { white-space: nowrap; }
+table.data.compact td.txt:first-child { white-space: nowrap; }
+table.data.wrapnum td.num { white-space: normal; }
 table.data td.txt, table.data th.txt { text-align: left; }
 table.data.wide td:first-child { white-space: normal; min-width: 12em; }
 table.data tr.unverified td { color: #666; font-style: italic; }
@@ -199,6 +234,11 @@ figure { margin: 10px 0 20px; }
 figure svg { display: block; }
 figcaption { font-size: 13px; color: #444; margin-top: 4px; }
 .note { font-size: 13px; color: #444; }
+p.lead { font-size: 17px; margin: 6px 0 10px; }
+nav.toc { font-size: 13px; margin-top: 8px; color: #444; }
+nav.toc a { color: #0a4f80; text-decoration: none; }
+table.data.hash td { font-family: ui-monospace, 'DejaVu Sans Mono', monospace; font-size: 11px;
+  word-break: break-all; }
 p.how { font-size: 13px; color: #444; margin: 4px 0 10px; }
 footer { margin-top: 40px; font-size: 12px; color: #555; border-top: 1px solid #c8c8c8;
   padding-top: 8px; }
@@ -211,7 +251,13 @@ footer { margin-top: 40px; font-size: 12px; color: #555; border-top: 1px solid #
   table.data.compact { font-size: 8pt; }
   table.data th, table.data td, table.data.compact th, table.data.compact td { padding: 2px 5px; }
   .tablewrap { overflow: visible; }
-  figure, table.data tr, .summary, .warn, .good { break-inside: avoid; page-break-inside: avoid; }
+  figure, table.data tr, .summary, .warn, .good, dl.criteria, .althead { break-inside: avoid;
+    page-break-inside: avoid; }
+  /* short tables move whole to the next page (no orphan rows); long ones repeat their header */
+  table.data thead { display: table-header-group; }
+  .tablewrap { break-inside: avoid; page-break-inside: avoid; }
+  p { orphans: 3; widows: 3; }
+  nav.toc { display: none; }
   h2, h3, table.data caption { break-after: avoid; page-break-after: avoid; }
   .summary, .warn, .good, table.data th, table.data tr.best td { -webkit-print-color-adjust: exact;
     print-color-adjust: exact; }

@@ -13,7 +13,8 @@ import math
 from html import escape
 from typing import Callable, Iterable, Sequence
 
-__all__ = ["nice_ticks", "line_chart", "bar_chart", "convergence_chart", "PALETTE", "BASE_COLOR"]
+__all__ = ["nice_ticks", "line_chart", "bar_chart", "convergence_chart", "profile_chart", "tornado_chart",
+           "network_chart", "PALETTE", "BASE_COLOR"]
 
 PALETTE = ["#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000"]
 BASE_COLOR = "#6b6b6b"
@@ -405,3 +406,225 @@ def convergence_chart(iterations: Sequence[int], predicted: Sequence[float | Non
                    "dash": "6 4", "marker": True})
     return line_chart(series, title=title, x_label="optimiser iteration", y_label=y_label,
                       width=width, height=height, x_integer=True)
+
+
+_SHAPES = ["circle", "square", "triangle", "diamond", "cross"]
+
+
+def _shape(x, y, color, shape, r=3.6) -> str:
+    """A point marker by shape (series differ by shape as well as colour, for grey-scale prints)."""
+    if shape == "square":
+        return (f'<rect x="{_num(x - r)}" y="{_num(y - r)}" width="{_num(2 * r)}" height="{_num(2 * r)}" '
+                f'fill="{color}"/>')
+    if shape == "triangle":
+        return (f'<polygon points="{_num(x)},{_num(y - r - 0.8)} {_num(x - r - 0.4)},{_num(y + r - 0.6)} '
+                f'{_num(x + r + 0.4)},{_num(y + r - 0.6)}" fill="{color}"/>')
+    if shape == "diamond":
+        return (f'<polygon points="{_num(x)},{_num(y - r - 0.6)} {_num(x + r + 0.6)},{_num(y)} '
+                f'{_num(x)},{_num(y + r + 0.6)} {_num(x - r - 0.6)},{_num(y)}" fill="{color}"/>')
+    if shape == "cross":
+        return (f'<path d="M{_num(x - r)} {_num(y - r)}L{_num(x + r)} {_num(y + r)}M{_num(x - r)} {_num(y + r)}'
+                f'L{_num(x + r)} {_num(y - r)}" stroke="{color}" stroke-width="2"/>')
+    return f'<circle cx="{_num(x)}" cy="{_num(y)}" r="{_num(r)}" fill="{color}"/>'
+
+
+def profile_chart(groups: Sequence[tuple[str, Sequence[str]]], series: Sequence[dict],
+                  band_lo: Sequence[float], band_hi: Sequence[float], *, title: str,
+                  y_label: str = "voltage (pu)", width: int = 980, height: int = 380) -> str:
+    """Bus voltages as point markers, buses grouped by voltage level (no line joins unrelated
+    buses), each bus's own band shaded behind it and every point outside its band ringed in red.
+
+    ``groups``: ``[(label, [bus label, ...]), ...]`` in drawing order; ``series``:
+    ``[{"name", "y": [value or None per bus, in group order], "color"?}]``; ``band_lo`` /
+    ``band_hi`` per bus in the same order.
+
+    >>> s = profile_chart([("11 kV", ["1", "2"])], [{"name": "base", "y": [0.94, 1.0]}],
+    ...                   [0.95, 0.95], [1.05, 1.05], title="t")
+    >>> s.count('class="breach"')      # bus 1 is below its band
+    1
+    """
+    labels = [b for _, buses in groups for b in buses]
+    n = len(labels)
+    if n == 0:
+        raise ValueError("chart: profile needs at least one bus")
+    gap = 1.2                                      # slots between voltage-level groups
+    pos, x = [], 0.0
+    spans = []
+    for _, buses in groups:
+        start = x
+        for _ in buses:
+            pos.append(x)
+            x += 1.0
+        spans.append((start, x - 1.0))
+        x += gap
+    entries = [{"name": s["name"], "color": s.get("color") or PALETTE[k % len(PALETTE)],
+                "marker": s.get("shape") or _SHAPES[k % len(_SHAPES)], "line": False}
+               for k, s in enumerate(series)]
+    entries.append({"name": "outside its own band", "color": "#b2182b", "marker": "hollow", "line": False})
+    placed, legend_bottom = _legend_layout(entries, width, 34)
+    f = _Frame(width, height + legend_bottom - 34, top=legend_bottom + 6, bottom=64)
+    vals = [v for s in series for v in s["y"] if v is not None] + list(band_lo) + list(band_hi)
+    ylo, yhi, yt = nice_ticks(min(vals), max(vals))
+    f.set_x(-0.8, x - gap - 0.2)
+    f.set_y(ylo, yhi)
+    out = _open_svg(width, f.h, title)
+    out += _y_axis(f, yt, y_label)
+    half = 0.5 * (f.px(1.0) - f.px(0.0))
+    out.append('<g class="band">')
+    for i in range(n):
+        xa, xb = f.px(pos[i]) - half, f.px(pos[i]) + half
+        ya, yb = f.py(band_hi[i]), f.py(band_lo[i])
+        out.append(f'<rect x="{_num(xa)}" y="{_num(ya)}" width="{_num(xb - xa)}" height="{_num(yb - ya)}" '
+                   f'fill="#d9ead3" stroke="none"/>')
+    out.append("</g>")
+    out.append(f'<line x1="{_num(f.x0)}" y1="{_num(f.y1)}" x2="{_num(f.x1)}" y2="{_num(f.y1)}" '
+               f'stroke="#222" stroke-width="1"/>')
+    for (label, buses), (a, b) in zip(groups, spans):
+        xa, xb = f.px(a) - half, f.px(b) + half
+        out.append(f'<line x1="{_num(xa)}" y1="{_num(f.y1 + 30)}" x2="{_num(xb)}" y2="{_num(f.y1 + 30)}" '
+                   f'stroke="#555" stroke-width="1"/>')
+        out.append(f'<text x="{_num((xa + xb) / 2)}" y="{_num(f.y1 + 46)}" font-size="{_LABEL_PX}" '
+                   f'text-anchor="middle">{_e(label)}</text>')
+    shown = dict(_thin_labels(labels, (f.x1 - f.x0) * n / max(x - gap, 1)))
+    for i, lab in shown.items():
+        out.append(f'<text x="{_num(f.px(pos[i]))}" y="{_num(f.y1 + 16)}" font-size="10" '
+                   f'text-anchor="middle">{_e(lab)}</text>')
+    for k, s in enumerate(series):
+        color, shape = entries[k]["color"], entries[k]["marker"]
+        out.append(f'<g class="series" data-name="{_e(s["name"])}">')
+        for i, v in enumerate(s["y"]):
+            if v is None:
+                continue
+            out.append(_shape(f.px(pos[i]), f.py(v), color, shape))
+        out.append("</g>")
+    for s in series:
+        for i, v in enumerate(s["y"]):
+            if v is not None and (v < band_lo[i] - 1e-6 or v > band_hi[i] + 1e-6):
+                out.append(f'<circle class="breach" cx="{_num(f.px(pos[i]))}" cy="{_num(f.py(v))}" r="7" '
+                           f'fill="none" stroke="#b2182b" stroke-width="1.8"/>')
+    out += _legend_svg(placed, "line")
+    out.append("</svg>")
+    return "".join(out)
+
+
+def tornado_chart(rows: Sequence[dict], base: float, *, title: str, value_format=None,
+                  width: int = 900) -> str:
+    """Horizontal bars from ``base`` to each input's low and high result.
+
+    ``rows``: ``[{"label", "low", "high", "low_text", "high_text"}]``.
+
+    >>> s = tornado_chart([{"label": "rate", "low": 5, "high": -2, "low_text": "3 %",
+    ...                     "high_text": "7 %"}], 1.0, title="NPV")
+    >>> s.count("<rect") - 1           # two bars (plus the background)
+    2
+    """
+    fmtv = value_format or (lambda v: f"{v:,.0f}")
+    row_h = 40
+    height = 70 + row_h * len(rows) + 40
+    left = 190
+    f = _Frame(width, height, top=44, left=left, right=40, bottom=40)
+    vals = [base] + [r[k] for r in rows for k in ("low", "high") if r.get(k) is not None]
+    lo, hi, ticks = nice_ticks(min(vals), max(vals), count=5)
+    # room beside the bars for their value labels
+    text_px = max([_text_width(r.get(k + "_text", ""), 11) for r in rows for k in ("low", "high")] + [0]) + 8
+    plot_px = width - left - 40
+    pad = (hi - lo) * text_px / max(plot_px - 2 * text_px, 1.0)
+    f.set_x(lo - pad, hi + pad)
+    out = _open_svg(width, height, title)
+    for t in ticks:
+        out.append(f'<line class="tick" x1="{_num(f.px(t))}" y1="{_num(f.y0)}" x2="{_num(f.px(t))}" '
+                   f'y2="{_num(f.y1)}" stroke="#e2e2e2"/>')
+        out.append(f'<text x="{_num(f.px(t))}" y="{_num(f.y1 + 16)}" font-size="{_TICK_PX}" '
+                   f'text-anchor="middle">{_e(fmtv(t))}</text>')
+    for i, r in enumerate(rows):
+        yc = f.y0 + 14 + i * row_h
+        out.append(f'<text x="{left - 8}" y="{_num(yc + 5)}" font-size="{_LABEL_PX}" '
+                   f'text-anchor="end">{_e(r["label"])}</text>')
+        for key, color in (("low", PALETTE[5]), ("high", PALETTE[1])):
+            v = r.get(key)
+            if v is None:
+                continue
+            xa, xb = sorted((f.px(base), f.px(v)))
+            out.append(f'<rect x="{_num(xa)}" y="{_num(yc - 9)}" width="{_num(max(xb - xa, 1))}" height="18" '
+                       f'fill="{color}" opacity="0.85"/>')
+            anchor, tx = ("end", xa - 4) if f.px(v) < f.px(base) else ("start", xb + 4)
+            out.append(f'<text x="{_num(tx)}" y="{_num(yc + 4)}" font-size="11" text-anchor="{anchor}">'
+                       f'{_e(r.get(key + "_text", ""))}</text>')
+    out.append(f'<line x1="{_num(f.px(base))}" y1="{_num(f.y0 - 4)}" x2="{_num(f.px(base))}" '
+               f'y2="{_num(f.y1)}" stroke="#222" stroke-width="1.5"/>')
+    out.append("</svg>")
+    return "".join(out)
+
+
+def network_chart(layers: Sequence[tuple[str, Sequence[int]]], edges: Sequence[dict], *, title: str,
+                  names: dict | None = None, marks: dict | None = None, sources: Sequence[int] = (),
+                  width: int = 980) -> str:
+    """A layered one-line sketch from the topology alone: one row of buses per voltage level
+    (highest at the top), lines within a row drawn as arcs, transformers between rows dashed;
+    ``marks`` (bus -> short text) flags bank sites; ``sources`` (supply / generator buses) are
+    drawn as squares. Positions within a row follow the buses they connect to above (one
+    barycentre sweep), which keeps most connections short.
+
+    >>> s = network_chart([("33 kV", [1]), ("11 kV", [2, 3])],
+    ...                   [{"from_bus": 1, "to_bus": 2, "element": "transformer"},
+    ...                    {"from_bus": 2, "to_bus": 3, "element": "line"}],
+    ...                   title="net", marks={3: "bank"})
+    >>> s.count('class="bus"'), s.count('class="site"')
+    (3, 1)
+    """
+    names, marks = names or {}, marks or {}
+    adj: dict = {}
+    for e in edges:
+        adj.setdefault(e["from_bus"], []).append(e["to_bus"])
+        adj.setdefault(e["to_bus"], []).append(e["from_bus"])
+    row_h = 110
+    left = 84
+    height = 50 + row_h * len(layers) + 10
+    xpos: dict = {}
+    ordered = []
+    for r, (label, buses) in enumerate(layers):
+        buses = list(buses)
+        if r > 0:
+            def bary(b, _buses=buses):
+                up = [xpos[o] for o in adj.get(b, []) if o in xpos]
+                return (sum(up) / len(up) if up else 1e9, b)
+            buses.sort(key=bary)
+        span = width - left - 30
+        for i, b in enumerate(buses):
+            xpos[b] = left + span * (i + 0.5) / len(buses)
+        ordered.append((label, buses))
+    ypos = {b: 60 + r * row_h for r, (_, buses) in enumerate(ordered) for b in buses}
+    out = _open_svg(width, height, title)
+    for r, (label, _) in enumerate(ordered):
+        y = 60 + r * row_h
+        out.append(f'<text x="8" y="{_num(y + 4)}" font-size="{_LABEL_PX}" font-weight="600">{_e(label)}</text>')
+    for e in edges:
+        a, b = e["from_bus"], e["to_bus"]
+        if a not in xpos or b not in xpos:
+            continue
+        x1, y1, x2, y2 = xpos[a], ypos[a], xpos[b], ypos[b]
+        if y1 == y2:
+            lift = min(40, 10 + abs(x2 - x1) * 0.15)
+            out.append(f'<path d="M{_num(x1)} {_num(y1)}Q{_num((x1 + x2) / 2)} {_num(y1 - lift)} '
+                       f'{_num(x2)} {_num(y2)}" fill="none" stroke="#5a5a5a" stroke-width="1.2"/>')
+        else:
+            dash = ' stroke-dasharray="5 3"' if e.get("element") == "transformer" else ""
+            out.append(f'<line x1="{_num(x1)}" y1="{_num(y1)}" x2="{_num(x2)}" y2="{_num(y2)}" '
+                       f'stroke="#5a5a5a" stroke-width="1.2"{dash}/>')
+    for b, x in xpos.items():
+        y = ypos[b]
+        tip = f"{b} {names.get(b, '')}".strip()
+        if b in sources:
+            out.append(f'<rect class="bus" x="{_num(x - 6)}" y="{_num(y - 6)}" width="12" height="12" '
+                       f'fill="#222"><title>{_e(tip)}</title></rect>')
+        else:
+            out.append(f'<circle class="bus" cx="{_num(x)}" cy="{_num(y)}" r="5" fill="#ffffff" '
+                       f'stroke="#222" stroke-width="1.4"><title>{_e(tip)}</title></circle>')
+        out.append(f'<text x="{_num(x)}" y="{_num(y + 18)}" font-size="10" text-anchor="middle">{_e(b)}</text>')
+        if b in marks:
+            out.append(f'<g class="site"><polygon points="{_num(x - 7)},{_num(y + 24)} {_num(x + 7)},{_num(y + 24)} '
+                       f'{_num(x)},{_num(y + 34)}" fill="{PALETTE[1]}"/>'
+                       f'<text x="{_num(x)}" y="{_num(y + 46)}" font-size="10" text-anchor="middle" '
+                       f'fill="{PALETTE[1]}" font-weight="600">{_e(marks[b])}</text></g>')
+    out.append("</svg>")
+    return "".join(out)

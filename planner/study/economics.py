@@ -40,6 +40,7 @@ __all__ = [
     "Economics",
     "EconomicResult",
     "evaluate",
+    "npv_sensitivity",
 ]
 
 
@@ -372,3 +373,60 @@ def evaluate(losses_before_mw: Mapping[str, float], losses_after_mw: Mapping[str
         bank_life_years=int(life), replacement_years=list(pv.replacement_years),
         residual_value=pv.residual_value,
     )
+
+
+def npv_sensitivity(losses_before_mw: Mapping[str, float], losses_after_mw: Mapping[str, float],
+                    hours: Mapping[str, float], capital_cost: float, econ: Economics,
+                    peak_level: str, *, value_change: float = 0.25, rate_change: float = 0.02,
+                    load_change: float = 0.10) -> list:
+    """NPV of one plan with one input moved down and up at a time (a tornado table).
+
+    Rows: energy and demand value x (1 -/+ ``value_change``); discount rate -/+ ``rate_change``
+    (not below zero); load -/+ ``load_change``. The load row scales the losses before and after
+    by the square of the load factor (series losses go with current squared, common practice;
+    an approximation: the plan's settings are not re-optimised or re-solved at the new load).
+
+    >>> e = Economics(energy_value_per_mwh=80.0, discount_rate=0.05, horizon_years=20)
+    >>> rows = npv_sensitivity({"peak": 0.2}, {"peak": 0.1}, {"peak": 8760}, 50_000.0, e, "peak")
+    >>> [r["input"] for r in rows]
+    ['energy and demand value', 'discount rate', 'load']
+    >>> round(rows[0]["npv_base"])      # 0.1 MW * 8760 h * 80 = 70,080 a year; x 12.46221 - 50,000
+    823352
+    >>> round(rows[0]["npv_low"]), round(rows[0]["npv_high"])   # 52,560 and 87,600 a year
+    (605014, 1041690)
+    >>> round(rows[2]["npv_high"])      # losses and savings x 1.21: 84,797 a year (hand sum)
+    1006756
+    """
+    from dataclasses import replace
+
+    def npv(before, after, e):
+        return evaluate(before, after, hours, capital_cost, e, peak_level).npv
+
+    base = npv(losses_before_mw, losses_after_mw, econ)
+
+    def scaled_value(f):
+        v = econ.energy_value_per_mwh
+        v = {k: x * f for k, x in v.items()} if isinstance(v, Mapping) else v * f
+        return replace(econ, energy_value_per_mwh=v, demand_value_per_kw_year=econ.demand_value_per_kw_year * f)
+
+    def scaled_load(f):
+        return ({k: x * f * f for k, x in losses_before_mw.items()},
+                {k: x * f * f for k, x in losses_after_mw.items()})
+
+    r = econ.discount_rate
+    r_lo = max(0.0, r - rate_change)
+    rows = [
+        {"input": "energy and demand value", "low": 1 - value_change, "high": 1 + value_change,
+         "unit": "times the study value",
+         "npv_low": npv(losses_before_mw, losses_after_mw, scaled_value(1 - value_change)),
+         "npv_high": npv(losses_before_mw, losses_after_mw, scaled_value(1 + value_change))},
+        {"input": "discount rate", "low": r_lo, "high": r + rate_change, "unit": "per year",
+         "npv_low": npv(losses_before_mw, losses_after_mw, replace(econ, discount_rate=r_lo)),
+         "npv_high": npv(losses_before_mw, losses_after_mw, replace(econ, discount_rate=r + rate_change))},
+        {"input": "load", "low": 1 - load_change, "high": 1 + load_change, "unit": "times the study load",
+         "npv_low": npv(*scaled_load(1 - load_change), econ),
+         "npv_high": npv(*scaled_load(1 + load_change), econ)},
+    ]
+    for row in rows:
+        row["npv_base"] = base
+    return rows

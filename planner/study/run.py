@@ -1,12 +1,16 @@
-"""Run a loss-reduction study: every alternative optimised across the load levels, verified
-by AC load flow at each level, priced, and written up as a report folder.
+"""Run a loss-reduction study: every alternative optimised across the load levels (side by side
+in worker processes), verified by AC load flow at each level, and priced.
 
-Public functions: :func:`level_cases`, :func:`candidate_sites`, :func:`run_study` (returns the
-report data and the plans). The ``planner study`` command is :mod:`planner.commands.study`.
+Public functions: :func:`level_cases`, :func:`candidate_sites`, :func:`plan_alternatives` (the
+plans only, for ``planner plan``), :func:`run_study` (a typed
+:class:`~planner.study.result.StudyResult`). The report is made from the result by
+:func:`planner.report.convert.report_data`; the ``planner study`` command is
+:mod:`planner.commands.study`.
 """
 from __future__ import annotations
 
 import datetime as _dt
+import os
 import re
 from pathlib import Path
 
@@ -16,8 +20,9 @@ from ..network.compile import PQ, compile_network
 from ..network.io import read_network
 from ..optimize.engine import LevelCase, PlanResult, plan as make_plan
 from ..optimize.levers import BankSite, Levers, Limits, Objective, Options
-from .economics import Economics, capital_recovery_factor, evaluate
-from .spec import StudySpec, check_buses, read_study
+from .economics import Economics, capital_recovery_factor, evaluate, npv_sensitivity
+from .result import AlternativeResult, BaseLevel, InputFile, StudyResult, StudyStatus, sha256_of
+from .spec import StudySpec, check_buses
 
 
 def scaled_network(net, p_scale=1.0, q_scale=1.0, bus_scale=None):
@@ -94,189 +99,258 @@ def _objective_weights(spec: StudySpec, econ: Economics):
     return w, Objective(kind="cost", loss_value_per_mw=1.0, capital_factor=factor)
 
 
-def _flow_summary(res, limits_lo, limits_hi, names_by_bus):
-    c = res.compiled
-    vm = np.abs(res.v)
-    alive = np.flatnonzero(c.alive)
-    lo = alive[np.argmin(vm[alive])]
-    hi = alive[np.argmax(vm[alive])]
-    viol = []
-    for i in alive:
-        if vm[i] < limits_lo[i] - 1e-6 or vm[i] > limits_hi[i] + 1e-6:
-            viol.append({"bus": int(c.bus_ids[i]), "name": names_by_bus.get(int(c.bus_ids[i]), ""),
-                         "v_pu": float(vm[i]),
-                         "limit": float(limits_lo[i] if vm[i] < limits_lo[i] else limits_hi[i])})
-    gens = []
-    if res.generators is not None:
-        for g in res.generators.itertuples():
-            if g.at_limit:
-                gens.append({"gen": str(g.gen_id), "bus": int(g.bus), "mvar": float(g.mvar),
-                             "limit": "q_max" if g.at_limit == "max" else "q_min"})
-    return {
-        "converged": bool(res.converged), "losses_mw": float(res.losses_mw),
-        "v_min_pu": float(vm[lo]), "v_min_bus": int(c.bus_ids[lo]),
-        "v_max_pu": float(vm[hi]), "v_max_bus": int(c.bus_ids[hi]),
-        "violations": viol, "gens_at_limit": gens,
-        "profile": [{"bus": int(c.bus_ids[i]), "name": names_by_bus.get(int(c.bus_ids[i]), ""),
-                     "v_pu": float(vm[i])} for i in alive],
-    }
+def _band_source(spec: StudySpec, plans) -> int:
+    """Index of the plan whose bands the base case is checked against: one with the setpoint lever
+    when the study gives generator ranges (the optimiser then holds those buses to the range)."""
+    if spec.gen_range:
+        for k, (alt, _) in enumerate(plans):
+            if alt.setpoints:
+                return k
+    return 0
 
 
-def _band_arrays(spec: StudySpec, c, level):
-    lo = np.full(c.n, level.v_min_pu if level.v_min_pu is not None else spec.v_min_pu)
-    hi = np.full(c.n, level.v_max_pu if level.v_max_pu is not None else spec.v_max_pu)
-    for b, (a, z) in spec.bus_limits.items():
-        i = c.index_of([b])[0]
-        lo[i], hi[i] = a, z
-    return lo, hi
+def _levers(spec: StudySpec, alt, sites) -> Levers:
+    return Levers(
+        sites=sites if alt.banks else [],
+        max_new_sites=alt.max_new_sites if alt.max_new_sites is not None else spec.banks.max_new_sites,
+        budget=alt.budget if alt.budget is not None else spec.banks.budget,
+        existing_shunts=spec.banks.existing_switchable and alt.banks,
+        gen_v_range=spec.gen_range if alt.setpoints else None,
+        taps=spec.taps and alt.taps, setpoints_per_level=spec.setpoints_per_level)
 
 
-def run_study(spec: StudySpec, progress=None) -> tuple[dict, list]:
-    """Optimise and verify every alternative of a study; returns (report data, plans).
-
-    ``progress`` is called with short text lines (levels, alternatives, iterations).
-    """
-    say = progress or (lambda text: None)
-    net = read_network(spec.network_path)
-    check_buses(spec, net)
-    names_by_bus = {int(b): str(n).strip() for b, n in zip(net.buses["bus"], net.buses["name"])}
-    econ = _economics(spec)
-    weights, objective = _objective_weights(spec, econ)
-    cases = level_cases(net, spec, weights)
-    hours = {lv.name: lv.hours for lv in spec.levels}
-    sites = candidate_sites(net, spec)
-    c0 = compile_network(net)
-    limits = Limits(v_min=spec.v_min_pu, v_max=spec.v_max_pu, per_bus=spec.bus_limits,
-                    ratings=spec.ratings, q_limits=spec.q_limits)
-    options = Options(max_iterations=spec.max_iterations, mip_gap=spec.mip_gap, time_limit_s=spec.step_seconds,
-                      merit_rel_tolerance=spec.rel_tolerance)
-    data = {
-        "title": spec.title, "network": net.name or spec.network_path.name,
-        "created": _dt.datetime.now().strftime("%Y-%m-%d %H:%M"),
-        "question": spec.question, "currency": spec.currency, "peak_level": spec.peak_level,
-        "criteria": {"v_min_pu": spec.v_min_pu, "v_max_pu": spec.v_max_pu,
-                     "branch loading": "within rating" if spec.ratings else "not checked",
-                     "generator reactive output": "within limits" if spec.q_limits else "not checked",
-                     "objective": ("value of annual energy and peak-demand losses plus annualised capital"
-                                   if spec.objective == "cost" else "annual energy losses")},
-        "levels": [{"name": lv.name, "hours": lv.hours, "scale_p": lv.p_scale, "scale_q": lv.q_scale}
-                   for lv in spec.levels],
-        "base": {}, "alternatives": [],
-        "assumptions": [
-            "Loads are scaled uniformly per level (with any per-bus factors in the study file); "
-            "generator active outputs keep their schedule and the slack bus takes up the balance.",
-            "A capacitor bank's rating is its output at 1.0 pu voltage; it injects rating x V^2.",
-            "Fixed units are in service at every level; switched units are set per level.",
-            f"Economics: discount rate {econ.discount_rate:.1%}, horizon {econ.horizon_years} years, "
-            f"bank life {econ.life} years; energy and demand values as in the study file.",
-            "Every figure shown as a result comes from a full AC Newton-Raphson load flow of the exact "
-            "settings, with generator reactive limits enforced; linear predictions are shown only beside them.",
-        ],
-    }
-    plans = []
-    say(f"{len(cases)} load levels: " + ", ".join(lc.name for lc in cases))
-    for k, alt in enumerate(spec.alternatives):
-        say(f"alternative {k + 1}/{len(spec.alternatives)}: {alt.name}")
-        levers = Levers(
-            sites=sites if alt.banks else [],
-            max_new_sites=alt.max_new_sites if alt.max_new_sites is not None else spec.banks.max_new_sites,
-            budget=alt.budget if alt.budget is not None else spec.banks.budget,
-            existing_shunts=spec.banks.existing_switchable and alt.banks,
-            gen_v_range=spec.gen_range if alt.setpoints else None,
-            taps=spec.taps and alt.taps, setpoints_per_level=spec.setpoints_per_level)
-
-        def log(entry, _alt=alt):
-            worth = _merit_text(spec, entry, weights)
-            if entry.get("polish"):
-                say(f"  {_alt.name}: local check of one-unit moves, {worth}")
-            else:
-                say(f"  {_alt.name}: iteration {entry['iteration']}, "
-                    f"{'accepted' if entry['accepted'] else 'rejected'}, {worth}")
-        plan = make_plan(cases, levers, limits, objective, options, progress=log)
-        plans.append((alt, plan))
-        if not data["base"]:
-            for l, lc in enumerate(cases):
-                lo, hi = _band_arrays(spec, c0, spec.levels[l])
-                fr = plan.flows_before[lc.name]
-                if fr.generators is None:   # base flows were solved without tables
-                    from ..flow.newton import solve_flow
-                    fr = solve_flow(lc.network)
-                data["base"][lc.name] = _flow_summary(fr, lo, hi, names_by_bus)
-        data["alternatives"].append(_alternative_data(spec, alt, plan, cases, c0, names_by_bus, hours, econ))
-    if spec.proof is not None and spec.proof.any:      # N-1, hourly and bank checks (planner/proof)
-        from ..proof.run import prove_study
-        data["proof"], data["proof_frames"] = prove_study(spec, net, cases, plans, spec.proof, progress=progress)
-    return data, plans
-
-
-def _merit_text(spec: StudySpec, entry, weights) -> str:
+def _merit_text(objective: str, currency: str, weight_sum: float, entry) -> str:
     """The optimiser's objective in the units it has: money a year, or hour-weighted mean MW.
     While limits are broken a penalty in the same units is part of it, and the text says so."""
     merit = entry["merit"]
+    if merit is None:
+        return "proposed before, not solved again" if entry.get("repeat") else "not checked by AC load flow"
     if not np.isfinite(merit):
         return "no converged load flow"
-    if spec.objective == "cost":
-        cur = f"{spec.currency} " if spec.currency else ""
+    if objective == "cost":
+        cur = f"{currency} " if currency else ""
         text = f"objective {cur}{merit:,.0f} a year"
     else:
-        text = f"objective {merit / (float(np.sum(weights)) or 1.0):.4f} MW mean losses"
+        text = f"objective {merit / (weight_sum or 1.0):.4f} MW mean losses"
     if (entry.get("violation") or 0) > 1e-9:
         text += ", limits broken (penalty included)"
     return text
 
 
-def _alternative_data(spec, alt, plan: PlanResult, cases, c0, names_by_bus, hours, econ):
-    names = [lc.name for lc in cases]
-    banks = []
-    for b in plan.banks:
-        for kind, units in (("fixed", b["fixed_units"]), ("switched", b["switched_units"])):
-            if units:
-                steps = ({n: int(units) for n in names} if kind == "fixed"
-                         else {n: int(b["steps_by_level"][n]) for n in names})
-                banks.append({"bus": b["bus"], "name": names_by_bus.get(b["bus"], ""), "units": int(round(units)),
-                              "unit_mvar": b["unit_mvar"], "mvar": float(units * b["unit_mvar"]), "kind": kind,
-                              "steps_by_level": steps})
-    gen_names = {}
-    for g in cases[0].network.generators.itertuples():
-        gen_names.setdefault(int(g.bus), str(g.gen_id))
-    setpoints = {n: [{"gen": gen_names.get(s["bus"], ""), "bus": s["bus"], "v_pu": s["v_pu"]}
-                     for s in plan.setpoints[n]] for n in names}
-    taps = {n: [{"branch": t["xfmr_id"], "from_bus": t["from_bus"], "to_bus": t["to_bus"], "ratio": t["ratio"]}
-                for t in plan.taps[n]] for n in names}
-    levels = {}
-    for l, n in enumerate(names):
-        fr = plan.flows_after[n]
-        lo, hi = plan.bands[n]      # the bands the optimiser verified against
-        ok = bool(fr.converged and not [v for v in plan.violations if v.level == n])
-        summary = _flow_summary(fr, lo, hi, names_by_bus) if fr.converged else {"losses_mw": None}
-        summary.update({"verified": ok, "predicted_mw": plan.losses_predicted_mw.get(n),
-                        "other_violations": [v.text() for v in plan.violations
-                                             if v.level == n and v.kind != "voltage"]})
-        if not fr.converged:
-            summary["losses_mw"] = None
-        levels[n] = summary
-    total_h = sum(hours.values())
-    conv = []
-    for e in plan.log:
-        ac = e.get("ac_mw")
-        pred = e.get("predicted_mw")
-        mean = lambda d: (float(sum(d[n] * hours[n] for n in names) / total_h)  # noqa: E731
-                          if d is not None and all(np.isfinite(d[n]) for n in names) else None)
-        conv.append({"iteration": int(e["iteration"]), "predicted_mw": mean(pred), "ac_mw": mean(ac),
-                     "trust": e.get("radius_v"), "accepted": bool(e["accepted"]),
-                     "worst_violation": e.get("worst_violation")})
-    out = {
-        "name": alt.name, "description": alt.description, "verified": bool(plan.verified),
-        "message": plan.message, "status": plan.stop_reason or plan.status.value, "capital_cost": plan.capital_cost,
-        "banks": banks, "setpoints": setpoints, "taps": taps, "levels": levels, "convergence": conv,
-        "existing_steps": plan.existing_steps, "ac_flows": plan.ac_flows, "milp_solves": plan.milp_solves,
-        "seconds": plan.seconds,
-        "remaining_violations": [v.text() for v in plan.violations],
-    }
-    if plan.verified:
-        res = evaluate(plan.losses_before_mw, plan.losses_after_mw, hours, plan.capital_cost, econ, spec.peak_level)
-        out["economics"] = res.as_dict()
+def _progress_line(alt_name: str, entry: dict, merit=("losses", "", 1.0)) -> str:
+    """One progress line per optimiser step: the objective in its units and the worst breach.
+
+    >>> _progress_line("A", {"iteration": 2, "accepted": True, "merit": 0.5, "violation": 0.0},
+    ...                ("losses", "", 2.0))
+    '  A: iteration 2 accepted, objective 0.2500 MW mean losses; every limit met'
+    """
+    worst = entry.get("worst_violation")
+    what = _merit_text(*merit, entry) + (f"; worst breach {worst}" if worst else "; every limit met")
+    if entry.get("polish"):
+        return f"  {alt_name}: one-unit move kept, {what}"
+    return (f"  {alt_name}: iteration {entry['iteration']} "
+            f"{'accepted' if entry['accepted'] else 'rejected'}, {what}")
+
+
+_QUEUE = None       # progress queue of a worker process (set by _worker_init)
+
+
+def _worker_init(queue):
+    global _QUEUE
+    _QUEUE = queue
+
+
+def _optimize_one(args):
+    """Worker: optimise one alternative (runs in a child process when ``jobs > 1``)."""
+    cases, levers, limits, objective, options, alt_name, merit = args
+    queue = _QUEUE
+
+    def log(entry):
+        queue.put(_progress_line(alt_name, entry, merit))
+    plan = make_plan(cases, levers, limits, objective, options, progress=log if queue is not None else None)
+    return _without_solver_caches(plan)
+
+
+def _without_solver_caches(plan):
+    """The plan without the load flow's working caches (sparse LU factors, orderings): they cannot
+    be pickled back to the parent process, and nothing after the optimiser needs them."""
+    for fr in list(plan.flows_before.values()) + list(plan.flows_after.values()):
+        c = getattr(fr, "compiled", None)
+        if c is not None and isinstance(getattr(c, "_cache", None), dict):
+            c._cache.clear()        # in the worker, whose copies are about to go
+    return plan
+
+
+def default_jobs() -> int:
+    """Worker processes used when ``jobs`` is not given: every core the process may use."""
+    import os
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:      # not on every platform
+        return max(1, os.cpu_count() or 1)
+
+
+def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None = None) -> list:
+    """Optimise and AC-verify every alternative of a study; returns ``[(AlternativeSpec, PlanResult)]``
+    in study-file order. Builds no report data (``planner plan`` uses this).
+
+    ``jobs`` worker processes run alternatives side by side (default: every core); the plans are
+    the same as a serial run's (every decision in the optimiser is deterministic) and come back
+    in study-file order. ``progress`` is called with short text lines.
+    """
+    say = progress or (lambda text: None)
+    if net is None:
+        net = read_network(spec.network_path)
+        check_buses(spec, net)
+    econ = _economics(spec)
+    weights, objective = _objective_weights(spec, econ)
+    cases = level_cases(net, spec, weights)
+    sites = candidate_sites(net, spec)
+    limits = Limits(v_min=spec.v_min_pu, v_max=spec.v_max_pu, per_bus=spec.bus_limits,
+                    ratings=spec.ratings, q_limits=spec.q_limits)
+    options = Options(max_iterations=spec.max_iterations, mip_gap=spec.mip_gap, time_limit_s=spec.step_seconds,
+                      merit_rel_tolerance=spec.rel_tolerance)
+    alts = list(spec.alternatives)
+    merit = (spec.objective, spec.currency, float(np.sum(weights)))
+    jobs = min(max(1, int(jobs if jobs is not None else default_jobs())), max(1, len(alts)))
+    say(f"{len(cases)} load levels: " + ", ".join(lc.name for lc in cases)
+        + f"; {len(alts)} alternatives" + (f" on {jobs} processes" if jobs > 1 else ""))
+    if jobs == 1:
+        plans = []
+        for k, alt in enumerate(alts):
+            say(f"alternative {k + 1}/{len(alts)}: {alt.name}")
+            plan = make_plan(cases, _levers(spec, alt, sites), limits, objective, options,
+                            progress=lambda e, _n=alt.name: say(_progress_line(_n, e, merit)))
+            plans.append((alt, plan))
+        return plans
+    return list(zip(alts, _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit)))
+
+
+def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit) -> list:
+    import multiprocessing as mp
+    import queue as _queue
+    from concurrent.futures import ProcessPoolExecutor, wait, FIRST_COMPLETED
+
+    # Not fork: a parent that has already solved holds solver threads, and a forked copy of a
+    # threaded process can deadlock. A fork server (one clean process that has imported the
+    # optimiser) starts workers quickly where it exists; elsewhere spawn. Either way a script
+    # calling run_study with jobs > 1 needs the usual ``if __name__ == "__main__":`` guard.
+    if "forkserver" in mp.get_all_start_methods():
+        ctx = mp.get_context("forkserver")
+        ctx.set_forkserver_preload(["planner.study.run"])
+    else:
+        ctx = mp.get_context("spawn")
+    q = ctx.Queue()
+    try:
+        with ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init,
+                                 initargs=(q,)) as pool:
+            futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
+                                                   alt.name, merit)): k for k, alt in enumerate(alts)}
+            results = [None] * len(alts)
+            pending = set(futures)
+
+            def drain():
+                while True:
+                    try:
+                        say(q.get_nowait())
+                    except _queue.Empty:
+                        return
+            while pending:
+                done, pending = wait(pending, timeout=0.3, return_when=FIRST_COMPLETED)
+                drain()
+                for f in sorted(done, key=lambda f: futures[f]):
+                    k = futures[f]
+                    results[k] = f.result()
+                    say(f"alternative {k + 1}/{len(alts)} done: {alts[k].name}")
+            drain()
+    finally:
+        q.close()
+    return results
+
+
+def _input_files(spec: StudySpec) -> list:
+    """The study file and every network file, with SHA-256 checksums."""
+    root = spec.path.parent
+    files = [("study", spec.path)]
+    np_ = Path(spec.network_path)
+    if np_.is_dir():
+        files += [("network", p) for p in sorted(np_.iterdir()) if p.is_file() and not p.name.startswith(".")]
+    else:
+        files.append(("network", np_))
+    out = []
+    for role, p in files:
+        try:
+            shown = os.path.relpath(p, root)
+        except ValueError:          # another drive
+            shown = str(p)
+        out.append(InputFile(role=role, path=shown.replace(os.sep, "/"), sha256=sha256_of(p)))
     return out
+
+
+def run_study(spec: StudySpec, progress=None, jobs: int | None = None) -> StudyResult:
+    """Optimise, AC-verify and price every alternative of a study; returns a :class:`StudyResult`.
+
+    The network is read once; the base case is solved once per level (with result tables) and
+    checked against the same per-bus bands the optimiser used. ``jobs`` as in
+    :func:`plan_alternatives`.
+
+    >>> from planner.study.spec import read_study
+    >>> spec = read_study("tests/data/studies/feeder33_plan.toml")
+    >>> res = run_study(spec, jobs=1)
+    >>> res.status.name, [a.verified for a in res.alternatives][:1]
+    ('VERIFIED', [True])
+    """
+    import time
+    from .. import __version__
+    from ..flow.newton import solve_flow
+
+    t0 = time.perf_counter()
+    say = progress or (lambda text: None)
+    net = read_network(spec.network_path)
+    check_buses(spec, net)
+    econ = _economics(spec)
+    plans = plan_alternatives(spec, net, progress=progress, jobs=jobs)
+    weights, _ = _objective_weights(spec, econ)
+    cases = level_cases(net, spec, weights)
+    hours = {lv.name: lv.hours for lv in spec.levels}
+    say("base case and economics")
+    base = {}
+    if plans:
+        ref = plans[_band_source(spec, plans)][1]
+        for lc in cases:
+            lo, hi = ref.bands.get(lc.name, (None, None)) if ref.bands else (None, None)
+            fr = solve_flow(lc.network)
+            base[lc.name] = BaseLevel(name=lc.name, hours=hours[lc.name], flow=fr, v_min=lo, v_max=hi,
+                                      violations=[v for v in ref.violations_before if v.level == lc.name])
+    else:
+        for lc in cases:
+            base[lc.name] = BaseLevel(name=lc.name, hours=hours[lc.name], flow=solve_flow(lc.network),
+                                      v_min=None, v_max=None, violations=[])
+    alts = []
+    for alt, plan in plans:
+        e = sens = None
+        if plan.verified:
+            e = evaluate(plan.losses_before_mw, plan.losses_after_mw, hours, plan.capital_cost, econ,
+                         spec.peak_level)
+            sens = npv_sensitivity(plan.losses_before_mw, plan.losses_after_mw, hours, plan.capital_cost,
+                                   econ, spec.peak_level)
+        alts.append(AlternativeResult(spec=alt, plan=plan, economics=e, sensitivity=sens or []))
+    if not all(b.success for b in base.values()):
+        status, msg = StudyStatus.BASE_FAILED, "the base-case load flow did not converge at every level"
+    elif any(a.verified for a in alts):
+        status = StudyStatus.VERIFIED
+        msg = f"{sum(a.verified for a in alts)} of {len(alts)} alternatives meet every limit"
+    else:
+        status, msg = StudyStatus.NONE_VERIFIED, "no alternative meets every limit at every level"
+    result = StudyResult(success=status is StudyStatus.VERIFIED, status=status, message=msg, spec=spec,
+                       network=net, base=base, alternatives=alts, inputs=_input_files(spec),
+                       tool_version=__version__, created=_dt.datetime.now().strftime("%Y-%m-%d %H:%M"),
+                       seconds=time.perf_counter() - t0,
+                       jobs=min(max(1, int(jobs if jobs is not None else default_jobs())), max(1, len(plans))))
+    if spec.proof is not None and spec.proof.any:      # N-1, hourly and bank checks (planner/proof)
+        from ..proof.run import prove_study
+        result.proof = prove_study(spec, net, cases, plans, spec.proof, progress=progress)
+    return result
 
 
 def slug(text: str) -> str:
