@@ -1283,7 +1283,6 @@ SECTIONS = [
     Section("profiles", "Voltage profiles", _profiles),
     Section("losses", "Losses by load level", _losses, new_page=False),
     Section("economics", "Economics", _economics),
-    Section("proof", "Proving the plans: outages, every hour, bank checks", _proof),
     Section("cautions", "Assumptions and cautions", _cautions),
     Section("appendix", "Appendix: optimiser convergence", _appendix),
 ]
@@ -1332,11 +1331,15 @@ def render_report(data: dict, tables: dict | None = None) -> str:
             head.append(f'<p class="meta">{label}: {esc(data[key])}</p>')
     head.append(f'<p class="meta">Load levels: {esc(", ".join(ctx.names))}. Alternatives studied: {len(alts)}; '
                 f"meeting every limit in AC load flow: {n_ok}.</p>")
-    nav = [s for s in SECTIONS]
+    shown = list(SECTIONS)
+    if data.get("proof"):           # N-1, hourly and bank checks (planner/proof), before the cautions
+        at = next((i for i, x in enumerate(shown) if x.anchor == "cautions"), len(shown))
+        shown.insert(at, Section("proof", "Proving the plans: outages, every hour, bank checks", _proof))
+    nav = shown
     head.append('<nav class="toc">' + " · ".join(f'<a href="#{esc(s.anchor)}">{esc(s.title)}</a>' for s in nav)
                 + "</nav></header>")
     parts = []
-    for s in SECTIONS:
+    for s in shown:
         body = s.render(ctx)
         if body is None:
             continue
