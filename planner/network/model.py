@@ -53,6 +53,7 @@ GEN_COLUMNS = {
     "v_set_pu": "float64",   # voltage setpoint held at its bus while within reactive limits
     "q_min_mvar": "float64",
     "q_max_mvar": "float64",
+    "x_source_pu": "float64",  # source (subtransient) reactance, pu on the system base; 0 = not given
     "energised": "bool",
 }
 LINE_COLUMNS = {
@@ -63,6 +64,7 @@ LINE_COLUMNS = {
     "x_pu": "float64",
     "b_pu": "float64",       # total line charging, split half to each end
     "rating_mva": "float64", # 0 = no rating given
+    "rating_emergency_mva": "float64",  # short-time rating after an outage; 0 = use rating_mva
     "energised": "bool",
 }
 TRANSFORMER_COLUMNS = {
@@ -80,6 +82,7 @@ TRANSFORMER_COLUMNS = {
     "ratio_step_pu": "float64",  # 0 = continuous
     "adjustable": "bool",    # the optimiser may move the ratio
     "rating_mva": "float64",
+    "rating_emergency_mva": "float64",  # short-time rating after an outage; 0 = use rating_mva
     "energised": "bool",
 }
 SHUNT_COLUMNS = {
@@ -107,11 +110,12 @@ DEFAULTS = {
     "loads": {"p_share_i": 0.0, "p_share_z": 0.0, "q_share_i": 0.0, "q_share_z": 0.0,
               "energised": True},
     "generators": {"mvar": 0.0, "v_set_pu": 1.0, "q_min_mvar": -9999.0, "q_max_mvar": 9999.0,
-                   "energised": True},
-    "lines": {"b_pu": 0.0, "rating_mva": 0.0, "energised": True},
+                   "x_source_pu": 0.0, "energised": True},
+    "lines": {"b_pu": 0.0, "rating_mva": 0.0, "rating_emergency_mva": 0.0, "energised": True},
     "transformers": {"r_pu": 0.0, "b_pu": 0.0, "ratio_pu": 1.0, "tap_side": "from", "shift_deg": 0.0,
                      "ratio_min_pu": 0.9, "ratio_max_pu": 1.1, "ratio_step_pu": 0.0,
-                     "adjustable": False, "rating_mva": 0.0, "energised": True},
+                     "adjustable": False, "rating_mva": 0.0, "rating_emergency_mva": 0.0,
+                     "energised": True},
     "shunts": {"steps_max": 1, "steps_on": 1, "switchable": False, "energised": True},
 }
 

@@ -264,6 +264,9 @@ def report_data(result) -> dict:
             out["economics"] = a.economics.as_dict()
             out["sensitivity"] = list(a.sensitivity)
         data["alternatives"].append(out)
+    proof = getattr(result, "proof", None)        # N-1, hourly and bank checks (planner/proof)
+    if proof:
+        data["proof"], data["proof_frames"] = proof
     return data
 
 

@@ -570,9 +570,14 @@ def report_json(data: dict, tables: dict | None = None) -> str:
 
 def report_files(data: dict) -> dict[str, str]:
     """``report.html``, ``report.json`` and one CSV per table; the tables are built once."""
+    frames = data.get("proof_frames") or {}       # N-1, hourly and bank-check tables (planner/proof)
+    data = {k: v for k, v in data.items() if k != "proof_frames"}
     tables = build_tables(data)
     files = {"report.html": render_report(data, tables), "report.json": report_json(data, tables)}
     files.update(report_tables(data, tables))
+    if frames:
+        from ..proof.report import proof_files
+        files.update(proof_files(frames))
     return files
 
 
@@ -1237,6 +1242,14 @@ def _cautions(ctx: Context) -> list:
     return body
 
 
+def _proof(ctx: Context) -> list | None:
+    """N-1, every hour of the year and bank checks (planner/proof), when the study asks for them."""
+    if not ctx.data.get("proof"):
+        return None
+    from ..proof.report import proof_sections
+    return [proof_sections(ctx.data["proof"])]
+
+
 def _appendix(ctx: Context) -> list | None:
     body = []
     body.append(ctx.table(ctx.T["optimiser_runs"], show=["alternative", "status", "ac_flows", "milp_solves",
@@ -1318,11 +1331,15 @@ def render_report(data: dict, tables: dict | None = None) -> str:
             head.append(f'<p class="meta">{label}: {esc(data[key])}</p>')
     head.append(f'<p class="meta">Load levels: {esc(", ".join(ctx.names))}. Alternatives studied: {len(alts)}; '
                 f"meeting every limit in AC load flow: {n_ok}.</p>")
-    nav = [s for s in SECTIONS]
+    shown = list(SECTIONS)
+    if data.get("proof"):           # N-1, hourly and bank checks (planner/proof), before the cautions
+        at = next((i for i, x in enumerate(shown) if x.anchor == "cautions"), len(shown))
+        shown.insert(at, Section("proof", "Proving the plans: outages, every hour, bank checks", _proof))
+    nav = shown
     head.append('<nav class="toc">' + " · ".join(f'<a href="#{esc(s.anchor)}">{esc(s.title)}</a>' for s in nav)
                 + "</nav></header>")
     parts = []
-    for s in SECTIONS:
+    for s in shown:
         body = s.render(ctx)
         if body is None:
             continue

@@ -354,11 +354,15 @@ def run_study(spec: StudySpec, progress=None, jobs: int | None = None) -> StudyR
         msg = f"{sum(a.verified for a in alts)} of {len(alts)} alternatives meet every limit"
     else:
         status, msg = StudyStatus.NONE_VERIFIED, "no alternative meets every limit at every level"
-    return StudyResult(success=status is StudyStatus.VERIFIED, status=status, message=msg, spec=spec,
+    result = StudyResult(success=status is StudyStatus.VERIFIED, status=status, message=msg, spec=spec,
                        network=net, base=base, alternatives=alts, inputs=_input_files(spec),
                        tool_version=__version__, created=_dt.datetime.now().strftime("%Y-%m-%d %H:%M"),
                        seconds=time.perf_counter() - t0,
                        jobs=min(max(1, int(jobs if jobs is not None else default_jobs())), max(1, len(plans))))
+    if spec.proof is not None and spec.proof.any:      # N-1, hourly and bank checks (planner/proof)
+        from ..proof.run import prove_study
+        result.proof = prove_study(spec, net, cases, plans, spec.proof, progress=progress)
+    return result
 
 
 def slug(text: str) -> str:

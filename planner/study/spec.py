@@ -15,7 +15,7 @@ from ..errors import InputError
 from ..inputs import MAX_TOML_BYTES, parse_toml, read_input_bytes
 
 TOP_KEYS = {"study", "limits", "levels", "banks", "generators", "taps", "economics", "objective",
-            "alternatives", "solver"}
+            "alternatives", "solver", "outages", "profile", "bank_checks", "sweep"}   # last four: planner/proof
 
 
 @dataclass
@@ -90,6 +90,7 @@ class StudySpec:
     rel_tolerance: float = 1e-4
     step_seconds: float = 120.0
     peak_level: str = ""
+    proof: object = None       # planner.proof.spec.ProofSpec: N-1, hourly profile, bank checks, sweep
 
 
 class _Reader:
@@ -432,4 +433,6 @@ def read_study(path) -> StudySpec:
         spec.alternatives.append(a)
     if not spec.alternatives:
         spec.alternatives.append(AlternativeSpec(name="Plan", description="all levers in the study file"))
+    from ..proof.spec import read_proof
+    spec.proof = read_proof(top, here, [lv.name for lv in spec.levels])
     return spec
