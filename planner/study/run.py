@@ -12,6 +12,7 @@ from __future__ import annotations
 import datetime as _dt
 import os
 import re
+import signal
 from pathlib import Path
 
 import numpy as np
@@ -158,6 +159,8 @@ _QUEUE = None       # progress queue of a worker process (set by _worker_init)
 def _worker_init(queue):
     global _QUEUE
     _QUEUE = queue
+    # Ctrl-C at a terminal reaches the whole process group: the parent stops the workers
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _optimize_one(args):
@@ -229,7 +232,6 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
 def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit) -> list:
     import multiprocessing as mp
     import queue as _queue
-    from concurrent.futures import ProcessPoolExecutor, wait, FIRST_COMPLETED
 
     # Not fork: a parent that has already solved holds solver threads, and a forked copy of a
     # threaded process can deadlock. A fork server (one clean process that has imported the
@@ -240,30 +242,39 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
         ctx.set_forkserver_preload(["planner.study.run"])
     else:
         ctx = mp.get_context("spawn")
-    q = ctx.Queue()
-    try:
-        with ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init,
-                                 initargs=(q,)) as pool:
-            futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
-                                                   alt.name, merit)): k for k, alt in enumerate(alts)}
-            results = [None] * len(alts)
-            pending = set(futures)
+    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 
-            def drain():
-                while True:
-                    try:
-                        say(q.get_nowait())
-                    except _queue.Empty:
-                        return
-            while pending:
-                done, pending = wait(pending, timeout=0.3, return_when=FIRST_COMPLETED)
-                drain()
-                for f in sorted(done, key=lambda f: futures[f]):
-                    k = futures[f]
-                    results[k] = f.result()
-                    say(f"alternative {k + 1}/{len(alts)} done: {alts[k].name}")
+    q = ctx.Queue()
+    pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
+    try:
+        futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
+                                               alt.name, merit)): k for k, alt in enumerate(alts)}
+        results = [None] * len(alts)
+        pending = set(futures)
+
+        def drain():
+            while True:
+                try:
+                    say(q.get_nowait())
+                except _queue.Empty:
+                    return
+        while pending:
+            done, pending = wait(pending, timeout=0.3, return_when=FIRST_COMPLETED)
             drain()
+            for f in sorted(done, key=lambda f: futures[f]):
+                k = futures[f]
+                results[k] = f.result()
+                say(f"alternative {k + 1}/{len(alts)} done: {alts[k].name}")
+        drain()
+    except BaseException:
+        # an interrupt (Ctrl-C) or a failed alternative: stop every worker now, not after minutes
+        # of optimisation nobody will read (the executor has no public call for this)
+        for proc in list(getattr(pool, "_processes", {}).values()):
+            proc.terminate()
+        pool.shutdown(wait=True, cancel_futures=True)
+        raise
     finally:
+        pool.shutdown(wait=True)
         q.close()
     return results
 
