@@ -12,8 +12,9 @@ The public API, flat (everything else is internal and may change):
 ``model_warnings(net)``   legal but suspicious features of a network, one line each
 ========================  ===================================================================
 
-plus the types :class:`Network`, :class:`FlowResult`, :class:`PlanResult`, :class:`StudySpec`
-and the errors :class:`PlannerError`, :class:`InputError`, :class:`NetworkError`,
+plus the types :class:`Network`, :class:`FlowResult` / :class:`FlowStatus`, :class:`PlanResult` /
+:class:`PlanStatus`, the optimiser's inputs (:class:`LevelCase`, :class:`Levers`, :class:`BankSite`,
+:class:`Limits`, :class:`Objective`, :class:`Options`), :class:`StudySpec` and the errors :class:`PlannerError`, :class:`InputError`, :class:`NetworkError`,
 :class:`OutputError`.
 
 Names are imported on first use, so ``import planner`` stays light and the optimiser (Pyomo)
@@ -43,7 +44,15 @@ _EXPORTS = {
     "model_warnings": ("planner.network.validate", "model_warnings"),
     "Network": ("planner.network.model", "Network"),
     "FlowResult": ("planner.flow.result", "FlowResult"),
-    "PlanResult": ("planner.optimize.engine", "PlanResult"),
+    "FlowStatus": ("planner.flow.result", "FlowStatus"),
+    "PlanResult": ("planner.optimize", "PlanResult"),
+    "PlanStatus": ("planner.optimize", "PlanStatus"),
+    "LevelCase": ("planner.optimize", "LevelCase"),
+    "Levers": ("planner.optimize", "Levers"),
+    "BankSite": ("planner.optimize", "BankSite"),
+    "Limits": ("planner.optimize", "Limits"),
+    "Objective": ("planner.optimize", "Objective"),
+    "Options": ("planner.optimize", "Options"),
     "StudySpec": ("planner.study.spec", "StudySpec"),
     "StudyResult": ("planner.study.result", "StudyResult"),
     "StudyStatus": ("planner.study.result", "StudyStatus"),
@@ -77,6 +86,8 @@ if TYPE_CHECKING:        # for type checkers and editors; never run
     from .network.io import read_network, write_network  # noqa: F401
     from .network.model import Network  # noqa: F401
     from .network.validate import model_warnings  # noqa: F401
-    from .optimize.engine import PlanResult  # noqa: F401
+    from .flow.result import FlowStatus  # noqa: F401
+    from .optimize import (BankSite, LevelCase, Levers, Limits, Objective, Options, PlanResult,  # noqa: F401
+                           PlanStatus, plan)
     from .study.run import run_study  # noqa: F401
     from .study.spec import StudySpec, read_study  # noqa: F401

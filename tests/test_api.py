@@ -31,10 +31,17 @@ def test_readme_from_python_example_runs_and_prints_the_reference_figures():
     assert lines[1] == "True 0.2027 MW"                 # Baran and Wu 1989: 202.67 kW
     assert lines[2].split() == ["bus", "v_pu"]
     assert lines[3].split()[0] == "18" and float(lines[3].split()[1]) == pytest.approx(0.9131, abs=1e-4)
-    verified, losses = lines[-1].split(" ", 1)
-    assert verified == "True"
-    after = float(re.search(r"[\d.]+", losses.split(":")[1]).group(0))
+    k = next(i for i, ln in enumerate(lines) if ln.startswith("VERIFIED "))
+    after = float(lines[k].split()[1])
     assert 0.10 < after < 0.20267                       # banks cut the 0.2027 MW of the base case
+    banks = [ln.split() for ln in lines[k + 2:]]
+    assert lines[k + 1].split() == ["bus", "units"] and 1 <= len(banks) <= 2      # max_new_sites = 2
+    assert all(int(b) in (18, 30, 33) and 1 <= int(u) <= 10 for b, u in banks)
+    # the plan's losses are those of an AC load flow with exactly these banks (Mvar at 1.0 pu)
+    net = planner.read_network(ROOT / "tests" / "data" / "feeder33_tables").copy()
+    for b, u in banks:
+        net.buses.loc[net.buses.bus == int(b), "shunt_supply_mvar"] += 0.15 * int(u)
+    assert planner.solve_flow(net).losses_mw == pytest.approx(after, abs=1e-4)
 
 
 def test_public_names_resolve_to_the_library_functions():
@@ -46,6 +53,8 @@ def test_public_names_resolve_to_the_library_functions():
     assert planner.write_network is write_network and planner.read_study is read_study
     assert planner.run_study is run_study
     assert {"read_network", "write_network", "solve_flow", "read_study", "run_study", "plan"} <= set(planner.__all__)
+    from planner.optimize import plan
+    assert planner.plan is plan and planner.PlanStatus.VERIFIED.name == "VERIFIED"
     assert issubclass(planner.OutputError, planner.PlannerError)
     with pytest.raises(AttributeError, match="no attribute 'nonesuch'"):
         planner.nonesuch      # noqa: B018

@@ -521,3 +521,14 @@ def test_progress_is_plain_timestamped_lines_on_a_pipe(tmp_path):
     assert any("MW mean losses" in ln for ln in lines), r.stderr       # the objective in MW
     q = run_cli("plan", STUDIES / "feeder33_plan.toml", "--json", tmp_path / "p.json", "-q")
     assert q.returncode == 0 and q.stderr == "" and q.stdout == ""
+
+
+def test_read_only_output_folder_found_before_the_work(tmp_path, capsys, monkeypatch):
+    # as root permission bits do not stop a write, so the probe's answer is given here; the
+    # probe itself is a real create-and-delete in the folder
+    import planner.atomic as atomic
+    monkeypatch.setattr(atomic, "_probe_writable", lambda folder: "Read-only file system")
+    assert main(["study", str(STUDIES / "feeder33_plan.toml"), "--out", str(tmp_path / "r"), "-q"]) == 3
+    line = one_error_line(capsys.readouterr().err)
+    assert line.startswith("error: --out ") and "read-only file system" in line
+    assert not (tmp_path / "r").exists()

@@ -218,3 +218,25 @@ def test_numerical_trouble_becomes_a_status_never_a_warning(bases):
     assert not res.success and res.status in (FlowStatus.DIVERGED, FlowStatus.SINGULAR,
                                               FlowStatus.COLLAPSE, FlowStatus.ITERATION_LIMIT)
     assert res.message
+
+
+def test_dc_start_with_imbalance_spread_leaves_the_slack_nothing_to_carry(bases):
+    """DC power flow (B theta = P): without spreading, the slack injects its schedule minus the
+    whole imbalance of the case; with it, only its schedule less its load's share."""
+    from planner.flow.newton import dc_angles
+    c = compile_network(bases["ieee14"])
+    va0 = np.zeros(c.n)
+    bser = 1.0 / np.imag(1.0 / c.ys)
+    slack = int(np.flatnonzero(c.kind == 2)[0])
+
+    def slack_injection(va):
+        flow = bser * (va[c.f] - va[c.t])
+        return np.bincount(c.f, flow, c.n)[slack] - np.bincount(c.t, flow, c.n)[slack]
+
+    load = (c.s_load_p + c.s_load_i + c.s_load_z).real
+    imbalance = float(c.s_gen.real.sum() - load.sum() - c.ysh.real.sum())
+    own = float(c.s_gen.real[slack] - load[slack] - c.ysh.real[slack])
+    assert abs(imbalance) > 0.1                                   # 13.4 MW in IEEE 14's stored schedule
+    assert slack_injection(dc_angles(c, va0)) == pytest.approx(own - imbalance, abs=1e-9)
+    share = imbalance * load[slack] / load.sum()
+    assert slack_injection(dc_angles(c, va0, spread_imbalance=True)) == pytest.approx(own - share, abs=1e-9)

@@ -190,7 +190,7 @@ def _table_mutant(rng: random.Random, folder: Path) -> None:
         rows.insert(r, rows[r])
     elif op == "header":
         cells = rows[0].split(",")
-        cells[rng.randrange(len(cells))] = rng.choice(["r_ohms", "", "bus", "p_mw", "kw", "x_pu", "energised"])
+        cells[rng.randrange(len(cells))] = rng.choice(["r_ohms", "", "bus", "watts", "kw", "x_pu", "energised"])
         rows[0] = ",".join(cells)
     elif op == "extra":
         rows[r] += ",1"

@@ -82,8 +82,8 @@ class Options:
     max_polish_flows: int = 400           # AC load flows the final search may run
     search_checks: int = 6                # moves AC-checked per batch of the final search (best first)
     mip_gap: float = 5e-4
-    max_nodes: int = 2000                 # HiGHS branch-and-bound nodes per MILP solve: the work bound
-    time_limit_s: float = 30.0            # emergency stop per MILP solve; when it fires the result says so
+    max_nodes: int = 500                  # HiGHS branch-and-bound nodes per MILP solve: the work bound
+    time_limit_s: float = 120.0           # emergency stop per MILP solve; when it fires the result says so
     bound: bool = True                    # compute the relaxation bound and gap of the final plan
     jobs: int = 1                         # worker processes for the AC checks of the levels (1 = serial)
     blas_threads: int = 1                 # BLAS threads inside a plan (needs threadpoolctl; 0 = leave alone)

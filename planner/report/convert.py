@@ -12,6 +12,7 @@ import numpy as np
 __all__ = ["report_data"]
 
 from ..network.compile import SLACK as _SLACK
+from ..network.validate import model_warnings
 
 ASSUMPTIONS = [
     "Loads are scaled uniformly per level (with any per-bus factors in the study file); "
@@ -194,7 +195,9 @@ def report_data(result) -> dict:
                                  for b, (lo, hi) in sorted((spec.gen_range or {}).items(), key=lambda x: str(x[0]))],
         },
         "network_drawing": _topology(net, kv_by_bus, names_by_bus),
-        "base": {}, "alternatives": [], "assumptions": list(ASSUMPTIONS),
+        "base": {}, "alternatives": [],
+        # legal but suspicious features of the model (two slacks that disagree, ...) are said in the report
+        "assumptions": list(ASSUMPTIONS) + [f"Model warning: {w}." for w in model_warnings(net)],
     }
     for n, b in result.base.items():
         d = _flow_data(b.flow, b.v_min, b.v_max, b.violations, kv_by_bus, names_by_bus, ratings)

@@ -88,7 +88,7 @@ class StudySpec:
     max_iterations: int = 30
     mip_gap: float = 5e-4
     rel_tolerance: float = 1e-4
-    step_seconds: float = 15.0
+    step_seconds: float = 120.0
     peak_level: str = ""
 
 
@@ -409,7 +409,7 @@ def read_study(path) -> StudySpec:
     spec.mip_gap = sv.get("mip_gap", float, 5e-4, check=lambda v: 0 < v < 0.1, why="must be between 0 and 0.1")
     spec.rel_tolerance = sv.get("rel_tolerance", float, 1e-4, check=lambda v: 0 <= v < 0.1,
                                 why="must be between 0 and 0.1")
-    spec.step_seconds = sv.get("step_seconds", float, 15.0, check=lambda v: 0.5 <= v <= 3600,
+    spec.step_seconds = sv.get("step_seconds", float, 120.0, check=lambda v: 0.5 <= v <= 3600,
                                why="must be 0.5-3600 s")
     sv.finish()
 

@@ -144,8 +144,9 @@ def reading(newton_time):
     print(head)
     print("-" * len(head))
     with tempfile.TemporaryDirectory() as tmp:
-        for label in ("ring14 x714", "grid 100x100"):
-            t_newton, net = newton_time[(label, True)]
+        for label in ("ring14 x714", "grid 99x101"):
+            # the CDF's bus numbers have four digits: the grid is 9,999 buses here
+            net = newton_time[(label, True)][1] if label in [k for k, _ in newton_time] else meshed_grid(99, 101)
             path = Path(tmp) / "case.cdf"
             write_cdf(renumbered(net), path)
             t_read = np.inf
