@@ -229,6 +229,27 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
     return list(zip(alts, _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit)))
 
 
+class _signals_deferred:
+    """Hold Ctrl-C / SIGTERM while worker processes start, then deliver them: a worker started
+    half-way when its parent stops would be missed by the clean-up and print a traceback."""
+
+    def __enter__(self):
+        import threading
+        self.got, self.old = [], {}
+        if threading.current_thread() is threading.main_thread():
+            for sig in (signal.SIGINT, getattr(signal, "SIGTERM", None)):
+                if sig is not None:
+                    self.old[sig] = signal.signal(sig, lambda num, frame: self.got.append(num))
+        return self
+
+    def __exit__(self, *exc):
+        for sig, handler in self.old.items():
+            signal.signal(sig, handler)
+        for num in self.got:
+            signal.raise_signal(num)     # now handled as the caller would have handled it
+        return False
+
+
 def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit) -> list:
     import multiprocessing as mp
     import queue as _queue
@@ -244,11 +265,12 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
         ctx = mp.get_context("spawn")
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 
-    q = ctx.Queue()
-    pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
-    try:
+    with _signals_deferred():       # every worker is known before an interrupt can stop them
+        q = ctx.Queue()
+        pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
         futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
                                                alt.name, merit)): k for k, alt in enumerate(alts)}
+    try:
         results = [None] * len(alts)
         pending = set(futures)
 
