@@ -185,7 +185,7 @@ def _without_solver_caches(plan):
 
 
 def default_jobs() -> int:
-    """Worker processes used when ``jobs`` is not given: every core the process may use."""
+    """Every core the process may use (a value for ``jobs``)."""
     import os
     try:
         return max(1, len(os.sched_getaffinity(0)))
@@ -197,9 +197,10 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
     """Optimise and AC-verify every alternative of a study; returns ``[(AlternativeSpec, PlanResult)]``
     in study-file order. Builds no report data (``planner plan`` uses this).
 
-    ``jobs`` worker processes run alternatives side by side (default: every core); the plans are
-    the same as a serial run's (every decision in the optimiser is deterministic) and come back
-    in study-file order. ``progress`` is called with short text lines.
+    ``jobs`` worker processes run alternatives side by side (default 1: one after another in this
+    process; :func:`default_jobs` gives every core). The plans are the same as a serial run's when
+    no optimiser step stops at its time limit, and come back in study-file order. (Not yet the
+    default: an interrupt that lands while workers start can leave a worker's traceback behind.) ``progress`` is called with short text lines.
     """
     say = progress or (lambda text: None)
     if net is None:
@@ -215,7 +216,7 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
                       merit_rel_tolerance=spec.rel_tolerance)
     alts = list(spec.alternatives)
     merit = (spec.objective, spec.currency, float(np.sum(weights)))
-    jobs = min(max(1, int(jobs if jobs is not None else default_jobs())), max(1, len(alts)))
+    jobs = min(max(1, int(jobs if jobs is not None else 1)), max(1, len(alts)))
     say(f"{len(cases)} load levels: " + ", ".join(lc.name for lc in cases)
         + f"; {len(alts)} alternatives" + (f" on {jobs} processes" if jobs > 1 else ""))
     if jobs == 1:
@@ -379,7 +380,7 @@ def run_study(spec: StudySpec, progress=None, jobs: int | None = None) -> StudyR
                        network=net, base=base, alternatives=alts, inputs=_input_files(spec),
                        tool_version=__version__, created=_dt.datetime.now().strftime("%Y-%m-%d %H:%M"),
                        seconds=time.perf_counter() - t0,
-                       jobs=min(max(1, int(jobs if jobs is not None else default_jobs())), max(1, len(plans))))
+                       jobs=min(max(1, int(jobs if jobs is not None else 1)), max(1, len(plans))))
 
 
 def slug(text: str) -> str:
