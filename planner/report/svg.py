@@ -579,7 +579,7 @@ def network_chart(layers: Sequence[tuple[str, Sequence[int]]], edges: Sequence[d
         adj.setdefault(e["to_bus"], []).append(e["from_bus"])
     row_h = 110
     left = 84
-    height = 50 + row_h * len(layers) + 10
+    height = 50 + row_h * len(layers) + 22
     xpos: dict = {}
     ordered = []
     for r, (label, buses) in enumerate(layers):
@@ -611,7 +611,8 @@ def network_chart(layers: Sequence[tuple[str, Sequence[int]]], edges: Sequence[d
             dash = ' stroke-dasharray="5 3"' if e.get("element") == "transformer" else ""
             out.append(f'<line x1="{_num(x1)}" y1="{_num(y1)}" x2="{_num(x2)}" y2="{_num(y2)}" '
                        f'stroke="#5a5a5a" stroke-width="1.2"{dash}/>')
-    for b, x in xpos.items():
+    last_label: dict = {}      # row y -> (x, drop) of the last site label, to stagger close ones
+    for b, x in sorted(xpos.items(), key=lambda kv: (ypos[kv[0]], kv[1])):
         y = ypos[b]
         tip = f"{b} {names.get(b, '')}".strip()
         if b in sources:
@@ -622,9 +623,12 @@ def network_chart(layers: Sequence[tuple[str, Sequence[int]]], edges: Sequence[d
                        f'stroke="#222" stroke-width="1.4"><title>{_e(tip)}</title></circle>')
         out.append(f'<text x="{_num(x)}" y="{_num(y + 18)}" font-size="10" text-anchor="middle">{_e(b)}</text>')
         if b in marks:
+            px, pdrop = last_label.get(y, (-1e9, 0))
+            drop = 12 if x - px < _text_width(marks[b], 10) + 6 and pdrop == 0 else 0
+            last_label[y] = (x, drop)
             out.append(f'<g class="site"><polygon points="{_num(x - 7)},{_num(y + 24)} {_num(x + 7)},{_num(y + 24)} '
                        f'{_num(x)},{_num(y + 34)}" fill="{PALETTE[1]}"/>'
-                       f'<text x="{_num(x)}" y="{_num(y + 46)}" font-size="10" text-anchor="middle" '
+                       f'<text x="{_num(x)}" y="{_num(y + 46 + drop)}" font-size="10" text-anchor="middle" '
                        f'fill="{PALETTE[1]}" font-weight="600">{_e(marks[b])}</text></g>')
     out.append("</svg>")
     return "".join(out)

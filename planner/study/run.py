@@ -12,6 +12,7 @@ from __future__ import annotations
 import datetime as _dt
 import os
 import re
+import signal
 from pathlib import Path
 
 import numpy as np
@@ -158,9 +159,7 @@ _QUEUE = None       # progress queue of a worker process (set by _worker_init)
 def _worker_init(queue):
     global _QUEUE
     _QUEUE = queue
-    # Ctrl-C at a terminal reaches the whole process group: the parent stops the workers itself,
-    # so a worker must not die on it with a traceback of its own
-    import signal
+    # Ctrl-C at a terminal reaches the whole process group: the parent stops the workers
     signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
@@ -186,7 +185,7 @@ def _without_solver_caches(plan):
 
 
 def default_jobs() -> int:
-    """Worker processes used when ``jobs`` is not given: every core the process may use."""
+    """Every core the process may use (a value for ``jobs``)."""
     import os
     try:
         return max(1, len(os.sched_getaffinity(0)))
@@ -198,9 +197,10 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
     """Optimise and AC-verify every alternative of a study; returns ``[(AlternativeSpec, PlanResult)]``
     in study-file order. Builds no report data (``planner plan`` uses this).
 
-    ``jobs`` worker processes run alternatives side by side (default: every core); the plans are
-    the same as a serial run's (every decision in the optimiser is deterministic) and come back
-    in study-file order. ``progress`` is called with short text lines.
+    ``jobs`` worker processes run alternatives side by side (default 1: one after another in this
+    process; :func:`default_jobs` gives every core). The plans are the same as a serial run's when
+    no optimiser step stops at its time limit, and come back in study-file order. (Not yet the
+    default: an interrupt that lands while workers start can leave a worker's traceback behind.) ``progress`` is called with short text lines.
     """
     say = progress or (lambda text: None)
     if net is None:
@@ -216,7 +216,7 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
                       merit_rel_tolerance=spec.rel_tolerance)
     alts = list(spec.alternatives)
     merit = (spec.objective, spec.currency, float(np.sum(weights)))
-    jobs = min(max(1, int(jobs if jobs is not None else default_jobs())), max(1, len(alts)))
+    jobs = min(max(1, int(jobs if jobs is not None else 1)), max(1, len(alts)))
     say(f"{len(cases)} load levels: " + ", ".join(lc.name for lc in cases)
         + f"; {len(alts)} alternatives" + (f" on {jobs} processes" if jobs > 1 else ""))
     if jobs == 1:
@@ -230,10 +230,30 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
     return list(zip(alts, _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit)))
 
 
+class _signals_deferred:
+    """Hold Ctrl-C / SIGTERM while worker processes start, then deliver them: a worker started
+    half-way when its parent stops would be missed by the clean-up and print a traceback."""
+
+    def __enter__(self):
+        import threading
+        self.got, self.old = [], {}
+        if threading.current_thread() is threading.main_thread():
+            for sig in (signal.SIGINT, getattr(signal, "SIGTERM", None)):
+                if sig is not None:
+                    self.old[sig] = signal.signal(sig, lambda num, frame: self.got.append(num))
+        return self
+
+    def __exit__(self, *exc):
+        for sig, handler in self.old.items():
+            signal.signal(sig, handler)
+        for num in self.got:
+            signal.raise_signal(num)     # now handled as the caller would have handled it
+        return False
+
+
 def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit) -> list:
     import multiprocessing as mp
     import queue as _queue
-    from concurrent.futures import ProcessPoolExecutor, wait, FIRST_COMPLETED
 
     # Not fork: a parent that has already solved holds solver threads, and a forked copy of a
     # threaded process can deadlock. A fork server (one clean process that has imported the
@@ -244,11 +264,14 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
         ctx.set_forkserver_preload(["planner.study.run"])
     else:
         ctx = mp.get_context("spawn")
-    q = ctx.Queue()
-    pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
-    try:
+    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+
+    with _signals_deferred():       # every worker is known before an interrupt can stop them
+        q = ctx.Queue()
+        pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
         futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
                                                alt.name, merit)): k for k, alt in enumerate(alts)}
+    try:
         results = [None] * len(alts)
         pending = set(futures)
 
@@ -267,15 +290,14 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
                 say(f"alternative {k + 1}/{len(alts)} done: {alts[k].name}")
         drain()
     except BaseException:
-        # an interrupt or a failed worker: stop the other workers now instead of waiting for their
-        # solves to end (the executor has no public way to end running tasks)
-        for proc in list((getattr(pool, "_processes", None) or {}).values()):
+        # an interrupt (Ctrl-C) or a failed alternative: stop every worker now, not after minutes
+        # of optimisation nobody will read (the executor has no public call for this)
+        for proc in list(getattr(pool, "_processes", {}).values()):
             proc.terminate()
-        pool.shutdown(wait=False, cancel_futures=True)
+        pool.shutdown(wait=True, cancel_futures=True)
         raise
-    else:
-        pool.shutdown(wait=True)
     finally:
+        pool.shutdown(wait=True)
         q.close()
     return results
 
@@ -358,7 +380,7 @@ def run_study(spec: StudySpec, progress=None, jobs: int | None = None) -> StudyR
                        network=net, base=base, alternatives=alts, inputs=_input_files(spec),
                        tool_version=__version__, created=_dt.datetime.now().strftime("%Y-%m-%d %H:%M"),
                        seconds=time.perf_counter() - t0,
-                       jobs=min(max(1, int(jobs if jobs is not None else default_jobs())), max(1, len(plans))))
+                       jobs=min(max(1, int(jobs if jobs is not None else 1)), max(1, len(plans))))
     if spec.proof is not None and spec.proof.any:      # N-1, hourly and bank checks (planner/proof)
         from ..proof.run import prove_study
         result.proof = prove_study(spec, net, cases, plans, spec.proof, progress=progress)
