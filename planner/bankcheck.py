@@ -41,7 +41,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from .network.compile import SLACK, compile_network, replace

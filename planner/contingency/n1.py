@@ -54,7 +54,7 @@ from scipy.sparse.csgraph import connected_components
 
 from ..flow.jacobian import JacobianPattern
 from ..flow.result import FlowStatus
-from ..network.compile import PQ, PV, SLACK, Compiled, compile_network, replace
+from ..network.compile import PQ, PV, SLACK, Compiled, compile_network
 from ..network.model import Network
 from ..sweep.repeated import PointSolution, RepeatedFlow
 

@@ -45,7 +45,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from ..network.compile import Compiled, compile_network, replace
+from ..network.compile import compile_network
 from ..network.model import Network
 from ..sweep.repeated import RepeatedFlow
 from .profile import LoadProfile

@@ -205,11 +205,6 @@ def ohm_to_pu(z_ohm, base_kv: float, base_mva: float):
     return z_ohm / z_base_ohm(base_kv, base_mva)
 
 
-def siemens_to_pu(b_s, base_kv: float, base_mva: float):
-    """Shunt admittance in siemens to per unit (multiply by the impedance base)."""
-    return b_s * z_base_ohm(base_kv, base_mva)
-
-
 def kw_to_mw(kw):
     return kw / 1000.0
 

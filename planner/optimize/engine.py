@@ -18,7 +18,6 @@ Module map: :mod:`.problem` (levers, limits, linear model), :mod:`.milp` (the st
 from __future__ import annotations
 
 import time
-import warnings
 
 import numpy as np
 
@@ -30,7 +29,7 @@ from .problem import Evaluation, LevelCase, PlanProblem, Settings
 from .results import PlanResult, PlanStatus, StepRecord, Violation
 from .search import local_search, worst
 
-__all__ = ["plan", "optimise", "LevelCase", "PlanResult", "PlanStatus", "Violation", "StepRecord",
+__all__ = ["plan", "LevelCase", "PlanResult", "PlanStatus", "Violation", "StepRecord",
            "Settings", "Evaluation"]
 
 _SEEDS = 12   # earlier proposals whose loss cuts a new step starts with
@@ -65,12 +64,6 @@ def plan(network_or_levels, levers: Levers | None = None, limits: Limits | None 
             return _run(pb, progress)
     finally:
         close_pool(pb)
-
-
-def optimise(levels, levers, limits=None, objective=None, options=None, progress=None) -> PlanResult:
-    """Deprecated spelling of :func:`plan` (kept while callers move)."""
-    warnings.warn("optimise() is deprecated; use planner.optimize.engine.plan()", DeprecationWarning, stacklevel=2)
-    return plan(levels, levers, limits, objective, options, progress)
 
 
 class _blas_threads:

@@ -90,7 +90,6 @@ def prove_study(spec, net, cases, plans, proof, progress=None, scaled=None):
     level_net = {lc.name: lc.network for lc in cases}
     data, frames = {}, {}
     where = proof.scheduler or "local"
-    chunk = proof.chunk_size
     step = getattr(progress, "step", None)
 
     if proof.outages is not None:

@@ -32,7 +32,7 @@ from planner.network.cdf import read_cdf  # noqa: E402
 from planner.network.compile import PQ  # noqa: E402
 from planner.network.io import read_network  # noqa: E402
 from planner.network.synthetic import meshed_grid  # noqa: E402
-from planner.optimize.engine import LevelCase, plan as optimise  # noqa: E402
+from planner.optimize.engine import LevelCase, plan as make_plan  # noqa: E402
 from planner.optimize.levers import BankSite, Levers, Limits  # noqa: E402
 from reference.ac_opf import ieee30_voltage_schedule  # noqa: E402
 from reference.sweep import enumerate_feeder33  # noqa: E402
@@ -61,7 +61,7 @@ def row(case, plan, secs, value, ref_value, ref_secs, unit, target):
 
 def ieee30():
     net = read_cdf(DATA / "ieee30cdf.txt")
-    plan, secs = timed(optimise, [LevelCase("base", net)], Levers(gen_v_range={"*": (0.95, 1.10)}),
+    plan, secs = timed(make_plan, [LevelCase("base", net)], Levers(gen_v_range={"*": (0.95, 1.10)}),
                        Limits(v_min=0.95, v_max=1.05))
     ref, ref_secs = timed(ieee30_voltage_schedule)
     row("IEEE 30 voltage schedule", plan, secs, plan.losses_after_mw["base"], ref.losses_mw, ref_secs, "MW", 2.0)
@@ -70,7 +70,7 @@ def ieee30():
 def feeder33(max_sites, full=False, unit=0.15, units=10):
     net = read_network(DATA / "feeder33_tables")
     sites = [BankSite(b, unit, units) for b in range(2, 34)]
-    plan, secs = timed(optimise, [LevelCase("base", net)], Levers(sites=sites, max_new_sites=max_sites),
+    plan, secs = timed(make_plan, [LevelCase("base", net)], Levers(sites=sites, max_new_sites=max_sites),
                        Limits(v_min=0.0, v_max=2.0))
     if unit != 0.15:
         ref_v, ref_secs = None, None
@@ -89,7 +89,7 @@ def repeat_check(first):
     """The 3-site feeder plan again: identical apart from timings?"""
     net = read_network(DATA / "feeder33_tables")
     sites = [BankSite(b, 0.15, 10) for b in range(2, 34)]
-    again = optimise([LevelCase("base", net)], Levers(sites=sites, max_new_sites=3), Limits(v_min=0.0, v_max=2.0))
+    again = make_plan([LevelCase("base", net)], Levers(sites=sites, max_new_sites=3), Limits(v_min=0.0, v_max=2.0))
     a, b = first.to_dict(), again.to_dict()
     a.pop("seconds")
     b.pop("seconds")
@@ -147,7 +147,7 @@ def synthetic():
     hit = lines["line_id"].isin(new_rating)
     lines.loc[hit, "rating_mva"] = lines.loc[hit, "line_id"].map(new_rating)
     net.lines = lines
-    plan, secs = timed(optimise, [LevelCase("base", net)], Levers(sites=sites, max_new_sites=10),
+    plan, secs = timed(make_plan, [LevelCase("base", net)], Levers(sites=sites, max_new_sites=10),
                        Limits(v_min=0.95, v_max=1.05))
     row(f"meshed grid 32x32 ({c.n} buses), 50 sites", plan, secs, plan.losses_after_mw["base"], None, None,
         "MW", 60.0)
