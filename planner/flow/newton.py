@@ -588,6 +588,16 @@ def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0) -> 
     back &= ~st.frozen
     if not (over.any() or under.any() or back.any()):
         return False
+    apply_limit_switches(c, v, kind, at_limit, q_fixed, over, under, back)
+    st.returns[back] += 1
+    st.frozen |= (st.returns >= FLIP_LIMIT) & (over | under)
+    return True
+
+
+def apply_limit_switches(c, v, kind, at_limit, q_fixed, over, under, back) -> None:
+    """Apply one round of reactive-limit switching in place: buses in ``over`` / ``under`` become
+    PQ held at their maximum / minimum Mvar, buses in ``back`` return to voltage control and
+    start again from their setpoint (the rule every solver of this package follows)."""
     kind[over | under] = PQ
     at_limit[over] = 1
     at_limit[under] = -1
@@ -596,11 +606,7 @@ def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0) -> 
     kind[back] = PV
     at_limit[back] = 0
     q_fixed[back] = 0.0
-    st.returns[back] += 1
-    st.frozen |= (st.returns >= FLIP_LIMIT) & (over | under)
-    # a bus back on voltage control starts from its setpoint
     v[back] = c.v_set[back] * np.exp(1j * np.angle(v[back]))
-    return True
 
 
 # --- continuation on load and generation ----------------------------------------------------

@@ -37,6 +37,7 @@ import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, diagonal_positions
 from ..flow.jacobian import JacobianPattern, bus_derivatives
+from ..flow.newton import apply_limit_switches
 from ..flow.result import FlowStatus
 
 _LU_FIRST = dict(permc_spec="MMD_AT_PLUS_A", options=dict(SymmetricMode=True))
@@ -316,13 +317,5 @@ def _update_limits(c, y, v, kind, alive, q_fixed, at_limit, s_gen, sl_p, sl_i, s
     back = ((at_limit > 0) & (vm > c.v_set + tol)) | ((at_limit < 0) & (vm < c.v_set - tol))
     if not (over.any() or under.any() or back.any()):
         return False
-    kind[over | under] = PQ
-    at_limit[over] = 1
-    at_limit[under] = -1
-    q_fixed[over] = c.q_max[over]
-    q_fixed[under] = c.q_min[under]
-    kind[back] = PV
-    at_limit[back] = 0
-    q_fixed[back] = 0.0
-    v[back] = c.v_set[back] * np.exp(1j * np.angle(v[back]))
+    apply_limit_switches(c, v, kind, at_limit, q_fixed, over, under, back)
     return True
