@@ -166,8 +166,9 @@ def _read_settings(ws, path: Path):
                              **where)
     if "name" in found:
         value, _ = found["name"]
+        # surrounding blanks are dropped, as in every other text cell of a workbook
         name = "" if value is None else (str(int(value)) if isinstance(value, float) and value.is_integer()
-                                         else str(value))
+                                         else str(value).strip())
     return base_mva, name
 
 
