@@ -30,6 +30,7 @@ step_limit_pct = 2.0
 
 [sweep]
 chunk_size = 5
+scheduler = "serial"     # in this process: the suite stays light; cluster runs are compared in test_sweep
 """
 
 
