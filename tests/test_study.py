@@ -542,3 +542,93 @@ def test_model_warnings_reach_the_report_assumptions(tmp_path):
     assert [a for a in data["assumptions"] if a.startswith("Model warning:")] == [
         "Model warning: generators 'S1b': v_set_pu: setpoint 1.02 pu differs from 1 pu of generator 'S1' "
         "on the same bus 1; the first one ('S1') is used."]
+
+
+# --- [profile] derive_levels: load levels clustered from the profile ------------------------------
+
+# Twelve invented hours; the area_1 column must not move the levels (they follow `network` only).
+DERIVE_PROFILE = ("hour,duration_h,network,area_1\n0,2,0.50,0.2\n2,1,0.45,0.2\n3,1,0.60,0.2\n4,2,0.95,0.2\n"
+                  "6,1,1.00,0.2\n7,1,0.90,0.2\n8,3,0.55,0.2\n11,1,0.92,0.2\n")
+DERIVE = ('[study]\ntitle = "derived"\nnetwork = "{net}"\n[limits]\nv_min_pu = 0.90\n'
+          '[objective]\nkind = "losses"\n[solver]\nmax_iterations = 3\n'
+          '[banks]\ncandidates = [18]\nunit_mvar = 0.15\nmax_units = 4\n'
+          '[profile]\nfile = "p.csv"\nderive_levels = 2\n{extra}')
+
+
+def two_means_by_hand(factors, hours):
+    """Independent 2-level load-duration split: sort the factors, try every cut between a low and
+    a high group, keep the cut with the least hour-weighted spread about the group means (the
+    fixed point the clustering reaches on well-separated data). Returns [(hours, mean)] high first."""
+    order = sorted(range(len(factors)), key=lambda i: factors[i])
+    best = None
+    for cut in range(1, len(order)):
+        groups = [order[cut:], order[:cut]]
+        stats = []
+        spread = 0.0
+        for g in groups:
+            h = sum(hours[i] for i in g)
+            m = sum(factors[i] * hours[i] for i in g) / h
+            spread += sum(hours[i] * (factors[i] - m) ** 2 for i in g)
+            stats.append((h, m))
+        if best is None or spread < best[0]:
+            best = (spread, stats)
+    return best[1]
+
+
+def test_levels_derived_from_the_profile(tmp_path):
+    (tmp_path / "p.csv").write_text(DERIVE_PROFILE)
+    s = read_study(write_study(tmp_path, DERIVE.format(net=FEEDER.as_posix(), extra="")))
+    assert [lv.name for lv in s.levels] == ["peak", "light"] and s.peak_level == "peak"
+    rows = [r.split(",") for r in DERIVE_PROFILE.splitlines()[1:]]
+    factors, hours = [float(r[2]) for r in rows], [float(r[1]) for r in rows]
+    expected = two_means_by_hand(factors, hours)
+    # by hand: high = {0.95 x 2 h, 1.00, 0.90, 0.92} -> 4.72 / 5 h; low = 3.70 / 7 h
+    assert expected == [(5.0, pytest.approx(0.944)), (7.0, pytest.approx(3.70 / 7))]
+    for lv, (h, m) in zip(s.levels, expected):
+        assert lv.hours == h
+        assert lv.p_scale == pytest.approx(m, abs=1e-12) and lv.q_scale == lv.p_scale
+        assert lv.bus_scale == {} and lv.v_min_pu is None and lv.v_max_pu is None
+    assert sum(lv.hours for lv in s.levels) == sum(hours) == 12.0
+    assert s.proof.profile.derive_levels == 2           # the same profile is also checked hour by hour
+    # a per-level energy value may name the derived levels
+    s = read_study(write_study(tmp_path, DERIVE.format(
+        net=FEEDER.as_posix(), extra='[economics]\nenergy_value_per_mwh = { peak = 90, light = 40 }\n')))
+    assert s.economics["energy_value_per_mwh"] == {"peak": 90, "light": 40}
+    # three levels take the trade's names
+    s = read_study(write_study(tmp_path, DERIVE.format(net=FEEDER.as_posix(), extra="")
+                               .replace("derive_levels = 2", "derive_levels = 3")))
+    assert [lv.name for lv in s.levels] == ["peak", "shoulder", "light"]
+    assert sum(lv.hours for lv in s.levels) == 12.0
+    assert [lv.p_scale for lv in s.levels] == sorted((lv.p_scale for lv in s.levels), reverse=True)
+
+
+@pytest.mark.parametrize("change,words", [
+    (("", '[[levels]]\nname = "peak"\nhours = 2000\n'), "not both"),
+    (('file = "p.csv"\n', ""), "needs a load profile: give [profile] file"),
+    (("derive_levels = 2", "derive_levels = 0"), "must be a whole number of levels 1-24, got 0"),
+    (("derive_levels = 2", "derive_levels = 2.5"), "must be a whole number, got 2.5"),
+], ids=["both", "no-profile", "zero", "not-whole"])
+def test_derive_levels_errors_name_the_key(tmp_path, change, words):
+    (tmp_path / "p.csv").write_text(DERIVE_PROFILE)
+    text = DERIVE.format(net=FEEDER.as_posix(), extra="")
+    old, new = change
+    text = text + new if old == "" else text.replace(old, new, 1)
+    msg = read_error(write_study(tmp_path, text))
+    assert msg.startswith("case.toml: profile.derive_levels: "), msg
+    assert words in msg, msg
+
+
+def test_derive_levels_needs_a_network_column(tmp_path):
+    (tmp_path / "p.csv").write_text("hour,area_1\n0,0.5\n1,0.9\n")
+    msg = read_error(write_study(tmp_path, DERIVE.format(net=FEEDER.as_posix(), extra="")))
+    assert msg == "case.toml: profile.derive_levels: needs a 'network' column in the profile p.csv (it has area_1)"
+
+
+def test_study_with_derived_levels_runs(tmp_path):
+    (tmp_path / "p.csv").write_text(DERIVE_PROFILE.replace(",area_1", "").replace(",0.2", ""))
+    result = run_study(read_study(write_study(tmp_path, DERIVE.format(net=FEEDER.as_posix(), extra=""))), jobs=1)
+    assert sorted(result.base) == ["light", "peak"]
+    assert result.alternatives[0].verified is True
+    # the hour-by-hour check assigns each hour to the nearest level: the same hours as the clustering
+    hourly = result.proof[0]["hourly"]
+    assert hourly["hours_by_level"] == {"peak": 5.0, "light": 7.0} and hourly["hours"] == 12.0

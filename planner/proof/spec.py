@@ -11,7 +11,8 @@ All sections are optional; a study without them runs as before. Keys (README, "P
 ``[profile]``  hourly verification
     ``file`` (CSV, relative to the study file), ``control`` ("schedule" or "voltage"),
     ``v_on_pu``, ``v_off_pu``, ``delay_h`` (voltage control), ``[profile.groups]`` (bus groups
-    named by factor columns).
+    named by factor columns), ``derive_levels`` (the study's load levels clustered from the
+    profile, read in :mod:`planner.study.spec`).
 ``[bank_checks]``  ``step_limit_pct`` (default 3), ``resonance_margin`` (default 0.5),
     ``orders`` (default [5, 7, 11, 13]).
 ``[sweep]``  ``scheduler`` (a Dask scheduler address; default: this machine's cores),
@@ -45,6 +46,7 @@ class ProfileSpec:
     v_off_pu: float = 1.03
     delay_h: float = 1.0
     groups: dict = field(default_factory=dict)
+    derive_levels: int | None = None     # the study's levels come from the profile (planner.study.spec)
 
 
 @dataclass
@@ -108,7 +110,7 @@ def read_proof(top, here: Path, level_names) -> ProofSpec:
         ps.profile = ProfileSpec(
             file=here / r.get("file", str, required=True), control=control, v_on_pu=v_on, v_off_pu=v_off,
             delay_h=r.get("delay_h", float, 1.0, check=lambda v: 0 <= v <= 8784, why="must be 0-8784 hours"),
-            groups=groups)
+            groups=groups, derive_levels=r.get("derive_levels", int, None))   # checked in planner.study.spec
         r.finish()
     if "bank_checks" in top.table:
         r = top.sub("bank_checks")

@@ -6,6 +6,7 @@ Every key is documented in the README ("Study file"). A bad file gives one
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 from dataclasses import dataclass, field
@@ -224,6 +225,61 @@ def _bus_key(r: _Reader, key):
         raise r.error(key, "bus keys must be bus numbers") from None
 
 
+MAX_DERIVED_LEVELS = 24
+
+
+def derived_level_names(k: int) -> list:
+    """Names of ``k`` levels derived from a profile, highest load first.
+
+    >>> derived_level_names(3), derived_level_names(2), derived_level_names(1)
+    (['peak', 'shoulder', 'light'], ['peak', 'light'], ['all hours'])
+    >>> derived_level_names(4)
+    ['level 1 (peak)', 'level 2', 'level 3', 'level 4 (light)']
+    """
+    if k <= 3:
+        return {1: ["all hours"], 2: ["peak", "light"], 3: ["peak", "shoulder", "light"]}[k]
+    return ["level 1 (peak)"] + [f"level {i}" for i in range(2, k)] + [f"level {k} (light)"]
+
+
+def _derived_levels(top: _Reader, here: Path):
+    """Levels clustered from the profile's ``network`` column when ``[profile] derive_levels = N``
+    is set (else ``None``): the load-duration clustering of :func:`planner.hourly.cluster.cluster_levels`.
+    Each level's hours are the hours of the intervals it stands for and its load scale (P and Q)
+    is their hour-weighted mean ``network`` factor; bands are the study's (``[limits]``)."""
+    prof = top.table.get("profile")
+    if not isinstance(prof, dict) or "derive_levels" not in prof:
+        return None
+    r = _Reader(top.file, prof, "profile")
+    key = "derive_levels"
+    k = r.get(key, int, check=lambda v: 1 <= v <= MAX_DERIVED_LEVELS,
+              why=f"must be a whole number of levels 1-{MAX_DERIVED_LEVELS}")
+    if "levels" in top.table:
+        raise r.error(key, "derives the load levels from the profile: remove the [[levels]] entries "
+                           "or this key (not both)")
+    file = prof.get("file")
+    if not isinstance(file, str) or not file.strip():
+        raise r.error(key, "needs a load profile: give [profile] file")
+    from ..hourly.cluster import cluster_levels
+    from ..hourly.profile import read_profile
+    profile = read_profile(here / file)
+    if "network" not in profile.columns:
+        raise r.error(key, f"needs a 'network' column in the profile {Path(file).name} "
+                           f"(it has {', '.join(profile.columns)})")
+    col = profile.columns.index("network")
+    network_only = dataclasses.replace(profile, columns=["network"],
+                                       factors=profile.factors[:, [col]].copy())
+    table = cluster_levels(network_only, k).table
+    names = derived_level_names(len(table))
+    levels = []
+    for name, row in zip(names, table.itertuples(index=False)):
+        if not 0 < row.network <= MAX_SCALE:
+            raise r.error(key, f"level {name!r} would have a load scale of {row.network:g} "
+                               f"(must be above 0, at most {MAX_SCALE:g}): check the profile's factors")
+        levels.append(LevelSpec(name=name, hours=float(row.hours), p_scale=float(row.network),
+                                q_scale=float(row.network)))
+    return levels
+
+
 def read_study(path) -> StudySpec:
     """Read and check a study file; paths inside it are relative to the file.
 
@@ -281,8 +337,9 @@ def read_study(path) -> StudySpec:
     lim.used.add("buses")
     lim.finish()
 
-    levels = top.get("levels", list, required=True)
-    if not levels:
+    derived = _derived_levels(top, here)
+    levels = [] if derived is not None else top.get("levels", list, required=True)
+    if derived is None and not levels:
         raise top.error("levels", "needs at least one load level")
     names = set()
     for i, t in enumerate(levels):
@@ -317,6 +374,9 @@ def read_study(path) -> StudySpec:
         r.used.add("bus_scale")
         r.finish()
         spec.levels.append(lv)
+    if derived is not None:
+        spec.levels = derived
+        names = {lv.name for lv in derived}
     total_hours = sum(lv.hours for lv in spec.levels)
     if total_hours > HOURS_PER_YEAR + 1e-9:
         raise top.error("levels", f"hours add up to {total_hours:g}, more than a year "
