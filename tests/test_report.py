@@ -16,6 +16,7 @@ from pathlib import Path
 
 import pytest
 
+from planner import atomic as shared_atomic
 from planner.report import atomic, svg
 from planner.report.atomic import MARKER, write_report_folder
 from planner.report.convert import report_data
@@ -299,16 +300,16 @@ def test_failure_mid_write_leaves_earlier_report_identical(tmp_path, monkeypatch
     before = _snapshot(target)
     assert "report.html" in before and "comparison.csv" in before
 
-    real = atomic._write_file
+    real = shared_atomic._write_bytes
     calls = {"n": 0}
 
-    def failing(path, content):
+    def failing(path, data, mode):
         calls["n"] += 1
         if calls["n"] == 3:
             raise OSError("disk full (simulated)")
-        real(path, content)
+        real(path, data, mode)
 
-    monkeypatch.setattr(atomic, "_write_file", failing)
+    monkeypatch.setattr(shared_atomic, "_write_bytes", failing)
     with pytest.raises(OSError, match="simulated"):
         write_report_folder(target, report_files(dict(data, title="A newer study")))
     assert calls["n"] == 3

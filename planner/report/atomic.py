@@ -18,14 +18,6 @@ __all__ = ["write_report_folder", "MARKER"]
 MARKER = ".planner-report"
 
 
-def _write_file(path: Path, content: str | bytes) -> None:
-    data = content.encode("utf-8") if isinstance(content, str) else bytes(content)
-    with open(path, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
-
-
 def write_report_folder(folder: str | os.PathLike, files: Mapping[str, str | bytes]) -> Path:
     """Write ``files`` (name -> text or bytes) as the complete content of ``folder``, atomically.
 
@@ -40,14 +32,4 @@ def write_report_folder(folder: str | os.PathLike, files: Mapping[str, str | byt
     ...     sorted(p.name for p in d.iterdir() if not p.name.startswith("."))
     ['b.txt']
     """
-    names = [_atomic._check_name(n) for n in files]
-    if MARKER in names:
-        raise ValueError(f"report folder: invalid file name {MARKER!r}")
-    if len(set(n.lower() for n in names)) != len(names):
-        raise ValueError("report folder: file names differ only by case")
-
-    def fill(tmp: Path) -> None:
-        for name in names:
-            _write_file(tmp / name, files[name])
-            os.chmod(tmp / name, 0o666 & ~_atomic._umask())
-    return _atomic.write_folder(folder, fill, marker=MARKER)
+    return _atomic.write_folder(folder, files, marker=MARKER)
