@@ -106,6 +106,12 @@ def check_toml_shape(text: str, file=None, *, max_depth: int = MAX_TOML_DEPTH,
     """
     depth, parts, line = 0, 1, 1
     at_key = True          # between the start of a line (or a table header) and its "="
+
+    def one_more_part(parts: int) -> int:
+        if parts + 1 > max_key_parts:
+            raise InputError(f"a key of more than {max_key_parts} dotted parts (not accepted)",
+                             file=file, line=line)
+        return parts + 1
     in_header = False
     i, n = 0, len(text)
     while i < n:
@@ -146,10 +152,7 @@ def check_toml_shape(text: str, file=None, *, max_depth: int = MAX_TOML_DEPTH,
                 i += 1
                 continue
             if ch == ".":
-                parts += 1
-                if parts > max_key_parts:
-                    raise InputError(f"a key of more than {max_key_parts} dotted parts (not accepted)",
-                                     file=file, line=line)
+                parts = one_more_part(parts)
             elif ch == "=":
                 at_key = False
             i += 1
@@ -164,10 +167,7 @@ def check_toml_shape(text: str, file=None, *, max_depth: int = MAX_TOML_DEPTH,
         elif ch in "]}":
             depth = max(0, depth - 1)
         elif ch == "." and at_key:
-            parts += 1
-            if parts > max_key_parts:
-                raise InputError(f"a key of more than {max_key_parts} dotted parts (not accepted)",
-                                 file=file, line=line)
+            parts = one_more_part(parts)
         elif ch == "=":
             at_key = False
         elif ch == "," and depth > 0:
