@@ -98,6 +98,10 @@ def evaluate(pb: PlanProblem, st: Settings, warm: list | None = None, tables=Fal
         v, t = violations(pb, l, fr)
         viols.extend(v)
         total += t
+        for side in getattr(pb, "side_constraints", ()):
+            v, t = side.violations(pb, l, st, fr)
+            viols.extend(v)
+            total += t
     losses = np.array(losses)
     cap = pb.capital(st)
     merit = (float(pb.loss_weights() @ losses) + pb.capital_weight() * cap

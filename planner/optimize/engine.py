@@ -36,7 +36,8 @@ _SEEDS = 12   # earlier proposals whose loss cuts a new step starts with
 
 
 def plan(network_or_levels, levers: Levers | None = None, limits: Limits | None = None,
-         objective: Objective | None = None, options: Options | None = None, progress=None) -> PlanResult:
+         objective: Objective | None = None, options: Options | None = None, progress=None, *,
+         security=None, side_constraints=()) -> PlanResult:
     """Choose bank sites and units, switching, setpoints and taps across load levels.
 
     ``network_or_levels`` is a :class:`~planner.network.model.Network` (one level named
@@ -44,6 +45,12 @@ def plan(network_or_levels, levers: Levers | None = None, limits: Limits | None 
     plan, is a full AC load flow of the exact discrete settings at every level. ``progress``
     (optional) is called with each :class:`StepRecord`. The same inputs give the same plan on
     every run.
+
+    ``security`` (a :class:`planner.contingency.secure.SecurityRequest`) asks for an N-1-secure
+    plan: post-outage voltage rows are added in rounds and the plan is AC-proved under every
+    outage of the set; the result's ``security`` field says whether it is secure.
+    ``side_constraints``: objects giving extra linear rows and AC breaches (see
+    :class:`planner.contingency.secure.PostOutageRows`).
 
     >>> from pathlib import Path
     >>> from planner.network.io import read_network
@@ -57,8 +64,12 @@ def plan(network_or_levels, levers: Levers | None = None, limits: Limits | None 
     """
     levels = network_or_levels if isinstance(network_or_levels, (list, tuple)) \
         else [LevelCase("base", network_or_levels)]
+    if security is not None:
+        from ..contingency.secure import plan_secure
+        return plan_secure(list(levels), levers, limits, objective, options, security, progress)
     pb = PlanProblem(list(levels), levers or Levers(), limits or Limits(), objective or Objective(),
                      options or Options())
+    pb.side_constraints = list(side_constraints)
     try:
         with _blas_threads(pb.options):
             return _run(pb, progress)

@@ -52,6 +52,9 @@ class LevelData:
     s0: np.ndarray = None         # their |S| now, pu
     ds: np.ndarray = None         # (rows, m)
     s_hi: np.ndarray = None       # their ratings, pu
+    # further linear limit rows (x0, slopes (rows, m), lo, hi), penalised like the voltage rows:
+    # e.g. post-outage voltages of an N-1-secured plan (planner.contingency.secure)
+    extra_rows: list = field(default_factory=list)
 
 
 @dataclass
@@ -202,6 +205,8 @@ def build_model(spec: StepSpec):
         viol = (_limit_rows(b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, du)
                 + _limit_rows(b, "q", lev.q0, lev.dq, lev.q_lo, lev.q_hi, du)
                 + _limit_rows(b, "s", lev.s0, lev.ds, None, lev.s_hi, du))
+        for j, (x0, slopes, lo, hi) in enumerate(lev.extra_rows or ()):
+            viol = viol + _limit_rows(b, f"extra{j}", x0, slopes, lo, hi, du)
         obj_terms.append(lev.weight / scale * b.loss + spec.penalty / scale * viol)
         tie.append(pyo.quicksum(m.k[l, s] for s in S))
     obj_terms.append(spec.tie_break * (pyo.quicksum(m.nf[s] + 2 * m.ns[s] for s in S) + pyo.quicksum(tie)))

@@ -142,6 +142,9 @@ class PlanProblem:
         # per level and bus: how far inside the band the linear voltage rows aim (lower, upper)
         self.v_margin = [(np.zeros(c0.n), np.zeros(c0.n)) for _ in levels]
         self.flows_run = 0
+        # side constraints (e.g. planner.contingency.secure.PostOutageRows): each gives linear
+        # rows per level (``rows``) and its AC breaches for the merit (``violations``)
+        self.side_constraints = []
 
     def _adjacent_sites(self, c):
         by_bus = {}
@@ -281,6 +284,7 @@ class PlanProblem:
             q_rows=gb[q_sel], q0=sens.q0[q_sel], dq=sens.dq[q_sel], q_lo=c.q_min[gb][q_sel], q_hi=c.q_max[gb][q_sel],
             cur_units=cur_units.astype(float), cur_exist=st.exist[l].astype(int),
             v_now=np.abs(fr.v[self.vset_bus]),
+            extra_rows=[r for side in self.side_constraints for r in side.rows(self, l, st, fr)],
         )
 
     def sensitivity(self, fr: FlowResult):

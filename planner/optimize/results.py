@@ -35,7 +35,8 @@ class Violation:
     excess: float      # in the limit's unit (pu voltage, Mvar, % loading)
 
     def text(self) -> str:
-        unit = {"voltage": " pu", "reactive": " Mvar", "loading": " %"}.get(self.kind, "")
+        unit = {"voltage": " pu", "post-outage voltage": " pu", "reactive": " Mvar",
+                "loading": " %"}.get(self.kind, "")
         if self.kind == "no convergence":
             return f"{self.level}: load flow did not converge ({self.element})"
         return (f"{self.level}: {self.kind} at {self.element}: {self.value:.4f}{unit} against limit "
@@ -107,6 +108,7 @@ class PlanResult:
     stop_reason: str = ""            # why the outer loop stopped
     settings: object = field(repr=False, default=None)
     bands: dict = field(repr=False, default_factory=dict)   # level -> (v_min, v_max) per bus, compiled order
+    security: object = None          # planner.contingency.secure.SecurityResult of an N-1-secured plan
 
     @property
     def verified(self) -> bool:
@@ -133,6 +135,7 @@ class PlanResult:
             "bound": self.bound, "violations": [{**asdict(v), "text": v.text()} for v in self.violations],
             "iterations": [e.to_dict() for e in self.log], "ac_flows": self.ac_flows,
             "milp_solves": self.milp_solves, "seconds": self.seconds,
+            **({"security": self.security.to_dict()} if self.security is not None else {}),
         }
 
     def to_frames(self) -> dict:

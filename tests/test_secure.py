@@ -1,0 +1,109 @@
+"""N-1 security as an optimiser constraint (planner.contingency.secure).
+
+Case: the IEEE 30-bus case (tests/data/ieee30cdf.txt, see tests/data/README.md) with two outages
+that break the 0.90-1.10 pu emergency band (common practice) in the base case: transformer 28-27
+(bus 30 falls to about 0.864 pu) and line 2-5 (bus 5 to about 0.899 pu). A loss-valued plan with a
+low value on losses builds no bank and leaves both breaches; the secured plan must cure them, as
+shown by the independent N-1 verification (full AC of every outage, not the optimiser's rows).
+The post-outage slopes are checked against finite differences of AC post-outage load flows.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from planner.contingency.n1 import outage_list, verify_n1
+from planner.contingency.secure import PostOutageRows, SecurityRequest, SecurityStatus, post_outage_slopes
+from planner.flow.newton import solve_flow
+from planner.network.cdf import read_cdf
+from planner.optimize.engine import LevelCase, plan
+from planner.optimize.levers import BankSite, Levers, Limits, Objective, Options
+from planner.optimize.problem import PlanProblem
+from planner.proof.run import plan_network
+
+DATA = Path(__file__).resolve().parent / "data"
+LIMITS = Limits(v_min=0.90, v_max=1.10)
+CHEAP_LOSSES = Objective(kind="cost", loss_value_per_mw=10.0, capital_factor=1.0)
+
+
+@pytest.fixture(scope="module")
+def net30():
+    return read_cdf(DATA / "ieee30cdf.txt")
+
+
+@pytest.fixture(scope="module")
+def outages(net30):
+    return outage_list(net30, ids=["28-27", "2-5"])
+
+
+def _voltage_breaches(net, result, outages):
+    res = verify_n1(plan_network(net, result, "base"), outages, ratings=False, screen=False)
+    return res.violations[res.violations.limit_kind.isin(["low voltage", "high voltage"])]
+
+
+def test_secured_plan_cures_post_outage_breaches_the_plain_plan_leaves(net30, outages):
+    levers = Levers(sites=[BankSite(30, 1.0, 10, cost_per_mvar=1.0), BankSite(5, 5.0, 10, cost_per_mvar=1.0)])
+    plain = plan(net30, levers, LIMITS, CHEAP_LOSSES)
+    before = _voltage_breaches(net30, plain, outages)
+    assert sorted(before.element_id) == ["2-5", "28-27"]
+    assert before.value.min() < 0.87                      # bus 30 with 28-27 out
+
+    secured = plan(net30, levers, LIMITS, CHEAP_LOSSES, security=SecurityRequest(outages=outages, ratings=False))
+    sec = secured.security
+    assert sec.status is SecurityStatus.SECURE and sec.secure and sec.success
+    assert sec.rounds == 1
+    assert sorted(sec.tracked.element_id) == ["2-5", "28-27"] and set(sec.tracked["round"]) == {1}
+    assert sec.remaining.empty
+    assert sec.history[0]["voltage_breaches"] == 2 and sec.history[-1]["voltage_breaches"] == 0
+    assert secured.verified and secured.banks
+    # the independent check, with no screening estimate
+    after = verify_n1(plan_network(net30, secured, "base"), outages, ratings=False, screen=False)
+    assert after.violations.empty
+    assert after.outcomes.v_min_pu.min() >= 0.90 - 1e-9
+    assert secured.capital_cost > plain.capital_cost      # security costs banks the losses alone do not pay for
+    d = secured.to_dict()["security"]
+    assert d["status"] == "secure" and "licensed engineering practice" in d["caution"]
+
+
+def test_levers_that_cannot_cure_say_not_secure(net30, outages):
+    # one small bank far from bus 30 and bus 5: the breaches stay, and the result says so
+    levers = Levers(sites=[BankSite(21, 0.5, 2, cost_per_mvar=1.0)])
+    res = plan(net30, levers, LIMITS, CHEAP_LOSSES,
+               security=SecurityRequest(outages=outages, ratings=False, max_rounds=2))
+    sec = res.security
+    assert sec.status is SecurityStatus.NOT_SECURE and not sec.success and not sec.secure
+    assert set(sec.remaining.element_id) == {"2-5", "28-27"}
+    assert (sec.remaining.excess > 0).all()
+    assert "not N-1 secure" in sec.message
+    # the optimiser's own AC check saw the post-outage breaches of the tracked outages too
+    assert any(v.kind == "post-outage voltage" for v in res.violations)
+
+
+def test_post_outage_slopes_match_finite_differences(net30, outages):
+    levers = Levers(sites=[BankSite(30, 1.0, 10), BankSite(26, 1.0, 10)], gen_v_range={5: (0.95, 1.10)})
+    pb = PlanProblem([LevelCase("base", net30)], levers, Limits(), Objective(), Options())
+    st = pb.initial_settings()
+    fr = solve_flow(compiled=pb.compiled_for(0, st))
+    o = outages[1]                                        # transformer 28-27
+    side = PostOutageRows(pb.levels, [o])
+    rf, sol, br, alive = side._solve(pb, 0, st, fr, o)
+    slopes = post_outage_slopes(pb, rf, sol, br, alive)
+    vm0 = np.abs(sol.v)
+    for col, move in ((0, "fixed"), (2, "vset")):
+        st2 = st.copy()
+        if move == "fixed":
+            st2.fixed[0] = 1                              # 1 Mvar = 0.01 pu at bus 30
+            du = 0.01
+        else:
+            st2.vset[0, 0] += 0.002
+            du = 0.002
+        fr2 = solve_flow(compiled=pb.compiled_for(0, st2), start=fr)
+        _, sol2, _, _ = side._solve(pb, 0, st2, fr2, o)
+        dv = np.abs(sol2.v) - vm0
+        pred = slopes[:, col] * du
+        assert np.abs(dv).max() > 1e-4
+        assert np.abs(dv - pred).max() < 0.03 * np.abs(dv).max()
+    # bus 30 is the most sensitive bus to its own bank
+    assert int(np.argmax(slopes[:, 0])) == int(pb.compiled[0].index_of([30])[0])
