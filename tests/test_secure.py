@@ -107,3 +107,40 @@ def test_post_outage_slopes_match_finite_differences(net30, outages):
         assert np.abs(dv - pred).max() < 0.03 * np.abs(dv).max()
     # bus 30 is the most sensitive bus to its own bank
     assert int(np.argmax(slopes[:, 0])) == int(pb.compiled[0].index_of([30])[0])
+
+
+STUDIES = DATA / "studies"
+
+
+def test_study_alternative_secured_against_its_outages():
+    from planner.report.convert import report_data
+    from planner.report.render import report_files
+    from planner.study.run import run_study
+    from planner.study.spec import read_study
+    spec = read_study(STUDIES / "ieee30_secure.toml")
+    assert [a.secure_against_outages for a in spec.alternatives] == [False, True]
+    res = run_study(spec, jobs=1)
+    plain, secured = (a.plan for a in res.alternatives)
+    assert plain.security is None and secured.security.status is SecurityStatus.SECURE
+    n1 = res.proof[0]["outages"]
+    assert n1["cases"]["base"]["peak"]["count"] == 2
+    assert n1["cases"]["Losses only"]["peak"]["count"] == 2          # the plain plan leaves both
+    assert n1["cases"]["N-1 secure"]["peak"]["count"] == 0
+    assert n1["cases"]["N-1 secure"]["peak"]["cured"] == 2
+    assert set(n1["secured"]) == {"N-1 secure"}
+    html = report_files(report_data(res))["report.html"]
+    assert "optimised with N-1 security as a constraint" in html
+    assert "licensed engineering practice" in html
+
+
+def test_secure_key_needs_an_outage_section(tmp_path):
+    from planner.errors import InputError
+    from planner.study.spec import read_study
+    text = (STUDIES / "ieee30_secure.toml").read_text()
+    text = text[:text.index("[outages]")].replace('network = "../ieee30cdf.txt"',
+                                                   f'network = "{(DATA / "ieee30cdf.txt").as_posix()}"')
+    p = tmp_path / "s.toml"
+    p.write_text(text)
+    with pytest.raises(InputError) as err:
+        read_study(p)
+    assert "alternatives[1].secure_against_outages" in str(err.value) and "[outages]" in str(err.value)

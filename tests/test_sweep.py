@@ -47,6 +47,28 @@ def test_n1_serial_and_cluster_identical(net30, cluster):
     assert seen[-1] == (6, 6) and len(seen) == 6
 
 
+def test_study_n1_runs_through_the_sweep_scheduler_with_identical_results(net30, cluster):
+    # the N-1 section of a study (base case and a plan, two levels) in this process and as chunks
+    # of outages on a two-worker cluster
+    from planner.optimize.engine import LevelCase, plan
+    from planner.optimize.levers import BankSite, Levers, Limits
+    from planner.proof.run import prove_study
+    from planner.proof.spec import OutageSpec, ProofSpec
+    from planner.study.run import scaled_network
+    from planner.study.spec import AlternativeSpec
+    cases = [LevelCase("peak", net30), LevelCase("light", scaled_network(net30, 0.6, 0.6))]
+    p = plan(net30, Levers(sites=[BankSite(30, 1.0, 5, kinds=("fixed",))]), Limits(v_min=0.9, v_max=1.1))
+    assert p.banks
+    proof = ProofSpec(outages=OutageSpec(elements=("line", "transformer")), scheduler="serial", chunk_size=7)
+    serial_data, serial = prove_study(None, net30, cases, [(AlternativeSpec("A"), p)], proof)
+    dask_data, dask_run = prove_study(None, net30, cases, [(AlternativeSpec("A"), p)], proof, client=cluster)
+    for name in ("n1_outcomes.csv", "n1_violations.csv"):
+        pd.testing.assert_frame_equal(serial[name], dask_run[name])
+    assert serial_data == dask_data
+    assert len(serial["n1_outcomes.csv"]) == 2 * 2 * 41      # base and plan, two levels, 41 branches
+    assert serial_data["outages"]["cases"]["base"]["peak"]["count"] > 0
+
+
 def test_hourly_serial_and_cluster_identical(cluster):
     net = read_network(ROOT / "models" / "wrenfold")
     prof = profile_from_factors(_factors())

@@ -76,6 +76,20 @@ def outage_section(d: dict) -> str:
                          _fmt(c["value_before"], ".4f"), _fmt(c["value_after"], ".4f")] for c in e["changes"]]
                 body.append(_table(["element out", "id", "limit", "change", "value before", "value after"], rows,
                                    f"{case}, {lv}: contingency problems the plan cures or creates"))
+    for case, s in (d.get("secured") or {}).items():
+        body.append(_p(f"{case} was optimised with N-1 security as a constraint: {s['message']} "
+                       f"({s['rounds']} round(s) of post-outage voltage rows, linearised at each step from the "
+                       "post-outage Jacobian, and every outage of the set proved by full AC load flows)."))
+        if s["tracked"]:
+            body.append(_table(["element out", "id", "rows added in round"],
+                               [[t["element"], t["element_id"], t["round"]] for t in s["tracked"]],
+                               f"{case}: outages whose post-outage voltage rows the optimiser held"))
+        if s["remaining"]:
+            body.append(_table(["level", "element out", "id", "limit", "worst bus / branch", "value"],
+                               [[r["level"], r["element"], r["element_id"], r["limit_kind"], r["where"],
+                                 _fmt(r["value"], ".4f")] for r in s["remaining"][:10]],
+                               f"{case}: limits still broken under outages (the levers could not cure these)"))
+        body.append(_p(s["caution"]))
     return _section("Outages (N-1)", "outages", body)
 
 

@@ -79,17 +79,27 @@ def _curve(values, hours, descending):
     return [float(v) for v in x], [float(v) for v in y]
 
 
-def prove_study(spec, net, cases, plans, proof, progress=None, scaled=None):
+def prove_study(spec, net, cases, plans, proof, progress=None, scaled=None, client=None):
     """Run the sections the study asks for; returns ``(data, frames)`` (see module docstring).
 
     ``cases``: the study's level cases (``.name``, ``.network`` scaled to the level); ``plans``:
-    list of ``(alternative spec, PlanResult)``; ``proof``: the study's ProofSpec.
+    list of ``(alternative spec, PlanResult)``; ``proof``: the study's ProofSpec. The N-1 and
+    hourly sweeps run where ``[sweep]`` says (this process, this machine's cores or a Dask
+    scheduler), or on ``client`` (a ``distributed.Client``) when given; every choice gives the
+    same numbers.
     """
+    if client is None and (proof.outages is not None or proof.profile is not None):
+        from ..sweep.engine import sweep_client
+        with sweep_client(proof.scheduler or "local") as cl:
+            return _prove(spec, net, cases, plans, proof, progress, cl)
+    return _prove(spec, net, cases, plans, proof, progress, client)
+
+
+def _prove(spec, net, cases, plans, proof, progress, client):
     say = progress or (lambda text: None)
     names = [lc.name for lc in cases]
     level_net = {lc.name: lc.network for lc in cases}
     data, frames = {}, {}
-    where = proof.scheduler or "local"
     step = getattr(progress, "step", None)
 
     if proof.outages is not None:
@@ -98,6 +108,8 @@ def prove_study(spec, net, cases, plans, proof, progress=None, scaled=None):
         levels = o.levels or names
         say(f"N-1: {len(outs)} outages x {len(levels)} levels x {1 + len(plans)} cases")
         kw = dict(band=o.band, bus_bands=o.bus_bands, ratings=o.ratings, screen=o.screen)
+        if client is not None:        # chunks of outages on the cluster (serial: in this process)
+            kw.update(client=client, chunk_size=proof.chunk_size)
         base_res = {n: verify_n1(level_net[n], outs, **kw) for n in levels}
         out = {"band": list(o.band), "levels": levels, "outages": len(outs), "min_kv": o.min_kv,
                "elements": list(o.elements), "cases": {}}
@@ -124,14 +136,14 @@ def prove_study(spec, net, cases, plans, proof, progress=None, scaled=None):
             for n in levels:
                 res = verify_n1(plan_network(level_net[n], plan, n), outs, **kw)
                 record(alt.name, n, res, compare_n1(base_res[n], res))
+            if getattr(plan, "security", None) is not None:     # an N-1-secured alternative
+                out.setdefault("secured", {})[alt.name] = plan.security.to_dict()
         data["outages"] = out
         frames["n1_outcomes.csv"] = pd.concat(all_rows, ignore_index=True)
         frames["n1_violations.csv"] = pd.concat(all_viol, ignore_index=True)
 
     if proof.profile is not None:
-        from ..sweep.engine import sweep_client
-        with sweep_client(where) as client:
-            _hourly(spec, net, plans, proof, names, data, frames, say, client, step)
+        _hourly(spec, net, plans, proof, names, data, frames, say, client, step)
 
     if proof.bank_checks is not None:
         b = proof.bank_checks

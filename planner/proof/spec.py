@@ -69,6 +69,17 @@ class ProofSpec:
         return bool(self.outages or self.profile or self.bank_checks)
 
 
+def security_request(proof: ProofSpec, network):
+    """The :class:`~planner.contingency.secure.SecurityRequest` of the study's ``[outages]`` set
+    (for an alternative with ``secure_against_outages = true``)."""
+    from ..contingency.n1 import outage_list
+    from ..contingency.secure import SecurityRequest
+    o = proof.outages
+    return SecurityRequest(outages=outage_list(network, kinds=o.elements, ids=o.ids, min_kv=o.min_kv),
+                           band=tuple(o.band), bus_bands=dict(o.bus_bands), ratings=o.ratings, levels=o.levels,
+                           where=None, chunk_size=proof.chunk_size)
+
+
 def read_proof(top, here: Path, level_names) -> ProofSpec:
     """Read the sections from the study file's top-level reader (``planner.study.spec._Reader``)."""
     from ..study.spec import _band, _bus_key

@@ -120,6 +120,14 @@ def _levers(spec: StudySpec, alt, sites) -> Levers:
         taps=spec.taps and alt.taps, setpoints_per_level=spec.setpoints_per_level)
 
 
+def _security(spec: StudySpec, alt, cases):
+    """The N-1 security request of an alternative that asks for it (the study's [outages] set)."""
+    if not getattr(alt, "secure_against_outages", False):
+        return None
+    from ..proof.spec import security_request
+    return security_request(spec.proof, cases[0].network)
+
+
 def _merit_text(objective: str, currency: str, weight_sum: float, entry) -> str:
     """The optimiser's objective in the units it has: money a year, or hour-weighted mean MW.
     While limits are broken a penalty in the same units is part of it, and the text says so."""
@@ -165,12 +173,14 @@ def _worker_init(queue):
 
 def _optimize_one(args):
     """Worker: optimise one alternative (runs in a child process when ``jobs > 1``)."""
-    cases, levers, limits, objective, options, alt_name, merit = args
+    cases, levers, limits, objective, options, alt_name, merit, *extra = args
+    security = extra[0] if extra else None
     queue = _QUEUE
 
     def log(entry):
         queue.put(_progress_line(alt_name, entry, merit))
-    plan = make_plan(cases, levers, limits, objective, options, progress=log if queue is not None else None)
+    plan = make_plan(cases, levers, limits, objective, options, progress=log if queue is not None else None,
+                     security=security)
     return _without_solver_caches(plan)
 
 
@@ -224,6 +234,7 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
         for k, alt in enumerate(alts):
             say(f"alternative {k + 1}/{len(alts)}: {alt.name}")
             plan = make_plan(cases, _levers(spec, alt, sites), limits, objective, options,
+                             security=_security(spec, alt, cases),
                             progress=lambda e, _n=alt.name: say(_progress_line(_n, e, merit)))
             plans.append((alt, plan))
         return plans
@@ -270,7 +281,8 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
         q = ctx.Queue()
         pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
         futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
-                                               alt.name, merit)): k for k, alt in enumerate(alts)}
+                                               alt.name, merit, _security(spec, alt, cases))): k
+                   for k, alt in enumerate(alts)}
     try:
         results = [None] * len(alts)
         pending = set(futures)

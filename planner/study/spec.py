@@ -63,6 +63,7 @@ class AlternativeSpec:
     taps: bool = True
     budget: float | None = None
     max_new_sites: int | None = None
+    secure_against_outages: bool = False    # N-1 security as a constraint, outages of [outages]
 
 
 @dataclass
@@ -485,7 +486,10 @@ def read_study(path) -> StudySpec:
             taps=r.get("taps", bool, True),
             budget=r.get("budget", float, None, check=_money, why=MONEY_WHY),
             max_new_sites=r.get("max_new_sites", int, None, check=lambda v: 0 <= v <= 100000, why="must not be negative (and at most 100000)"),
+            secure_against_outages=r.get("secure_against_outages", bool, False),
         )
+        if a.secure_against_outages and not isinstance(top.table.get("outages"), dict):
+            raise r.error("secure_against_outages", "needs an [outages] section naming the outages to secure against")
         if a.name in seen:
             raise r.error("name", f"alternative {a.name!r} is defined twice")
         seen.add(a.name)
