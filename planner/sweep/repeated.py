@@ -3,9 +3,10 @@
 A study proving a plan solves the same network thousands of times (every hour of a year, every
 outage). The admittance matrix keeps one sparsity structure for all of them: a bank step only
 changes a diagonal value, and a branch outage is modelled by subtracting the branch's
-admittances from the entries it touches (they stay stored, as numeric zeros). So the Jacobian
-pattern and its fill-reducing ordering, worked out once per set of PV / PQ buses, serve every
-solve; each Newton iteration is one gather, one LU without ordering work, and one solve.
+admittances from the entries it touches (they stay stored, as numeric zeros). So the load
+flow's own symbolic work (:class:`planner.flow.jacobian.SymbolicCache`: Jacobian pattern and
+fill-reducing ordering, one per set of live buses) serves every solve; each Newton iteration is
+one gather, one LU without ordering work, and one solve.
 
 :class:`RepeatedFlow` holds that shared structure; :meth:`RepeatedFlow.solve` runs one
 warm-started Newton-Raphson load flow with reactive-limit enforcement (the rule of
@@ -33,15 +34,13 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
-import scipy.sparse.linalg as spla
 
-from ..network.compile import PQ, PV, SLACK, Compiled, diagonal_positions
-from ..flow.jacobian import JacobianPattern, bus_derivatives
+from ..flow.equations import injection
+from ..flow.jacobian import JacobianPattern, SymbolicCache, bus_derivatives
 from ..flow.newton import apply_limit_switches
 from ..flow.result import FlowStatus
+from ..network.compile import PQ, PV, SLACK, Compiled, diagonal_positions
 
-_LU_FIRST = dict(permc_spec="MMD_AT_PLUS_A", options=dict(SymmetricMode=True))
-_LU_ORDERED = dict(permc_spec="NATURAL", options=dict(SymmetricMode=True))
 LINE_SEARCH_STEPS = 10
 MAX_LIMIT_ROUNDS = 20
 LOW_VOLTAGE_SOLUTION_PU = 0.5
@@ -72,40 +71,29 @@ class PointSolution:
 DENSE_UP_TO = 400   # unknowns; below this a dense LAPACK solve beats building a sparse LU (Python overhead)
 
 
-class _OrderedSystem:
-    """Jacobian structure for one set of PV / PQ buses, in its fill-reducing order (or, for a
-    small system, the positions of its entries in a dense matrix)."""
+class _DenseSystem:
+    """Jacobian of one PV / PQ split of a small network as a dense matrix (positions worked out
+    once from the load flow's :class:`~planner.flow.jacobian.JacobianPattern`); same unknowns
+    and ``solve(v, dload, rhs)`` as the load flow's sparse systems. No ordering is involved, so
+    every run gives the same numbers whatever order the splits come in."""
 
-    def __init__(self, y, pvpq, pq, v, dload):
-        pattern = JacobianPattern(y, pvpq, pq)
-        self.pvpq, self.pq = pvpq, pq
+    def __init__(self, y, free, pq):
+        pattern = JacobianPattern(y, free, pq)
         self.size = pattern.size
-        self.dense = self.size <= DENSE_UP_TO
-        if self.dense:
-            cols = np.repeat(np.arange(self.size), np.diff(pattern.indptr))
-            self.flat = pattern.indices.astype(np.int64) * self.size + cols
-            self.src = pattern.src
-            return
-        lu = spla.splu(pattern.matrix(v, dload), **_LU_FIRST)
-        self.order = np.argsort(lu.perm_c)
-        ordered = pattern.permuted(self.order)
-        self.src, self.indices, self.indptr = ordered.src, ordered.indices, ordered.indptr
+        cols = np.repeat(np.arange(self.size), np.diff(pattern.indptr))
+        self.flat = pattern.indices.astype(np.int64) * self.size + cols
+        self.src, self.diag_pos, self.rows = pattern.src, pattern.diag_pos, pattern.rows
+        self.y = y
 
-    def solve(self, y, v, dload, rhs, diag_pos, rows):
-        d_va, d_vm = bus_derivatives(y, v, diag_pos, rows, dload)
+    def solve(self, v, dload, rhs):
+        d_va, d_vm = bus_derivatives(self.y, v, self.diag_pos, self.rows, dload)
         stacked = np.concatenate([d_va.real, d_vm.real, d_va.imag, d_vm.imag])
-        if self.dense:
-            jac = np.zeros(self.size * self.size)
-            jac[self.flat] = stacked[self.src]
-            try:
-                return np.linalg.solve(jac.reshape(self.size, self.size), rhs)
-            except np.linalg.LinAlgError:
-                raise RuntimeError("singular Jacobian") from None
-        jac = sp.csc_matrix((stacked[self.src], self.indices, self.indptr), shape=(self.size, self.size))
-        lu = spla.splu(jac, **_LU_ORDERED)
-        x = np.empty_like(rhs)
-        x[self.order] = lu.solve(rhs[self.order])
-        return x
+        jac = np.zeros(self.size * self.size)
+        jac[self.flat] = stacked[self.src]
+        try:
+            return np.linalg.solve(jac.reshape(self.size, self.size), rhs)
+        except np.linalg.LinAlgError:
+            raise RuntimeError("singular Jacobian") from None
 
 
 class RepeatedFlow:
@@ -135,7 +123,8 @@ class RepeatedFlow:
         self.tol = (1e-8 * c.base_mva if tol_mva is None else float(tol_mva)) / c.base_mva
         self.max_iter = int(max_iter)
         self.enforce_q_limits = bool(enforce_q_limits)
-        self._systems: dict = {}
+        self._symbolic: dict = {}      # live-bus mask -> the load flow's SymbolicCache
+        self._dense: dict = {}         # split -> _DenseSystem (small networks)
         # position in y.data of each branch's (ff, ft, tf, tt) entries, for outages
         keys = self.rows.astype(np.int64) * n + self.y0.indices
         self._branch_pos = np.stack([np.searchsorted(keys, a.astype(np.int64) * n + b)
@@ -153,15 +142,41 @@ class RepeatedFlow:
             y.data[self.diag_pos] += ysh_delta
         return y
 
-    def _system(self, y, kind, alive, v, dload):
-        key = kind.tobytes() + alive.tobytes()
-        sysm = self._systems.get(key)
-        if sysm is None:
-            pv = np.flatnonzero((kind == PV) & alive)
-            pq = np.flatnonzero((kind == PQ) & alive)
-            sysm = _OrderedSystem(y, np.concatenate([pv, pq]), pq, v, dload)
-            self._systems[key] = sysm
-        return sysm
+    def _system(self, y, kind, alive):
+        """The linear solver of one PV / PQ split.
+
+        Large networks use the load flow's own symbolic work
+        (:class:`~planner.flow.jacobian.SymbolicCache`, one per set of live buses): its ordering
+        is fixed at the split as compiled, before any solve, so it is the same in every process
+        whatever split a worker meets first (identical numbers in serial and cluster runs).
+        Small ones use :class:`_DenseSystem`.
+        """
+        free = np.flatnonzero((kind != SLACK) & alive)
+        pq_mask = (kind == PQ) & alive
+        if len(free) + int(pq_mask.sum()) <= DENSE_UP_TO:
+            key = kind.tobytes() + alive.tobytes()
+            sysm = self._dense.get(key)
+            if sysm is None:
+                sysm = self._dense[key] = _DenseSystem(self.y0, free, np.flatnonzero(pq_mask))
+            sysm.y = y
+            return sysm
+        cache = self._symbolic.get(alive.tobytes())
+        if cache is None:
+            cache = self._symbolic[alive.tobytes()] = SymbolicCache()
+            self._prime(cache, alive)
+        return cache.get(y, free).system(y, pq_mask)
+
+    def _prime(self, cache, alive):
+        """Fix the cache's ordering by one factorisation at the compiled split (flat voltages)."""
+        c = self.c
+        free = np.flatnonzero((c.kind != SLACK) & alive)
+        pq_mask = (c.kind == PQ) & alive
+        system = cache.get(self.y0, free).system(self.y0, pq_mask)
+        v = np.where(alive, np.where(c.kind != PQ, c.v_set, 1.0), 0.0).astype(complex)
+        try:
+            system.solve(v, None, np.zeros(len(free) + int(pq_mask.sum())))
+        except RuntimeError:
+            pass          # singular at flat voltages: the first real solve orders instead
 
     # -- one solve --------------------------------------------------------------------------
     def solve(self, *, load_scale=1.0, branches_out=(), ysh_delta=None, alive=None, start=None,
@@ -247,10 +262,9 @@ class RepeatedFlow:
         return s_f, s_t
 
     def _newton(self, y, v, kind, alive, q_fixed, s_gen, sl_p, sl_i, sl_z, iters):
-        pv = (kind == PV) & alive
-        pq_mask = (kind == PQ) & alive
-        pvpq = np.concatenate([np.flatnonzero(pv), np.flatnonzero(pq_mask)])
-        pq = np.flatnonzero(pq_mask)
+        # unknowns in the load flow's layout: angle at every live non-slack bus, |V| at PQ buses
+        pvpq = np.flatnonzero((kind != SLACK) & alive)
+        pq = np.flatnonzero((kind == PQ) & alive)
         na = len(pvpq)
         s_spec0 = s_gen + 1j * q_fixed
 
@@ -272,8 +286,8 @@ class RepeatedFlow:
             dload = sl_i + 2.0 * sl_z * vm
             try:
                 if system is None:
-                    system = self._system(y, kind, alive, v, dload)
-                dx = -system.solve(y, v, dload, F, self.diag_pos, self.rows)
+                    system = self._system(y, kind, alive)
+                dx = -system.solve(v, dload, F)
             except RuntimeError:
                 return v, iters, 3, "the Jacobian is singular (voltage collapse or an unsupported island)"
             if not np.all(np.isfinite(dx)):
@@ -302,14 +316,14 @@ class RepeatedFlow:
 
 def _mismatch(y, v, s_spec0, sl_p, sl_i, sl_z):
     vm = np.abs(v)
-    return v * np.conj(y @ v) - (s_spec0 - (sl_p + sl_i * vm + sl_z * vm * vm))
+    return injection(y, v) - (s_spec0 - (sl_p + sl_i * vm + sl_z * vm * vm))
 
 
 def _update_limits(c, y, v, kind, alive, q_fixed, at_limit, s_gen, sl_p, sl_i, sl_z) -> bool:
     """Move PV buses past a reactive limit to PQ at the limit, and held buses whose voltage
     would pass the setpoint back to PV (the rule of the load flow). True if any bus changed."""
     vm = np.abs(v)
-    q_gen = (v * np.conj(y @ v)).imag + (sl_p + sl_i * vm + sl_z * vm * vm).imag - s_gen.imag
+    q_gen = injection(y, v).imag + (sl_p + sl_i * vm + sl_z * vm * vm).imag - s_gen.imag
     tol = 1e-9
     pv_now = (kind == PV) & alive
     over = pv_now & (q_gen > c.q_max + tol)
