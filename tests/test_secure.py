@@ -107,6 +107,15 @@ def test_post_outage_slopes_match_finite_differences(net30, outages):
         assert np.abs(dv - pred).max() < 0.03 * np.abs(dv).max()
     # bus 30 is the most sensitive bus to its own bank
     assert int(np.argmax(slopes[:, 0])) == int(pb.compiled[0].index_of([30])[0])
+    # a generator held at its reactive limit after the outage (bus 2) does not hold its voltage:
+    # its setpoint column is zero
+    held = PlanProblem([LevelCase("base", net30)], Levers(gen_v_range={2: (0.95, 1.10)}), Limits(), Objective(),
+                       Options())
+    st = held.initial_settings()
+    side = PostOutageRows(held.levels, [o])
+    rf, sol, br, alive = side._solve(held, 0, st, solve_flow(compiled=held.compiled_for(0, st)), o)
+    assert sol.at_limit[held.vset_bus[0]] != 0
+    assert np.all(post_outage_slopes(held, rf, sol, br, alive)[:, 0] == 0.0)
 
 
 STUDIES = DATA / "studies"
