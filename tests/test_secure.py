@@ -153,3 +153,15 @@ def test_secure_key_needs_an_outage_section(tmp_path):
     with pytest.raises(InputError) as err:
         read_study(p)
     assert "alternatives[1].secure_against_outages" in str(err.value) and "[outages]" in str(err.value)
+
+
+def test_outages_near_the_band_are_tracked_after_the_breaching_ones(net30):
+    # base case: 28-27 and 2-5 break the band; 27-30 leaves bus 30 at about 0.937 pu (inside by
+    # 0.037) and 6-7 bus 7 at about 0.953 pu (inside by 0.053)
+    outs = outage_list(net30, ids=["28-27", "2-5", "27-30", "6-7"])
+    levers = Levers(sites=[BankSite(30, 1.0, 10, cost_per_mvar=1.0), BankSite(5, 5.0, 10, cost_per_mvar=1.0)])
+    res = plan(net30, levers, LIMITS, CHEAP_LOSSES,
+               security=SecurityRequest(outages=outs, ratings=False, watch_pu=0.04))
+    sec = res.security
+    assert list(sec.tracked.element_id) == ["28-27", "2-5", "27-30"]     # worst breach first, then nearest
+    assert sec.status is SecurityStatus.SECURE

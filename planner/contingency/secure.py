@@ -74,7 +74,9 @@ class SecurityRequest:
     outages added per round. ``ratings``: the N-1 proof also checks emergency ratings.
     ``where``: where the N-1 proof runs (``None``: this process; else as
     :func:`planner.sweep.engine.run_chunks`). ``levels``: level names to secure and prove
-    (default every level).
+    (default every level). ``watch_pu``: outages whose worst post-outage voltage is inside the
+    band by less than this also join the tracked set (after the breaching ones), so the next
+    plan does not push them over; 0 tracks breaching outages only.
     """
     outages: list | None = None
     levels: list | None = None
@@ -85,6 +87,7 @@ class SecurityRequest:
     ratings: bool = True
     where: str | None = None
     chunk_size: int = 200
+    watch_pu: float = 0.0
 
 
 @dataclass
@@ -304,6 +307,29 @@ def _voltage_breaches(checks: dict, names) -> list:
     return out
 
 
+def _near_band(checks: dict, names, band, watch_pu, held) -> list:
+    """(closeness, level index, element, element_id) of solved outages whose worst voltage is
+    inside the (global) band by less than ``watch_pu``, closest first in a stable order. Buses
+    a generator holds (``held``) do not count: the rows leave them to their setpoints."""
+    out = []
+    if watch_pu <= 0:
+        return out
+    for li, n in enumerate(names):
+        oc = checks[n].outcomes
+        for r in oc.itertuples(index=False):
+            if r.outcome != "secure" or not np.isfinite(r.v_min_pu):
+                continue
+            gaps = [g for g, bus in ((r.v_min_pu - band[0], r.v_min_bus), (band[1] - r.v_max_pu, r.v_max_bus))
+                    if int(bus) not in held]
+            if not gaps:
+                continue
+            gap = min(gaps)
+            if 0 <= gap < watch_pu:
+                out.append((float(gap), li, str(r.element), str(r.element_id)))
+    out.sort(key=lambda t: (round(t[0], 9), t[1], t[2], t[3]))
+    return out
+
+
 def plan_secure(levels, levers=None, limits=None, objective=None, options=None,
                 security: SecurityRequest | None = None, progress=None):
     """An N-1-secure plan (see module docstring); returns a PlanResult whose ``security``
@@ -331,7 +357,8 @@ def plan_secure(levels, levers=None, limits=None, objective=None, options=None,
         if not breaches or rnd >= security.max_rounds:
             break
         new = []
-        for _, _, el, eid in breaches:
+        held = set(net0.buses.bus[net0.buses.kind.astype(str) != "PQ"].astype(int))
+        for _, _, el, eid in breaches + _near_band(checks, names, security.band, security.watch_pu, held):
             o = by_key[(el, eid)]
             if o not in tracked and o not in new:
                 new.append(o)

@@ -163,4 +163,6 @@ class PlanResult:
                 "losses_after_mw": [self.losses_after_mw.get(n, np.nan) for n in self.levels],
                 "losses_predicted_mw": [self.losses_predicted_mw.get(n, np.nan) for n in self.levels]}),
         }
+        if self.security is not None:        # an N-1-secured plan: tracked outages, breaches left
+            out.update(self.security.to_frames())
         return out
