@@ -151,14 +151,15 @@ class RepeatedFlow:
         whatever split a worker meets first (identical numbers in serial and cluster runs).
         Small ones use :class:`_DenseSystem`.
         """
+        key = kind.tobytes() + alive.tobytes()
+        sysm = self._dense.get(key)
+        if sysm is not None:
+            sysm.y = y
+            return sysm
         free = np.flatnonzero((kind != SLACK) & alive)
         pq_mask = (kind == PQ) & alive
         if len(free) + int(pq_mask.sum()) <= DENSE_UP_TO:
-            key = kind.tobytes() + alive.tobytes()
-            sysm = self._dense.get(key)
-            if sysm is None:
-                sysm = self._dense[key] = _DenseSystem(self.y0, free, np.flatnonzero(pq_mask))
-            sysm.y = y
+            sysm = self._dense[key] = _DenseSystem(y, free, np.flatnonzero(pq_mask))
             return sysm
         cache = self._symbolic.get(alive.tobytes())
         if cache is None:
