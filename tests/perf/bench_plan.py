@@ -78,7 +78,7 @@ def figures(plan, secs, cpu, value, unit, target, ref_value=None, ref_secs=None,
 
 # --- cases (each runs inside its own child process) --------------------------------------
 
-def case_ieee30():
+def bench_ieee30():
     from planner.network.cdf import read_cdf
     from planner.optimize.engine import LevelCase
     from planner.optimize.levers import Levers, Limits
@@ -119,23 +119,23 @@ def _feeder33(max_sites, unit=0.15, units=10, full=False):
     return out
 
 
-def case_feeder33_1(full=False):
+def bench_feeder33_1(full=False):
     return _feeder33(1)
 
 
-def case_feeder33_2(full=False):
+def bench_feeder33_2(full=False):
     return _feeder33(2)
 
 
-def case_feeder33_3(full=False):
+def bench_feeder33_3(full=False):
     return _feeder33(3, full=full)
 
 
-def case_feeder33_small_units(full=False):
+def bench_feeder33_small_units(full=False):
     return _feeder33(3, unit=0.05, units=40)
 
 
-def case_grid1024():
+def bench_grid1024():
     from planner.flow.newton import solve_flow
     from planner.flow.result import branch_flows
     from planner.network.compile import PQ
@@ -172,7 +172,7 @@ def ring_network():
     return ring_copies(read_cdf(DATA / "ieee30cdf.txt"), **RING)
 
 
-def case_ring120_tool():
+def bench_ring120_tool():
     """The tool's whole process for the 120-bus schedule (imports included)."""
     from planner.optimize.engine import LevelCase
     from planner.optimize.levers import Levers, Limits
@@ -186,7 +186,7 @@ def grid10k_network():
     return meshed_grid(100, 100, seed=0, load_scale=1.5)
 
 
-def case_grid10k_flow():
+def bench_grid10k_flow():
     """One load flow of the 10,000-bus grid, as its own process (imports and reading included)."""
     from planner.flow.newton import solve_flow
     net = grid10k_network()
@@ -196,7 +196,7 @@ def case_grid10k_flow():
                 vmin=float(fr.vm.min()), low=int((fr.vm < 0.95).sum()), losses=fr.losses_mw)
 
 
-def case_grid10k_plan():
+def bench_grid10k_plan():
     from planner.flow.newton import solve_flow
     from planner.network.compile import PQ
     from planner.optimize.engine import LevelCase
@@ -214,10 +214,10 @@ def case_grid10k_plan():
                    low_after=int((plan.flows_after["base"].vm < 0.95).sum()), banks=len(plan.banks))
 
 
-CASES = {"ieee30": case_ieee30, "feeder33_1": case_feeder33_1, "feeder33_2": case_feeder33_2,
-         "feeder33_3": case_feeder33_3, "feeder33_small_units": case_feeder33_small_units,
-         "grid1024": case_grid1024, "ring120_tool": case_ring120_tool,
-         "grid10k_flow": case_grid10k_flow, "grid10k_plan": case_grid10k_plan}
+CASES = {"ieee30": bench_ieee30, "feeder33_1": bench_feeder33_1, "feeder33_2": bench_feeder33_2,
+         "feeder33_3": bench_feeder33_3, "feeder33_small_units": bench_feeder33_small_units,
+         "grid1024": bench_grid1024, "ring120_tool": bench_ring120_tool,
+         "grid10k_flow": bench_grid10k_flow, "grid10k_plan": bench_grid10k_plan}
 
 
 # --- the parent: one child process per case ----------------------------------------------
