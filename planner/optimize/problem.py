@@ -14,7 +14,7 @@ from ..flow.result import FlowResult
 from ..network.compile import PQ, compile_network, replace
 from .levers import Levers, Limits, Objective, Options
 from .milp import LevelData, StepSpec
-from .sensitivity import flow_magnitude_slopes, linearize, prune_small_slopes
+from .sensitivity import flow_magnitude_slopes, linearize
 
 
 @dataclass
@@ -264,9 +264,8 @@ class PlanProblem:
                 s_rows, s0, ds, s_hi = rated[near], mag[near], slope[near], rating[near]
         return LevelData(
             s_rows=s_rows, s0=s0, ds=ds, s_hi=s_hi,            weight=float(self.loss_weights()[l]), d=d, R=R, const=const,
-            v_rows=v_rows, v0=vm[v_rows], dv=prune_small_slopes(sens.dvm[v_rows], span_units), v_lo=vmin[v_rows],
-            v_hi=vmax[v_rows], q_rows=gb[q_sel], q0=sens.q0[q_sel], dq=prune_small_slopes(sens.dq[q_sel], span_units),
-            q_lo=c.q_min[gb][q_sel], q_hi=c.q_max[gb][q_sel],
+            v_rows=v_rows, v0=vm[v_rows], dv=sens.dvm[v_rows], v_lo=vmin[v_rows], v_hi=vmax[v_rows],
+            q_rows=gb[q_sel], q0=sens.q0[q_sel], dq=sens.dq[q_sel], q_lo=c.q_min[gb][q_sel], q_hi=c.q_max[gb][q_sel],
             cur_units=cur_units.astype(float), cur_exist=st.exist[l].astype(int),
             v_now=np.abs(fr.v[self.vset_bus]),
         )
