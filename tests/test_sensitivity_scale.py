@@ -101,3 +101,23 @@ def test_chord_flow_hands_over_when_a_limit_switches():
     assert not np.array_equal(want.limit_state, base.limit_state)      # the move does switch a limit
     assert chord_flow(_ChordBase(base), moved) is None
 
+
+
+def test_search_evaluation_by_chord_equals_full_newton_evaluation():
+    from planner.network.io import read_network
+    from planner.optimize.ac_check import evaluate
+    from planner.optimize.levers import BankSite, Levers, Limits, Objective, Options
+    from planner.optimize.problem import LevelCase, PlanProblem
+    net = read_network(DATA / "feeder33_tables")
+    pb = PlanProblem([LevelCase("base", net)], Levers(sites=[BankSite(30, 0.15, 10), BankSite(14, 0.15, 10)]),
+                     Limits(v_min=0.0, v_max=2.0), Objective(), Options())
+    st = pb.initial_settings()
+    ev = evaluate(pb, st)
+    move = st.copy()
+    move.fixed[0] = 2
+    by_chord = evaluate(pb, move, warm=ev.flows, chord=True)
+    by_newton = evaluate(pb, move, warm=ev.flows)
+    assert by_chord.flows[0].strategy == "chord" and by_newton.flows[0].strategy != "chord"
+    assert by_chord.merit == pytest.approx(by_newton.merit, rel=1e-11)
+    assert by_chord.merit < ev.merit                          # two units at bus 30 do cut the losses
+    np.testing.assert_allclose(by_chord.flows[0].v, by_newton.flows[0].v, atol=1e-10)

@@ -141,12 +141,23 @@ def chord_flow(base: _ChordBase, c, tol: float = 1e-8 * CHORD_TIGHTER) -> FlowRe
                         continuation_steps=0, strategy="chord")
 
 
+def _chord_base_or_none(fr):
+    """A chord base for a converged flow; None (full Newton for every move) when there is no
+    converged flow or its Jacobian cannot be factorised."""
+    if fr is None or not fr.converged:
+        return None
+    try:
+        return _ChordBase(fr)
+    except (RuntimeError, ValueError):
+        return None
+
+
 def chord_bases(pb: PlanProblem, flows) -> list:
     """The chord factorisations of the present point's flows, kept on ``pb`` while they are the
     present point (one LU per level, rebuilt only when the point moves)."""
     cache = getattr(pb, "_chord", None)
     if cache is None or len(cache) != len(flows) or any(b.flow is not f for b, f in zip(cache, flows)):
-        cache = [_ChordBase(f) if f is not None and f.converged else None for f in flows]
+        cache = [_chord_base_or_none(f) for f in flows]
         pb._chord = cache
     return cache
 
