@@ -28,7 +28,7 @@ import time
 import numpy as np
 from scipy.optimize import OptimizeResult, minimize
 
-from .ac_opf import injection_jacobian, injections
+from .ac_opf import injection_jacobian, injections, newton_pf
 from .raw_cases import PQ, PV, SLACK, RawCase, ieee30
 
 
@@ -83,40 +83,27 @@ class _Schedule:
         self.gen = np.flatnonzero(np.isin(case.btype, (PV, SLACK)))
         self.pq = np.flatnonzero(case.btype == PQ)
         self.ang = np.flatnonzero(case.btype != SLACK)
-        self.p_sch = case.pg - case.pd
-        self.q_sch = -case.qd
         self.vm = np.where(case.btype == PQ, 1.0, case.vset)
         self.va = np.zeros(n)
         self._key = None
         self.flows = 0
 
     def _solve(self, u):
-        """Newton load flow with the generator buses held at ``u`` (reactive limits not enforced:
-        they are constraints of the optimisation). Warm-started from the previous point."""
+        """Newton load flow (:func:`.ac_opf.newton_pf`) with the generator buses held at ``u``
+        (reactive limits not enforced: they are constraints of the optimisation), warm-started
+        from the previous point, from flat if that fails."""
         key = u.tobytes()
         if key == self._key:
             return
-        Y, ang, pq = self.Y, self.ang, self.pq
-        for attempt in range(2):
-            vm = self.vm.copy() if attempt == 0 else np.ones(self.case.n)
-            va = self.va.copy() if attempt == 0 else np.zeros(self.case.n)
-            vm[self.gen] = u
-            for _ in range(30):
-                p, q = injections(Y, vm, va)
-                mis = np.concatenate([(p - self.p_sch)[ang], (q - self.q_sch)[pq]])
-                if np.max(np.abs(mis)) < 1e-11:
-                    break
-                pa, pm, qa, qm = injection_jacobian(Y, vm, va)
-                jac = np.block([[pa[np.ix_(ang, ang)], pm[np.ix_(ang, pq)]],
-                                [qa[np.ix_(pq, ang)], qm[np.ix_(pq, pq)]]])
-                dx = np.linalg.solve(jac, -mis)
-                va[ang] += dx[:len(ang)]
-                vm[pq] += dx[len(ang):]
-            else:
-                continue
-            break
-        else:
+        vset = self.case.vset.copy()
+        vset[self.gen] = u
+        r = newton_pf(self.case, vset=vset, tol=1e-11, start=(self.vm, self.va), Y=self.Y)
+        if not r.success:
+            r = newton_pf(self.case, vset=vset, tol=1e-11, Y=self.Y)
+        if not r.success:
             raise RuntimeError("reference load flow did not converge at the SLSQP point")
+        Y, ang, pq = self.Y, self.ang, self.pq
+        vm, va = r.vm, r.va
         self.flows += 1
         self.vm, self.va, self._key = vm, va, key
         pa, pm, qa, qm = injection_jacobian(Y, vm, va)
