@@ -488,14 +488,17 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
     q_fixed = st.q_fixed
     diverged = FlowStatus.DIVERGED
 
-    def residual(vv):
-        mis = bus_mismatch(c, y, vv, q_fixed, scale)
-        return np.concatenate([mis.real[free], mis.imag[pq]])
+    s_sched = scale * c.s_gen + 1j * q_fixed     # as in bus_mismatch, with Y v kept for the Jacobian
+
+    def residual(vv, vmm):
+        ib = y @ vv
+        mis = vv * np.conj(ib) - s_sched + load_power(c, vmm, scale)
+        return np.concatenate([mis.real[free], mis.imag[pq]]), ib
 
     with np.errstate(all="raise", under="ignore"):
         try:
             vm, va = np.abs(v), np.angle(v)
-            F = residual(v)
+            F, ibus = residual(v, vm)
         except FloatingPointError:
             return v, iters, diverged, "the iteration diverged (numerical overflow)"
         recent: list[float] = []
@@ -519,7 +522,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             if iters >= max_iter:
                 return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
             try:
-                dx = -system.solve(v, load_derivative(c, vm, scale), F)
+                dx = -system.solve(v, load_derivative(c, vm, scale), F, ibus)
             except RuntimeError:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
@@ -540,14 +543,14 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 vm_new[pq] += alpha * dx[na:]
                 v_new = vm_new * np.exp(1j * va_new)
                 try:
-                    F_new = residual(v_new)
+                    F_new, ib_new = residual(v_new, vm_new)
                     m = float(np.sqrt(F_new @ F_new))
                 except FloatingPointError:
-                    F_new, m = None, np.inf
+                    F_new, ib_new, m = None, None, np.inf
                 positive = vm_new[pq].size == 0 or vm_new[pq].min() > 0.0
-                return v_new, vm_new, va_new, F_new, (m if positive else np.inf)
+                return v_new, vm_new, va_new, F_new, ib_new, (m if positive else np.inf)
 
-            v_new, vm_new, va_new, F_new, m1 = trial(1.0)
+            v_new, vm_new, va_new, F_new, ib_new, m1 = trial(1.0)
             alpha = 1.0
             if not (m1 <= GROWTH_BOUND * min(recent)):
                 # rejected: optimal multiplier from the full-step point, then halving
@@ -556,7 +559,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 else:
                     alpha = 0.5
                 for _ in range(LINE_SEARCH_STEPS):
-                    v_new, vm_new, va_new, F_new, m = trial(alpha)
+                    v_new, vm_new, va_new, F_new, ib_new, m = trial(alpha)
                     if m <= (1.0 - 1e-4 * alpha) * merit:
                         break
                     alpha *= 0.5
@@ -566,7 +569,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             tiny = tiny + 1 if alpha < TINY_STEP else 0
             if tiny >= STALL_STEPS:
                 return v, iters, diverged, "the iteration diverged (stalled: only tiny steps lower the mismatch)"
-            v, vm, va, F = v_new, vm_new, va_new, F_new
+            v, vm, va, F, ibus = v_new, vm_new, va_new, F_new, ib_new
 
 
 def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0) -> bool:
