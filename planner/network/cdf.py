@@ -164,8 +164,14 @@ def _parse_section(records, fields, file, section):
     n = len(records)
     width = max(b for _, _, _, b, _ in fields)
     texts = [t for _, t in records]
-    raw = b"".join(t.encode("latin-1")[:width].ljust(width) for t in texts)
-    mat = np.frombuffer(raw, np.uint8).reshape(n, width) if n else np.zeros((0, width), np.uint8)
+    if n:
+        # a fixed-width unicode array (C-level copy, short lines padded with NUL): one byte per
+        # character, since the text was decoded as latin-1
+        mat = np.array(texts, dtype=f"<U{width}").view(np.uint32).reshape(n, width).astype(np.uint8)
+        lengths = np.fromiter(map(len, texts), np.int64, n)
+        mat[np.arange(width) >= lengths[:, None]] = _SPACE
+    else:
+        mat = np.zeros((0, width), np.uint8)
     out, bad = {}, np.zeros(n, bool)
     numeric = []
     for key, label, a, b, kind in fields:
@@ -269,15 +275,10 @@ def _split_lines(data: bytes):
 def _section(lines, start, file, name):
     """Records of the section whose header is at index ``start``: (line number, text) pairs up
     to the ``-999`` terminator; blank lines are skipped."""
-    records = []
-    i = start + 1
-    while i < len(lines):
-        text = lines[i]
-        if text.strip().startswith("-999"):
-            break
-        if text.strip():
-            records.append((i + 1, text))
-        i += 1
+    # one pass of C-level string methods finds the terminator; then the records in one slice
+    i = next((j for j in range(start + 1, len(lines)) if lines[j].lstrip().startswith("-999")), None)
+    if i is not None:
+        records = [(j + 1, t) for j, t in enumerate(lines[start + 1:i], start + 1) if t and not t.isspace()]
     else:
         raise InputError(f"{name} section that starts at line {start + 1} has no closing -999 line",
                          file=file, line=len(lines), field=f"{name} section")

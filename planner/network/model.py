@@ -15,6 +15,7 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass, field
 
+import numpy as np
 import pandas as pd
 
 # Column name -> dtype, in the order tables are written. Readers fill missing optional
@@ -150,7 +151,11 @@ def make_table(kind: str, records) -> pd.DataFrame:
     if missing:
         raise KeyError(f"{kind}: missing column {missing[0]!r}")
     df = df[list(cols)]
-    return df.astype(cols).reset_index(drop=True)
+    # only the columns not yet of their dtype (a table made before passes through cheaply)
+    need = {c: t for c, t in cols.items() if df[c].dtype != np.dtype(t)}
+    if need:
+        df = df.astype(need)
+    return df.reset_index(drop=True)
 
 
 @dataclass
