@@ -16,8 +16,9 @@ ieee30cdf.txt, in the shapes of issue 8):
   below 1e-6 pu).
 * ``ring30 x330`` / ``ring30 x1667``: the same with IEEE 30 (9,900 / 50,010 buses).
 * ``grid 100x100`` / ``grid 224x224``: the meshed synthetic grid (10,000 / 50,176 buses), at normal
-  loading and heavier (``heavy``: load and generation x HEAVY; see the loadability part for why
-  not 1.5 at 50,000 buses).
+  loading and heavier (load and generation x 1.5 / x 1.05). The loadability part solves both grids
+  at 1.5 x: the 50,176-bus one has no solution there and the result says so, with the fraction of
+  the schedule reached by continuation from light load.
 
 Times are CPU seconds of this process (``time.process_time``, BLAS held to one thread): the machine
 is shared, and wall-clock times there swing by several times with the load of other users while
@@ -77,19 +78,24 @@ def ring_case(tag: str, copies: int, limits: bool):
     return ring_copies(base, copies, slack_mw=slack_mw, ties_per_link=2), np.tile(single.v, copies)
 
 
-HEAVY = 1.3        # heavier loading of the grids with a solution at every size (see --loadability)
+# Heavier loading of the grids (load and generation x this). At 1.5 x the 10,000-bus grid solves,
+# the 50,176-bus one has no solution: continuation from light load reaches 73.8 % of the 1.5 x
+# schedule, i.e. 1.107 x (the one slack at the centre must import the losses above the plants'
+# 1.4 % allowance, which grow with the square of the load, across ever longer paths); see
+# --loadability. The benchmark runs it at 1.05 x, inside that limit.
+HEAVY = {100: 1.5, 224: 1.05}
 
 
 def cases(quick: bool):
     out = [("ring14 x714", lambda lim: ring_case("ring14", 714, lim)),
            ("ring30 x330", lambda lim: ring_case("ring30", 330, lim)),
            ("grid 100x100", lambda lim: (meshed_grid(100, 100), None)),
-           ("grid 100x100 heavy", lambda lim: (meshed_grid(100, 100, load_scale=HEAVY), None))]
+           (f"grid 100x100 x{HEAVY[100]:g}", lambda lim: (meshed_grid(100, 100, load_scale=HEAVY[100]), None))]
     if not quick:
         out += [("ring14 x3574", lambda lim: ring_case("ring14", 3574, lim)),
                 ("ring30 x1667", lambda lim: ring_case("ring30", 1667, lim)),
                 ("grid 224x224", lambda lim: (meshed_grid(224, 224), None)),
-                ("grid 224x224 heavy", lambda lim: (meshed_grid(224, 224, load_scale=HEAVY), None))]
+                (f"grid 224x224 x{HEAVY[224]:g}", lambda lim: (meshed_grid(224, 224, load_scale=HEAVY[224]), None))]
     return out
 
 
@@ -115,6 +121,7 @@ def cached_order_jacobian(res, cache: SymbolicCache):
 
 
 def cpu_best(fn, repeat=3):
+    """Smallest CPU time of ``repeat`` calls."""
     best = np.inf
     for _ in range(repeat):
         t0 = time.process_time()
@@ -272,17 +279,23 @@ def memory():
 
 
 def loadability():
-    """Continuation from light load on the grids at 1.5 x: the largest fraction with a solution."""
+    """The grids at 1.5 x load and generation, limits on: status and, when there is no solution,
+    the fraction of the schedule the continuation from light load reached (the loadability)."""
     print()
-    head = f"{'case':<24}{'buses':>7} {'limits':<7}{'status':<11}{'iters':>6}{'cont':>5}  message"
+    head = f"{'case':<22}{'buses':>7} {'status':<11}{'iters':>6}{'cont':>5}{'loadability':>13}  message"
     print(head)
     print("-" * len(head))
-    for rows, cols in ((100, 100), (224, 224)):
-        for scale in (1.5, HEAVY):
-            net = meshed_grid(rows, cols, load_scale=scale)
-            res = solve_flow(net, build_tables=False)
-            print(f"{f'grid {rows}x{cols} x{scale:g}':<24}{len(net.buses):>7} {'on':<7}{res.status.name:<11}"
-                  f"{res.iterations:>6}{res.continuation_steps:>5}  {res.message}", flush=True)
+    for rows in (100, 224):
+        net = meshed_grid(rows, rows, load_scale=1.5)
+        res = solve_flow(net, build_tables=False)
+        reach = "-"
+        if res.status.name == "COLLAPSE":
+            frac = float(res.message.split("reach only ")[1].split("%")[0]) / 100
+            reach = f"{1.5 * frac:.3f} x"
+        elif res.success:
+            reach = "> 1.5 x"
+        print(f"{f'grid {rows}x{rows} x1.5':<22}{len(net.buses):>7} {res.status.name:<11}{res.iterations:>6}"
+              f"{res.continuation_steps:>5}{reach:>13}  {res.message}", flush=True)
 
 
 def main(argv=None):
