@@ -174,24 +174,41 @@ def _parse_section(records, fields, file, section):
         mat = np.zeros((0, width), np.uint8)
     out, bad = {}, np.zeros(n, bool)
     numeric = []
+    num_fields = []
     for key, label, a, b, kind in fields:
         if key in _NOT_READ:
             continue
         if kind == "str":
             out[key] = np.array([t[a - 1:b].strip() for t in texts], dtype=object)
             continue
-        sub = mat[:, a - 1:b].copy()
-        sub[(sub == _LOWER_D) | (sub == _UPPER_D)] = _E
-        nonblank = sub != _SPACE
-        blank = ~nonblank.any(axis=1)
-        flagged = ~_ALLOWED[sub].all(axis=1)
-        # a space between two non-blank characters would make two numbers of one field
-        first_nb = np.argmax(nonblank, axis=1)
-        last_nb = sub.shape[1] - 1 - np.argmax(nonblank[:, ::-1], axis=1)
-        flagged |= ~blank & (nonblank.sum(axis=1) != last_nb - first_nb + 1)
-        sub[blank | flagged, -1] = ord("0")
-        sub[blank | flagged, :-1] = _SPACE
-        numeric.append((key, kind, sub, flagged))
+        num_fields.append((key, kind, a - 1, b))
+    if num_fields:
+        # the checks of every numeric field at once: per field counts from running sums along
+        # the record of non-blank characters, characters other than digits, sign, point and
+        # exponent, and starts of runs of non-blank characters (more than one: a space between
+        # two non-blank characters would make two numbers of one field)
+        work = mat.copy()
+        work[(work == _LOWER_D) | (work == _UPPER_D)] = _E
+        nonblank = work != _SPACE
+        lo = np.array([a for _, _, a, _ in num_fields])
+        hi = np.array([b for _, _, _, b in num_fields])
+        run_start = nonblank.copy()
+        run_start[:, 1:] &= ~nonblank[:, :-1]
+
+        def per_field(x):
+            cs = np.zeros((n, width + 1), np.int32)
+            np.cumsum(x, axis=1, out=cs[:, 1:])
+            return cs[:, hi] - cs[:, lo]
+        blank_all = per_field(nonblank) == 0
+        flagged_all = (per_field(~_ALLOWED[work]) > 0) | (
+            per_field(run_start) + (nonblank[:, lo] & ~run_start[:, lo]) > 1)
+        for k, (key, kind, a, b) in enumerate(num_fields):
+            sub = work[:, a:b].copy()
+            flagged = flagged_all[:, k].copy()
+            fill = blank_all[:, k] | flagged
+            sub[fill, -1] = ord("0")
+            sub[fill, :-1] = _SPACE
+            numeric.append((key, kind, sub, flagged))
     values = _block_floats([sub for _, _, sub, _ in numeric])
     for k, (key, kind, sub, flagged) in enumerate(numeric):
         vals = values[:, k].copy() if values is not None else None
