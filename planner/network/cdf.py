@@ -286,7 +286,10 @@ def _first_row(mask):
 def _split_lines(data: bytes):
     # latin-1 maps every byte to one character, so the fixed columns stay byte columns and no
     # byte sequence can fail to decode; CR, LF and CRLF all end a line.
-    return data.decode("latin-1").replace("\r\n", "\n").replace("\r", "\n").split("\n")
+    text = data.decode("latin-1")
+    if "\r" in text:
+        text = text.replace("\r\n", "\n").replace("\r", "\n")
+    return text.split("\n")
 
 
 def _section(lines, start, file, name):
@@ -444,7 +447,7 @@ def _branch_ids_vectorized(a: np.ndarray, b: np.ndarray, circuit: np.ndarray) ->
     lo, hi = np.minimum(a, b), np.maximum(a, b)
     key = pd.MultiIndex.from_arrays([lo, hi])
     single = ~key.duplicated(keep=False)
-    ids = np.char.add(np.char.add(a.astype(str), "-"), b.astype(str)).astype(object)
+    ids = np.array([f"{x}-{y}" for x, y in zip(a.tolist(), b.tolist())], dtype=object)
     if not single.all():
         multi = np.flatnonzero(~single)
         ids[multi] = _branch_ids([(int(a[k]), int(b[k]), int(circuit[k])) for k in multi],
