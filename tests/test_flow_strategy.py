@@ -111,8 +111,9 @@ def test_overloaded_two_bus_reports_collapse_with_the_fraction_reached():
     # nose of the curve (discriminant of the quartic = 0) for the load 6 + j0.5 pu scaled by lam:
     # 1 - 2 X Q lam = 2 X |S| lam
     nose = 1.0 / (2 * X2 * Q2 + 2 * X2 * abs(complex(2 * P2, Q2)))
-    frac = float(res.message.split("reach only ")[1].split("%")[0]) / 100
+    frac = float(res.message.split("reached only ")[1].split("%")[0]) / 100
     assert nose - 0.01 < frac <= nose
+    assert res.message.startswith("no solution found:") and "loadability limit" in res.message
 
 
 def test_cli_exits_non_zero_on_a_suspect_solution_unless_accepted(tmp_path, capsys):

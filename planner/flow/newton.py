@@ -201,10 +201,11 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
                            f"({total} iterations in all); plain Newton: {first}")
         elif status == FlowStatus.SUSPECT:
             message += f"; continuation from light load found no other solution ({msg_c})"
+        elif status_c == FlowStatus.COLLAPSE:
+            # the conclusion first: no solution was found, and how far the load could go
+            status, message = FlowStatus.COLLAPSE, f"no solution found: {msg_c} (plain Newton: {message})"
         else:
             message += f"; continuation from light load: {msg_c}"
-            if status_c == FlowStatus.COLLAPSE:
-                status = FlowStatus.COLLAPSE
     elif status == FlowStatus.CONVERGED and strategy == "newton":
         message = f"converged in {iters} iterations"
     if st1.oscillating.size and status == FlowStatus.CONVERGED:
@@ -663,8 +664,8 @@ def _continuation(ctx: _Context, history):
             step *= 0.5
             if step < CONT_MIN_STEP:
                 return v, st, iters, FlowStatus.COLLAPSE, (
-                    f"solutions reach only {lam:.1%} of the scheduled load and generation "
-                    "(likely beyond the network's loadability)"), steps
+                    f"continuation from light load reached only {lam:.1%} of the scheduled load and "
+                    "generation; the load is likely beyond the network's loadability limit"), steps
             target = min(1.0, lam + step)
         if iters >= CONT_MAX_ITERS:
             return v, st, iters, FlowStatus.ITERATION_LIMIT, (

@@ -290,7 +290,7 @@ def loadability():
         res = solve_flow(net, build_tables=False)
         reach = "-"
         if res.status.name == "COLLAPSE":
-            frac = float(res.message.split("reach only ")[1].split("%")[0]) / 100
+            frac = float(res.message.split("reached only ")[1].split("%")[0]) / 100
             reach = f"{1.5 * frac:.3f} x"
         elif res.success:
             reach = "> 1.5 x"
