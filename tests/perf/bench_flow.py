@@ -36,8 +36,8 @@ warm Newton time / (iterations x LU best), target <= 1.5 (against LU std it woul
 
 Reading: the 10,000-bus cases written as IEEE CDF files (buses renumbered 1..N, since the format
 holds four-digit bus numbers), read time (best of 3) plus result-table building time against the
-Newton time of that network; target read + tables <= Newton. Memory: peak resident set (and the
-peak of Python / numpy allocations by tracemalloc, in a second run) of a fresh process that reads a
+Newton time of that network; target read + tables <= Newton. Memory: peak resident set (VmHWM;
+and the peak of Python / numpy allocations by tracemalloc, in a second run) of a fresh process that reads a
 50,000-bus network from tabular CSV files, solves it and builds the result tables (target < 500 MB;
 the interpreter and libraries are included in the resident set).
 """
@@ -153,11 +153,9 @@ def timed_solve(c, limits, cache):
 
 
 def solve_cases(quick, repeat, only=None, limit_choice="both"):
-    head = (f"{'case':<20}{'buses':>7} {'limits':<7}{'status':<11}{'iters':>6}{'cont':>5}{'Newton s':>10}"
-            f"{'cold s':>8}{'LU std s':>10}{'LU best s':>10}{'ratio':>7}{'cold ratio':>11}{'min V':>7}"
-            f"{'dev pu':>9}")
-    print(head)
-    print("-" * len(head))
+    table_head(f"{'case':<20}{'buses':>7} {'limits':<7}{'status':<11}{'iters':>6}{'cont':>5}{'Newton s':>10}"
+               f"{'cold s':>8}{'LU std s':>10}{'LU best s':>10}{'ratio':>7}{'cold ratio':>11}{'min V':>7}"
+               f"{'dev pu':>12}", gap=False)
     newton_time = {}
     settings = {"both": (True, False), "on": (True,), "off": (False,)}[limit_choice]
     for label, make in cases(quick):
@@ -206,12 +204,17 @@ def renumbered(net: Network) -> Network:
     return Network(base_mva=net.base_mva, name=net.name, **tables)
 
 
+def table_head(text: str, gap: bool = True) -> None:
+    """A table's column heads and a rule under them."""
+    if gap:
+        print()
+    print(text)
+    print("-" * len(text))
+
+
 def reading(newton_time):
-    print()
-    head = (f"{'CDF file':<20}{'buses':>7}{'read s':>9}{'tables s':>10}{'Newton s':>10}"
-            f"{'(read+tables)/Newton':>22}")
-    print(head)
-    print("-" * len(head))
+    table_head(f"{'CDF file':<20}{'buses':>7}{'read s':>9}{'tables s':>10}{'Newton s':>10}"
+               f"{'(read+tables)/Newton':>22}")
     with tempfile.TemporaryDirectory() as tmp:
         for label in ("ring14 x714", "grid 99x101"):
             # the CDF's bus numbers have four digits: the grid is 9,999 buses here
@@ -250,17 +253,20 @@ t0 = time.process_time()
 res = solve_flow(net)          # result tables built too
 t_solve = time.process_time() - t0
 peak = tracemalloc.get_traced_memory()[1] / 2**20 if sys.argv[2] == "trace" else 0.0
-print(len(net.buses), res.status.name, f"{t_read:.2f}", f"{t_solve:.2f}",
-      resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, peak)
+# the high-water mark of this process's own address space (VmHWM starts afresh at exec; ru_maxrss
+# would carry over the peak of the parent that forked it)
+try:
+    with open("/proc/self/status") as f:
+        rss = next(int(x.split()[1]) for x in f if x.startswith("VmHWM:")) / 1024
+except (OSError, StopIteration):
+    rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+print(len(net.buses), res.status.name, f"{t_read:.2f}", f"{t_solve:.2f}", rss, peak)
 """
 
 
 def memory():
-    print()
-    head = (f"{'tabular folder':<20}{'buses':>7} {'status':<11}{'read s':>8}{'solve+tables s':>16}"
-            f"{'peak RSS MB':>13}{'tracemalloc MB':>16}")
-    print(head)
-    print("-" * len(head))
+    table_head(f"{'tabular folder':<20}{'buses':>7} {'status':<11}{'read s':>8}{'solve+tables s':>16}"
+               f"{'peak RSS MB':>13}{'tracemalloc MB':>16}")
     with tempfile.TemporaryDirectory() as tmp:
         for label, net in (("grid 224x224", meshed_grid(224, 224)),
                            ("ring30 x1667", ring_case("ring30", 1667, True)[0]),
@@ -281,10 +287,7 @@ def memory():
 def loadability():
     """The grids at 1.5 x load and generation, limits on: status and, when there is no solution,
     the fraction of the schedule the continuation from light load reached (the loadability)."""
-    print()
-    head = f"{'case':<22}{'buses':>7} {'status':<11}{'iters':>6}{'cont':>5}{'loadability':>13}  message"
-    print(head)
-    print("-" * len(head))
+    table_head(f"{'case':<22}{'buses':>7} {'status':<11}{'iters':>6}{'cont':>5}{'loadability':>13}  message")
     for rows in (100, 224):
         net = meshed_grid(rows, rows, load_scale=1.5)
         res = solve_flow(net, build_tables=False)
