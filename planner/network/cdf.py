@@ -436,7 +436,8 @@ def read_cdf(path) -> Network:
 
 
 def _prefixed(prefix: str, numbers: np.ndarray) -> np.ndarray:
-    return np.char.add(prefix, numbers.astype(str)).astype(object) if len(numbers) else np.array([], object)
+    return np.array([f"{prefix}{x}" for x in numbers.tolist()], dtype=object) if len(numbers) else \
+        np.array([], object)
 
 
 def _branch_ids_vectorized(a: np.ndarray, b: np.ndarray, circuit: np.ndarray) -> np.ndarray:
