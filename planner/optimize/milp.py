@@ -110,8 +110,13 @@ def objective_scale(spec: "StepSpec") -> float:
     return total if total > 0 else 1.0
 
 
-def build_model(spec: StepSpec):
-    """A Pyomo model of one trust-region step over all load levels."""
+def build_model(spec: StepSpec, lazy: bool = False):
+    """A Pyomo model of one trust-region step over all load levels.
+
+    ``lazy``: the limit rows (voltage, reactive, loading) start with only those the present point
+    breaks or nearly reaches; :func:`add_broken_rows` adds the others as solutions break them
+    (:func:`solve_step` does). A row-complete model (the default) holds every row from the start.
+    """
     _load()
     m = pyo.ConcreteModel(name="loss_step")
     S = range(len(spec.unit_pu))
@@ -176,6 +181,7 @@ def build_model(spec: StepSpec):
               + [spec.exist_step_pu[e] * (m.e[l, e] - int(lev.cur_exist[e])) for e in E]
               + [m.v[vl, g] - float(lev.v_now[g]) for g in G]
               + [(spec.tap_step[t] if spec.tap_step[t] > 0 else 1.0) * m.d[l, t] for t in T])
+        b.du_exprs = du
         # trust region on bank units at each site
         b.unit_tr = pyo.ConstraintList()
         for s in S:
@@ -199,9 +205,11 @@ def build_model(spec: StepSpec):
                 b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
         b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + spec.base_mva * float(lev.const))  # MW
         # voltage, reactive and loading rows, each with a penalised slack
-        viol = (_limit_rows(b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, du)
-                + _limit_rows(b, "q", lev.q0, lev.dq, lev.q_lo, lev.q_hi, du)
-                + _limit_rows(b, "s", lev.s0, lev.ds, None, lev.s_hi, du))
+        reach = np.maximum(np.abs(lo_du), np.abs(hi_du))
+        b.limit_families = []
+        viol = (_limit_rows(b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, du, reach if lazy else None)
+                + _limit_rows(b, "q", lev.q0, lev.dq, lev.q_lo, lev.q_hi, du, reach if lazy else None)
+                + _limit_rows(b, "s", lev.s0, lev.ds, None, lev.s_hi, du, reach if lazy else None))
         obj_terms.append(lev.weight / scale * b.loss + spec.penalty / scale * viol)
         tie.append(pyo.quicksum(m.k[l, s] for s in S))
     obj_terms.append(spec.tie_break * (pyo.quicksum(m.nf[s] + 2 * m.ns[s] for s in S) + pyo.quicksum(tie)))
@@ -222,13 +230,21 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     step gives the same solution on a quiet or a loaded machine; the time limit of each solve
     is an emergency stop whose firing the solution records (``time_limited``).
     """
-    m = build_model(spec)
+    m = build_model(spec, lazy=LAZY_ROWS)
     solver = new_solver()
     solves = 0
     sol = prev = None
     rounds = []
     timed_out = False
+    for _ in range(LP_ROUNDS):
+        # cheap rounds first: cuts and rows where the continuous relaxation wants to go, so
+        # the whole-number solves start from a loss model that is already close there
+        lp = solve_model(m, spec, solver, relax=True)
+        if not lp.ok or not (_add_cuts(m, spec, lp_values=True) + add_broken_rows(m, spec, lp, rounded=False)):
+            break
     for _ in range(max_rounds):
+        if sol is not None and MIP_START:
+            _start_from_integers(solver, m)
         sol = solve_model(m, spec, solver)
         solves += 1
         timed_out = timed_out or sol.time_limited
@@ -249,14 +265,60 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
                     gap += excess * lev.weight      # MW x weight
                     b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
                     added = True
-        same = prev is not None and _same_solution(prev, sol)
+        rows = add_broken_rows(m, spec, sol)
+        same = prev is not None and _same_solution(prev, sol) and not rows
         # HiGHS holds each cut only to its feasibility tolerance (1e-7), so a tiny gap remains
         # cuts closer than half the MILP's own optimality gap cannot change what it may return
         tol = max(rel_tol, 0.5 * spec_mip_gap(spec))
-        if not added or gap <= tol * max(total, 1e-12) or same:
+        if not rows and (not added or gap <= tol * max(total, 1e-12) or same):
             break
         prev = sol
     return sol, solves, rounds
+
+
+LAZY_ROWS = True
+MIP_START = True
+LP_ROUNDS = 8
+
+
+def _add_cuts(m, spec, lp_values=False, tol=1e-7) -> int:
+    """Tangent cuts at the model's present square-term values where they are underestimated by
+    more than ``tol`` (relative to the square); returns how many were added."""
+    n = 0
+    for l, lev in enumerate(spec.levels):
+        b = m.levels[l]
+        for k in range(len(lev.d)):
+            sk = pyo.value(b.s[k])
+            if sk * sk - pyo.value(b.w[k]) > tol * max(sk * sk, 1e-12):
+                b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
+                n += 1
+    return n
+
+
+def _start_from_integers(solver, m):
+    """Give HiGHS the last round's whole-number values as a starting point of the next solve (it
+    completes the continuous part itself): after added cuts and rows that point stays feasible
+    (limit rows have slacks), so the search starts with an incumbent instead of finding one."""
+    h = getattr(solver, "_solver_model", None)
+    col = getattr(solver, "_pyomo_var_to_solver_var_map", None)
+    if h is None or col is None:
+        return
+    idx, val = [], []
+    for v in m.component_data_objects(pyo.Var, descend_into=True):
+        if v.is_integer() and v.value is not None and id(v) in col:
+            idx.append(col[id(v)])
+            val.append(round(v.value))
+    if not idx:
+        return
+    order = np.argsort(idx)
+    start = (len(idx), np.asarray(idx, np.int32)[order], np.asarray(val, float)[order])
+    base = solver._solve
+
+    def solve_with_start():
+        solver._solve = base             # once only
+        h.setSolution(*start)
+        return base()
+    solver._solve = solve_with_start
 
 
 def _same_solution(a, b) -> bool:
@@ -265,23 +327,105 @@ def _same_solution(a, b) -> bool:
             and np.allclose(a.vset, b.vset, atol=1e-7, rtol=0) and np.allclose(a.tap_change, b.tap_change, atol=1e-7, rtol=0))
 
 
-def _limit_rows(b, tag, x0, slopes, lo, hi, du):
+_LAZY_NEAR = 0.2      # a lazy row starts in the model when its limit is this fraction of its reach away
+_ROW_TOL = 1e-7       # a lazy row is added when a solution breaks it by more than this
+
+
+@dataclass
+class LimitFamily:
+    """Linear limit rows ``lo - slack <= x0 + slopes du <= hi + slack`` of one kind at one level,
+    and which of them are in the model (all, or those a lazy model has added so far)."""
+    tag: str
+    x0: np.ndarray
+    slopes: np.ndarray
+    lo: np.ndarray | None
+    hi: np.ndarray
+    du: list                          # the level's lever-change expressions
+    slack_lo: object                  # Pyomo slack variables per row (None for no lower side)
+    slack_hi: object
+    rows: object                      # Pyomo ConstraintList of the rows in the model
+    active: np.ndarray                # (rows,) bool: in the model
+
+    def add(self, idx):
+        for i in idx:
+            i = int(i)
+            if self.active[i]:
+                continue
+            expr = float(self.x0[i]) + _lin(self.slopes[i], self.du)
+            if self.lo is not None:
+                self.rows.add(expr >= float(self.lo[i]) - self.slack_lo[i])
+            self.rows.add(expr <= float(self.hi[i]) + self.slack_hi[i])
+            self.active[i] = True
+
+    def broken(self, du_value: np.ndarray) -> np.ndarray:
+        """Rows outside the model that the lever change ``du_value`` breaks."""
+        if not len(self.x0):
+            return np.zeros(0, np.int64)
+        x = self.x0 + self.slopes @ du_value
+        bad = x > self.hi + _ROW_TOL
+        if self.lo is not None:
+            bad |= x < self.lo - _ROW_TOL
+        return np.flatnonzero(bad & ~self.active)
+
+
+def _limit_rows(b, tag, x0, slopes, lo, hi, du, reach=None):
     """Rows ``lo - slack <= x0 + slopes du <= hi + slack`` on block ``b`` (``lo`` None: upper
-    side only); returns the sum of the slacks for the objective."""
-    rows = range(0 if x0 is None else len(x0))
-    total = 0
-    for side, bound in (("lo", lo), ("hi", hi)):
-        if bound is None:
-            continue
-        slack = pyo.Var(rows, within=pyo.NonNegativeReals)
-        b.add_component(f"{tag}_slack_{side}", slack)
-        if side == "lo":
-            rule = lambda _, i: float(x0[i]) + _lin(slopes[i], du) >= float(bound[i]) - slack[i]  # noqa: E731
+    side only); returns the sum of the slacks for the objective.
+
+    ``reach`` (the largest change of each lever column in this step) makes the rows lazy: only
+    rows whose limit the present point breaks, or lies within a fraction of what the step can
+    move it, go in now; :func:`add_broken_rows` adds the rest as solutions need them. Every
+    family is listed on ``b.limit_families``."""
+    n = 0 if x0 is None else len(x0)
+    rows = range(n)
+    slack_hi = pyo.Var(rows, within=pyo.NonNegativeReals)
+    b.add_component(f"{tag}_slack_hi", slack_hi)
+    slack_lo = None
+    total = pyo.quicksum(slack_hi[i] for i in rows)
+    if lo is not None:
+        slack_lo = pyo.Var(rows, within=pyo.NonNegativeReals)
+        b.add_component(f"{tag}_slack_lo", slack_lo)
+        total = total + pyo.quicksum(slack_lo[i] for i in rows)
+    cl = pyo.ConstraintList()
+    b.add_component(f"{tag}_limits", cl)
+    fam = LimitFamily(tag, np.asarray(x0 if n else np.zeros(0), float), slopes, lo, hi if n else np.zeros(0),
+                      du, slack_lo, slack_hi, cl, np.zeros(n, bool))
+    if not hasattr(b, "limit_families"):
+        b.limit_families = []
+    b.limit_families.append(fam)
+    if n:
+        if reach is None:
+            first = np.arange(n)
         else:
-            rule = lambda _, i: float(x0[i]) + _lin(slopes[i], du) <= float(bound[i]) + slack[i]  # noqa: E731
-        b.add_component(f"{tag}_limit_{side}", pyo.Constraint(rows, rule=rule))
-        total = total + pyo.quicksum(slack[i] for i in rows)
+            span = np.abs(slopes) @ reach
+            near = fam.x0 + _LAZY_NEAR * span >= fam.hi
+            if lo is not None:
+                near |= fam.x0 - _LAZY_NEAR * span <= lo
+            first = np.flatnonzero(near)
+        fam.add(first)
     return total
+
+
+def level_changes(spec: StepSpec, sol, l: int) -> np.ndarray:
+    """Lever-column changes of a solution at level ``l`` (the model's ``du``)."""
+    lev = spec.levels[l]
+    return np.concatenate([spec.unit_pu * (sol.fixed + sol.steps[l] - lev.cur_units),
+                           spec.exist_step_pu * (sol.exist[l] - lev.cur_exist),
+                           sol.vset[l] - lev.v_now, sol.tap_change[l]])
+
+
+def add_broken_rows(m, spec: StepSpec, sol, rounded: bool = True) -> int:
+    """Add to a lazy model every limit row the solution breaks; returns how many were added.
+    ``rounded`` False: the model's own (possibly fractional) values, for a relaxation's solution."""
+    added = 0
+    for l in range(len(spec.levels)):
+        du = level_changes(spec, sol, l) if rounded else np.array([pyo.value(e) for e in m.levels[l].du_exprs])
+        for fam in m.levels[l].limit_families:
+            idx = fam.broken(du)
+            if len(idx):
+                fam.add(idx)
+                added += len(idx)
+    return added
 
 
 def _ordered(bounds):
@@ -342,7 +486,7 @@ def deterministic_options(spec) -> dict:
             "mip_heuristic_effort": 0.01}
 
 
-def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution:
+def solve_model(m, spec: StepSpec, solver=None, time_limit=None, relax: bool = False) -> StepSolution:
     """Solve with HiGHS and read the solution back as arrays (integers rounded). The node limit
     bounds the work; the time limit is only an emergency stop, recorded in the solution."""
     _load()
@@ -351,7 +495,7 @@ def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution
         res = solver.solve(m, load_solutions=False,
                            time_limit=time_limit if time_limit is not None else spec_time_limit(spec),
                            raise_exception_on_nonoptimal_result=False,
-                           solver_options=deterministic_options(spec))
+                           solver_options=dict(deterministic_options(spec), solve_relaxation=bool(relax)))
         status = str(res.termination_condition).split(".")[-1]
         sol = str(res.solution_status).split(".")[-1]
         ok = sol in ("optimal", "feasible")
