@@ -110,6 +110,61 @@ def objective_scale(spec: "StepSpec") -> float:
     return total if total > 0 else 1.0
 
 
+class Affine:
+    """The lever-column changes ``du`` of one level as an affine map of the model's variables:
+    column ``j`` is ``sum(coef * var) + const`` over its own terms. Rows ``a @ du + c`` are then
+    made in bulk (numpy, one ``LinearExpression`` each) instead of as expression trees."""
+
+    def __init__(self, cols: list, const: np.ndarray):
+        self.col = np.array([j for j, terms in enumerate(cols) for _ in terms], np.int64)
+        self.coef = np.array([c for terms in cols for c, _ in terms], float)
+        self.vars = [v for terms in cols for _, v in terms]
+        self.const = np.asarray(const, float)
+
+    @classmethod
+    def of_levers(cls, m, spec: StepSpec, lev: LevelData, l: int, vl: int) -> "Affine":
+        cols, const = [], []
+        for s in range(len(spec.unit_pu)):
+            u = float(spec.unit_pu[s])
+            cols.append([(u, m.nf[s]), (u, m.k[l, s])])
+            const.append(-u * float(lev.cur_units[s]))
+        for e in range(len(spec.exist_step_pu)):
+            cols.append([(float(spec.exist_step_pu[e]), m.e[l, e])])
+            const.append(-float(spec.exist_step_pu[e]) * int(lev.cur_exist[e]))
+        for g in range(len(spec.v_lo)):
+            cols.append([(1.0, m.v[vl, g])])
+            const.append(-float(lev.v_now[g]))
+        for t in range(len(spec.tap_step)):
+            cols.append([(float(spec.tap_step[t]) if spec.tap_step[t] > 0 else 1.0, m.d[l, t])])
+            const.append(0.0)
+        return cls(cols, const)
+
+    def row(self, a, c0: float = 0.0, extra=(), rel_tol: float = 1e-9):
+        """``c0 + a @ du`` (plus ``extra`` (coef, var) terms) as one linear expression; slopes far
+        below the row's largest are dropped (they only hurt the solver's numerics)."""
+        from pyomo.core.expr.numeric_expr import LinearExpression
+        a = np.asarray(a, float)
+        keep = np.abs(a) > rel_tol * (np.abs(a).max() if a.size else 0.0)
+        a = np.where(keep, a, 0.0)
+        coef = a[self.col] * self.coef
+        nz = np.flatnonzero(coef)
+        return LinearExpression(constant=float(c0 + a @ self.const),
+                                linear_coefs=[float(x) for x in coef[nz]] + [float(c) for c, _ in extra],
+                                linear_vars=[self.vars[i] for i in nz] + [v for _, v in extra])
+
+    def value(self) -> np.ndarray:
+        """``du`` at the variables' present values."""
+        x = np.array([v.value if v.value is not None else 0.0 for v in self.vars], float)
+        return np.bincount(self.col, weights=self.coef * x, minlength=len(self.const)) + self.const
+
+
+def _cut(b, k, p):
+    """The tangent cut ``w_k >= 2 p s_k - p^2`` of one square term."""
+    from pyomo.core.expr.numeric_expr import LinearExpression
+    p = float(p)
+    return LinearExpression(constant=0.0, linear_coefs=[1.0, -2.0 * p], linear_vars=[b.w[k], b.s[k]]) >= -p * p
+
+
 def build_model(spec: StepSpec, lazy: bool = False):
     """A Pyomo model of one trust-region step over all load levels.
 
@@ -177,11 +232,8 @@ def build_model(spec: StepSpec, lazy: bool = False):
         lev = spec.levels[l]
         b = m.levels[l]
         vl = 0 if spec.common_setpoints else l
-        du = ([spec.unit_pu[s] * (m.nf[s] + m.k[l, s] - float(lev.cur_units[s])) for s in S]
-              + [spec.exist_step_pu[e] * (m.e[l, e] - int(lev.cur_exist[e])) for e in E]
-              + [m.v[vl, g] - float(lev.v_now[g]) for g in G]
-              + [(spec.tap_step[t] if spec.tap_step[t] > 0 else 1.0) * m.d[l, t] for t in T])
-        b.du_exprs = du
+        du = Affine.of_levers(m, spec, lev, l, vl)
+        b.du_map = du
         # trust region on bank units at each site
         b.unit_tr = pyo.ConstraintList()
         for s in S:
@@ -192,17 +244,18 @@ def build_model(spec: StepSpec, lazy: bool = False):
         K = range(len(lev.d))
         b.s = pyo.Var(K)
         b.w = pyo.Var(K, within=pyo.NonNegativeReals)
-        b.s_def = pyo.Constraint(K, rule=lambda _, k: b.s[k] == root * float(lev.d[k]) + _lin(root * lev.R[k], du))
+        b.s_def = pyo.Constraint(K, rule=lambda _, k: du.row(root * lev.R[k], root * float(lev.d[k]),
+                                                              extra=((-1.0, b.s[k]),)) == 0.0)
         b.cuts = pyo.ConstraintList()
         for k in K:
             span = root * (np.abs(lev.R[k]) @ np.maximum(np.abs(lo_du), np.abs(hi_du)))
             lo, hi = root * lev.d[k] - span, root * lev.d[k] + span
             pts = np.unique(np.concatenate([np.linspace(lo, hi, spec.tangent_points), [root * lev.d[k], 0.0]]))
             for p in pts:
-                b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
+                b.cuts.add(_cut(b, k, p))
         for seed in spec.seeds:
             for k, p in enumerate(root * (lev.d + lev.R @ seed[l])):
-                b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
+                b.cuts.add(_cut(b, k, p))
         b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + spec.base_mva * float(lev.const))  # MW
         # voltage, reactive and loading rows, each with a penalised slack
         reach = np.maximum(np.abs(lo_du), np.abs(hi_du))
@@ -226,6 +279,14 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     ``rel_tol`` of the losses, or within half the MILP gap if that is wider. Returns (solution,
     number of MILP solves, every round's solution in order).
 
+    To keep the whole-number rounds small: limit rows are lazy (only those the present point
+    nearly reaches at first, then every row a solution breaks, so the final solution meets all
+    of them), and each round after the first starts from the last round's whole numbers (still
+    feasible: cuts only raise the loss estimate, limit rows have slacks). ``LP_ROUNDS`` > 0
+    would first place cuts where the continuous relaxation lands; it is off because the MILP's
+    relative gap then let HiGHS stop at the present point where a constant penalty (a breach no
+    lever can cure) dominates the objective (IEEE 14 with paralleled transformers).
+
     The work is bounded by counts only (rounds, branch-and-bound nodes per solve), so the same
     step gives the same solution on a quiet or a loaded machine; the time limit of each solve
     is an emergency stop whose firing the solution records (``time_limited``).
@@ -240,7 +301,7 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
         # cheap rounds first: cuts and rows where the continuous relaxation wants to go, so
         # the whole-number solves start from a loss model that is already close there
         lp = solve_model(m, spec, solver, relax=True)
-        if not lp.ok or not (_add_cuts(m, spec, lp_values=True) + add_broken_rows(m, spec, lp, rounded=False)):
+        if not lp.ok or not (_add_cuts(m, spec) + add_broken_rows(m, spec, lp, rounded=False)):
             break
     for _ in range(max_rounds):
         if sol is not None and MIP_START:
@@ -263,7 +324,7 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
                 excess = sk * sk - pyo.value(b.w[k])
                 if excess > 1e-14:
                     gap += excess * lev.weight      # MW x weight
-                    b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
+                    b.cuts.add(_cut(b, k, sk))
                     added = True
         rows = add_broken_rows(m, spec, sol)
         same = prev is not None and _same_solution(prev, sol) and not rows
@@ -276,12 +337,12 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     return sol, solves, rounds
 
 
-LAZY_ROWS = True
-MIP_START = True
-LP_ROUNDS = 8
+LAZY_ROWS = True     # solve_step's models add limit rows as solutions break them
+MIP_START = True     # each round after the first starts from the last round's whole numbers
+LP_ROUNDS = 0        # relaxation solves that place cuts before the first whole-number solve (0: off, see solve_step)
 
 
-def _add_cuts(m, spec, lp_values=False, tol=1e-7) -> int:
+def _add_cuts(m, spec, tol=1e-7) -> int:
     """Tangent cuts at the model's present square-term values where they are underestimated by
     more than ``tol`` (relative to the square); returns how many were added."""
     n = 0
@@ -290,7 +351,7 @@ def _add_cuts(m, spec, lp_values=False, tol=1e-7) -> int:
         for k in range(len(lev.d)):
             sk = pyo.value(b.s[k])
             if sk * sk - pyo.value(b.w[k]) > tol * max(sk * sk, 1e-12):
-                b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
+                b.cuts.add(_cut(b, k, sk))
                 n += 1
     return n
 
@@ -340,7 +401,7 @@ class LimitFamily:
     slopes: np.ndarray
     lo: np.ndarray | None
     hi: np.ndarray
-    du: list                          # the level's lever-change expressions
+    du: "Affine"                      # the level's lever changes
     slack_lo: object                  # Pyomo slack variables per row (None for no lower side)
     slack_hi: object
     rows: object                      # Pyomo ConstraintList of the rows in the model
@@ -351,7 +412,7 @@ class LimitFamily:
             i = int(i)
             if self.active[i]:
                 continue
-            expr = float(self.x0[i]) + _lin(self.slopes[i], self.du)
+            expr = self.du.row(self.slopes[i], float(self.x0[i]))
             if self.lo is not None:
                 self.rows.add(expr >= float(self.lo[i]) - self.slack_lo[i])
             self.rows.add(expr <= float(self.hi[i]) + self.slack_hi[i])
@@ -419,7 +480,7 @@ def add_broken_rows(m, spec: StepSpec, sol, rounded: bool = True) -> int:
     ``rounded`` False: the model's own (possibly fractional) values, for a relaxation's solution."""
     added = 0
     for l in range(len(spec.levels)):
-        du = level_changes(spec, sol, l) if rounded else np.array([pyo.value(e) for e in m.levels[l].du_exprs])
+        du = level_changes(spec, sol, l) if rounded else m.levels[l].du_map.value()
         for fam in m.levels[l].limit_families:
             idx = fam.broken(du)
             if len(idx):
@@ -486,7 +547,8 @@ def deterministic_options(spec) -> dict:
             "mip_heuristic_effort": 0.01}
 
 
-def solve_model(m, spec: StepSpec, solver=None, time_limit=None, relax: bool = False) -> StepSolution:
+def solve_model(m, spec: StepSpec, solver=None, time_limit=None, relax: bool = False,
+                gap: float | None = None) -> StepSolution:
     """Solve with HiGHS and read the solution back as arrays (integers rounded). The node limit
     bounds the work; the time limit is only an emergency stop, recorded in the solution."""
     _load()
@@ -495,7 +557,8 @@ def solve_model(m, spec: StepSpec, solver=None, time_limit=None, relax: bool = F
         res = solver.solve(m, load_solutions=False,
                            time_limit=time_limit if time_limit is not None else spec_time_limit(spec),
                            raise_exception_on_nonoptimal_result=False,
-                           solver_options=dict(deterministic_options(spec), solve_relaxation=bool(relax)))
+                           solver_options=dict(deterministic_options(spec), solve_relaxation=bool(relax),
+                                               **({} if gap is None else {"mip_rel_gap": float(gap)})))
         status = str(res.termination_condition).split(".")[-1]
         sol = str(res.solution_status).split(".")[-1]
         ok = sol in ("optimal", "feasible")
