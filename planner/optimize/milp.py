@@ -110,68 +110,8 @@ def objective_scale(spec: "StepSpec") -> float:
     return total if total > 0 else 1.0
 
 
-class Affine:
-    """The lever-column changes ``du`` of one level as an affine map of the model's variables:
-    column ``j`` is ``sum(coef * var) + const`` over its own terms. Rows ``a @ du + c`` are then
-    made in bulk (numpy, one ``LinearExpression`` each) instead of as expression trees."""
-
-    def __init__(self, cols: list, const: np.ndarray):
-        self.col = np.array([j for j, terms in enumerate(cols) for _ in terms], np.int64)
-        self.coef = np.array([c for terms in cols for c, _ in terms], float)
-        self.vars = [v for terms in cols for _, v in terms]
-        self.const = np.asarray(const, float)
-
-    @classmethod
-    def of_levers(cls, m, spec: StepSpec, lev: LevelData, l: int, vl: int) -> "Affine":
-        cols, const = [], []
-        for s in range(len(spec.unit_pu)):
-            u = float(spec.unit_pu[s])
-            cols.append([(u, m.nf[s]), (u, m.k[l, s])])
-            const.append(-u * float(lev.cur_units[s]))
-        for e in range(len(spec.exist_step_pu)):
-            cols.append([(float(spec.exist_step_pu[e]), m.e[l, e])])
-            const.append(-float(spec.exist_step_pu[e]) * int(lev.cur_exist[e]))
-        for g in range(len(spec.v_lo)):
-            cols.append([(1.0, m.v[vl, g])])
-            const.append(-float(lev.v_now[g]))
-        for t in range(len(spec.tap_step)):
-            cols.append([(float(spec.tap_step[t]) if spec.tap_step[t] > 0 else 1.0, m.d[l, t])])
-            const.append(0.0)
-        return cls(cols, const)
-
-    def row(self, a, c0: float = 0.0, extra=(), rel_tol: float = 1e-9):
-        """``c0 + a @ du`` (plus ``extra`` (coef, var) terms) as one linear expression; slopes far
-        below the row's largest are dropped (they only hurt the solver's numerics)."""
-        from pyomo.core.expr.numeric_expr import LinearExpression
-        a = np.asarray(a, float)
-        keep = np.abs(a) > rel_tol * (np.abs(a).max() if a.size else 0.0)
-        a = np.where(keep, a, 0.0)
-        coef = a[self.col] * self.coef
-        nz = np.flatnonzero(coef)
-        return LinearExpression(constant=float(c0 + a @ self.const),
-                                linear_coefs=[float(x) for x in coef[nz]] + [float(c) for c, _ in extra],
-                                linear_vars=[self.vars[i] for i in nz] + [v for _, v in extra])
-
-    def value(self) -> np.ndarray:
-        """``du`` at the variables' present values."""
-        x = np.array([v.value if v.value is not None else 0.0 for v in self.vars], float)
-        return np.bincount(self.col, weights=self.coef * x, minlength=len(self.const)) + self.const
-
-
-def _cut(b, k, p):
-    """The tangent cut ``w_k >= 2 p s_k - p^2`` of one square term."""
-    from pyomo.core.expr.numeric_expr import LinearExpression
-    p = float(p)
-    return LinearExpression(constant=0.0, linear_coefs=[1.0, -2.0 * p], linear_vars=[b.w[k], b.s[k]]) >= -p * p
-
-
-def build_model(spec: StepSpec, lazy: bool = False):
-    """A Pyomo model of one trust-region step over all load levels.
-
-    ``lazy``: the limit rows (voltage, reactive, loading) start with only those the present point
-    breaks or nearly reaches; :func:`add_broken_rows` adds the others as solutions break them
-    (:func:`solve_step` does). A row-complete model (the default) holds every row from the start.
-    """
+def build_model(spec: StepSpec):
+    """A Pyomo model of one trust-region step over all load levels."""
     _load()
     m = pyo.ConcreteModel(name="loss_step")
     S = range(len(spec.unit_pu))
@@ -232,8 +172,10 @@ def build_model(spec: StepSpec, lazy: bool = False):
         lev = spec.levels[l]
         b = m.levels[l]
         vl = 0 if spec.common_setpoints else l
-        du = Affine.of_levers(m, spec, lev, l, vl)
-        b.du_map = du
+        du = ([spec.unit_pu[s] * (m.nf[s] + m.k[l, s] - float(lev.cur_units[s])) for s in S]
+              + [spec.exist_step_pu[e] * (m.e[l, e] - int(lev.cur_exist[e])) for e in E]
+              + [m.v[vl, g] - float(lev.v_now[g]) for g in G]
+              + [(spec.tap_step[t] if spec.tap_step[t] > 0 else 1.0) * m.d[l, t] for t in T])
         # trust region on bank units at each site
         b.unit_tr = pyo.ConstraintList()
         for s in S:
@@ -244,25 +186,22 @@ def build_model(spec: StepSpec, lazy: bool = False):
         K = range(len(lev.d))
         b.s = pyo.Var(K)
         b.w = pyo.Var(K, within=pyo.NonNegativeReals)
-        b.s_def = pyo.Constraint(K, rule=lambda _, k: du.row(root * lev.R[k], root * float(lev.d[k]),
-                                                              extra=((-1.0, b.s[k]),)) == 0.0)
+        b.s_def = pyo.Constraint(K, rule=lambda _, k: b.s[k] == root * float(lev.d[k]) + _lin(root * lev.R[k], du))
         b.cuts = pyo.ConstraintList()
         for k in K:
             span = root * (np.abs(lev.R[k]) @ np.maximum(np.abs(lo_du), np.abs(hi_du)))
             lo, hi = root * lev.d[k] - span, root * lev.d[k] + span
             pts = np.unique(np.concatenate([np.linspace(lo, hi, spec.tangent_points), [root * lev.d[k], 0.0]]))
             for p in pts:
-                b.cuts.add(_cut(b, k, p))
+                b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
         for seed in spec.seeds:
             for k, p in enumerate(root * (lev.d + lev.R @ seed[l])):
-                b.cuts.add(_cut(b, k, p))
+                b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
         b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + spec.base_mva * float(lev.const))  # MW
         # voltage, reactive and loading rows, each with a penalised slack
-        reach = np.maximum(np.abs(lo_du), np.abs(hi_du))
-        b.limit_families = []
-        viol = (_limit_rows(b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, du, reach if lazy else None)
-                + _limit_rows(b, "q", lev.q0, lev.dq, lev.q_lo, lev.q_hi, du, reach if lazy else None)
-                + _limit_rows(b, "s", lev.s0, lev.ds, None, lev.s_hi, du, reach if lazy else None))
+        viol = (_limit_rows(b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, du)
+                + _limit_rows(b, "q", lev.q0, lev.dq, lev.q_lo, lev.q_hi, du)
+                + _limit_rows(b, "s", lev.s0, lev.ds, None, lev.s_hi, du))
         obj_terms.append(lev.weight / scale * b.loss + spec.penalty / scale * viol)
         tie.append(pyo.quicksum(m.k[l, s] for s in S))
     obj_terms.append(spec.tie_break * (pyo.quicksum(m.nf[s] + 2 * m.ns[s] for s in S) + pyo.quicksum(tie)))
@@ -279,33 +218,17 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     ``rel_tol`` of the losses, or within half the MILP gap if that is wider. Returns (solution,
     number of MILP solves, every round's solution in order).
 
-    To keep the whole-number rounds small: limit rows are lazy (only those the present point
-    nearly reaches at first, then every row a solution breaks, so the final solution meets all
-    of them), and each round after the first starts from the last round's whole numbers (still
-    feasible: cuts only raise the loss estimate, limit rows have slacks). ``LP_ROUNDS`` > 0
-    would first place cuts where the continuous relaxation lands; it is off because the MILP's
-    relative gap then let HiGHS stop at the present point where a constant penalty (a breach no
-    lever can cure) dominates the objective (IEEE 14 with paralleled transformers).
-
     The work is bounded by counts only (rounds, branch-and-bound nodes per solve), so the same
     step gives the same solution on a quiet or a loaded machine; the time limit of each solve
     is an emergency stop whose firing the solution records (``time_limited``).
     """
-    m = build_model(spec, lazy=LAZY_ROWS)
+    m = build_model(spec)
     solver = new_solver()
     solves = 0
     sol = prev = None
     rounds = []
     timed_out = False
-    for _ in range(LP_ROUNDS):
-        # cheap rounds first: cuts and rows where the continuous relaxation wants to go, so
-        # the whole-number solves start from a loss model that is already close there
-        lp = solve_model(m, spec, solver, relax=True)
-        if not lp.ok or not (_add_cuts(m, spec) + add_broken_rows(m, spec, lp, rounded=False)):
-            break
     for _ in range(max_rounds):
-        if sol is not None and MIP_START:
-            _start_from_integers(solver, m)
         sol = solve_model(m, spec, solver)
         solves += 1
         timed_out = timed_out or sol.time_limited
@@ -324,62 +247,16 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
                 excess = sk * sk - pyo.value(b.w[k])
                 if excess > 1e-14:
                     gap += excess * lev.weight      # MW x weight
-                    b.cuts.add(_cut(b, k, sk))
+                    b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
                     added = True
-        rows = add_broken_rows(m, spec, sol)
-        same = prev is not None and _same_solution(prev, sol) and not rows
+        same = prev is not None and _same_solution(prev, sol)
         # HiGHS holds each cut only to its feasibility tolerance (1e-7), so a tiny gap remains
         # cuts closer than half the MILP's own optimality gap cannot change what it may return
         tol = max(rel_tol, 0.5 * spec_mip_gap(spec))
-        if not rows and (not added or gap <= tol * max(total, 1e-12) or same):
+        if not added or gap <= tol * max(total, 1e-12) or same:
             break
         prev = sol
     return sol, solves, rounds
-
-
-LAZY_ROWS = True     # solve_step's models add limit rows as solutions break them
-MIP_START = True     # each round after the first starts from the last round's whole numbers
-LP_ROUNDS = 0        # relaxation solves that place cuts before the first whole-number solve (0: off, see solve_step)
-
-
-def _add_cuts(m, spec, tol=1e-7) -> int:
-    """Tangent cuts at the model's present square-term values where they are underestimated by
-    more than ``tol`` (relative to the square); returns how many were added."""
-    n = 0
-    for l, lev in enumerate(spec.levels):
-        b = m.levels[l]
-        for k in range(len(lev.d)):
-            sk = pyo.value(b.s[k])
-            if sk * sk - pyo.value(b.w[k]) > tol * max(sk * sk, 1e-12):
-                b.cuts.add(_cut(b, k, sk))
-                n += 1
-    return n
-
-
-def _start_from_integers(solver, m):
-    """Give HiGHS the last round's whole-number values as a starting point of the next solve (it
-    completes the continuous part itself): after added cuts and rows that point stays feasible
-    (limit rows have slacks), so the search starts with an incumbent instead of finding one."""
-    h = getattr(solver, "_solver_model", None)
-    col = getattr(solver, "_pyomo_var_to_solver_var_map", None)
-    if h is None or col is None:
-        return
-    idx, val = [], []
-    for v in m.component_data_objects(pyo.Var, descend_into=True):
-        if v.is_integer() and v.value is not None and id(v) in col:
-            idx.append(col[id(v)])
-            val.append(round(v.value))
-    if not idx:
-        return
-    order = np.argsort(idx)
-    start = (len(idx), np.asarray(idx, np.int32)[order], np.asarray(val, float)[order])
-    base = solver._solve
-
-    def solve_with_start():
-        solver._solve = base             # once only
-        h.setSolution(*start)
-        return base()
-    solver._solve = solve_with_start
 
 
 def _same_solution(a, b) -> bool:
@@ -388,105 +265,23 @@ def _same_solution(a, b) -> bool:
             and np.allclose(a.vset, b.vset, atol=1e-7, rtol=0) and np.allclose(a.tap_change, b.tap_change, atol=1e-7, rtol=0))
 
 
-_LAZY_NEAR = 0.2      # a lazy row starts in the model when its limit is this fraction of its reach away
-_ROW_TOL = 1e-7       # a lazy row is added when a solution breaks it by more than this
-
-
-@dataclass
-class LimitFamily:
-    """Linear limit rows ``lo - slack <= x0 + slopes du <= hi + slack`` of one kind at one level,
-    and which of them are in the model (all, or those a lazy model has added so far)."""
-    tag: str
-    x0: np.ndarray
-    slopes: np.ndarray
-    lo: np.ndarray | None
-    hi: np.ndarray
-    du: "Affine"                      # the level's lever changes
-    slack_lo: object                  # Pyomo slack variables per row (None for no lower side)
-    slack_hi: object
-    rows: object                      # Pyomo ConstraintList of the rows in the model
-    active: np.ndarray                # (rows,) bool: in the model
-
-    def add(self, idx):
-        for i in idx:
-            i = int(i)
-            if self.active[i]:
-                continue
-            expr = self.du.row(self.slopes[i], float(self.x0[i]))
-            if self.lo is not None:
-                self.rows.add(expr >= float(self.lo[i]) - self.slack_lo[i])
-            self.rows.add(expr <= float(self.hi[i]) + self.slack_hi[i])
-            self.active[i] = True
-
-    def broken(self, du_value: np.ndarray) -> np.ndarray:
-        """Rows outside the model that the lever change ``du_value`` breaks."""
-        if not len(self.x0):
-            return np.zeros(0, np.int64)
-        x = self.x0 + self.slopes @ du_value
-        bad = x > self.hi + _ROW_TOL
-        if self.lo is not None:
-            bad |= x < self.lo - _ROW_TOL
-        return np.flatnonzero(bad & ~self.active)
-
-
-def _limit_rows(b, tag, x0, slopes, lo, hi, du, reach=None):
+def _limit_rows(b, tag, x0, slopes, lo, hi, du):
     """Rows ``lo - slack <= x0 + slopes du <= hi + slack`` on block ``b`` (``lo`` None: upper
-    side only); returns the sum of the slacks for the objective.
-
-    ``reach`` (the largest change of each lever column in this step) makes the rows lazy: only
-    rows whose limit the present point breaks, or lies within a fraction of what the step can
-    move it, go in now; :func:`add_broken_rows` adds the rest as solutions need them. Every
-    family is listed on ``b.limit_families``."""
-    n = 0 if x0 is None else len(x0)
-    rows = range(n)
-    slack_hi = pyo.Var(rows, within=pyo.NonNegativeReals)
-    b.add_component(f"{tag}_slack_hi", slack_hi)
-    slack_lo = None
-    total = pyo.quicksum(slack_hi[i] for i in rows)
-    if lo is not None:
-        slack_lo = pyo.Var(rows, within=pyo.NonNegativeReals)
-        b.add_component(f"{tag}_slack_lo", slack_lo)
-        total = total + pyo.quicksum(slack_lo[i] for i in rows)
-    cl = pyo.ConstraintList()
-    b.add_component(f"{tag}_limits", cl)
-    fam = LimitFamily(tag, np.asarray(x0 if n else np.zeros(0), float), slopes, lo, hi if n else np.zeros(0),
-                      du, slack_lo, slack_hi, cl, np.zeros(n, bool))
-    if not hasattr(b, "limit_families"):
-        b.limit_families = []
-    b.limit_families.append(fam)
-    if n:
-        if reach is None:
-            first = np.arange(n)
+    side only); returns the sum of the slacks for the objective."""
+    rows = range(0 if x0 is None else len(x0))
+    total = 0
+    for side, bound in (("lo", lo), ("hi", hi)):
+        if bound is None:
+            continue
+        slack = pyo.Var(rows, within=pyo.NonNegativeReals)
+        b.add_component(f"{tag}_slack_{side}", slack)
+        if side == "lo":
+            rule = lambda _, i: float(x0[i]) + _lin(slopes[i], du) >= float(bound[i]) - slack[i]  # noqa: E731
         else:
-            span = np.abs(slopes) @ reach
-            near = fam.x0 + _LAZY_NEAR * span >= fam.hi
-            if lo is not None:
-                near |= fam.x0 - _LAZY_NEAR * span <= lo
-            first = np.flatnonzero(near)
-        fam.add(first)
+            rule = lambda _, i: float(x0[i]) + _lin(slopes[i], du) <= float(bound[i]) + slack[i]  # noqa: E731
+        b.add_component(f"{tag}_limit_{side}", pyo.Constraint(rows, rule=rule))
+        total = total + pyo.quicksum(slack[i] for i in rows)
     return total
-
-
-def level_changes(spec: StepSpec, sol, l: int) -> np.ndarray:
-    """Lever-column changes of a solution at level ``l`` (the model's ``du``)."""
-    lev = spec.levels[l]
-    return np.concatenate([spec.unit_pu * (sol.fixed + sol.steps[l] - lev.cur_units),
-                           spec.exist_step_pu * (sol.exist[l] - lev.cur_exist),
-                           sol.vset[l] - lev.v_now, sol.tap_change[l]])
-
-
-def add_broken_rows(m, spec: StepSpec, sol, rounded: bool = True) -> int:
-    """Add to a lazy model every limit row the solution breaks; returns how many were added.
-    ``rounded`` False: the model's own (possibly fractional) values, for a relaxation's solution."""
-    added = 0
-    for l in range(len(spec.levels)):
-        du = level_changes(spec, sol, l) if rounded else m.levels[l].du_map.value()
-        for fam in m.levels[l].limit_families:
-            idx = fam.broken(du)
-            if len(idx):
-                fam.add(idx)
-                added += len(idx)
-    return added
 
 
 def _ordered(bounds):
@@ -547,8 +342,7 @@ def deterministic_options(spec) -> dict:
             "mip_heuristic_effort": 0.01}
 
 
-def solve_model(m, spec: StepSpec, solver=None, time_limit=None, relax: bool = False,
-                gap: float | None = None) -> StepSolution:
+def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution:
     """Solve with HiGHS and read the solution back as arrays (integers rounded). The node limit
     bounds the work; the time limit is only an emergency stop, recorded in the solution."""
     _load()
@@ -557,8 +351,7 @@ def solve_model(m, spec: StepSpec, solver=None, time_limit=None, relax: bool = F
         res = solver.solve(m, load_solutions=False,
                            time_limit=time_limit if time_limit is not None else spec_time_limit(spec),
                            raise_exception_on_nonoptimal_result=False,
-                           solver_options=dict(deterministic_options(spec), solve_relaxation=bool(relax),
-                                               **({} if gap is None else {"mip_rel_gap": float(gap)})))
+                           solver_options=deterministic_options(spec))
         status = str(res.termination_condition).split(".")[-1]
         sol = str(res.solution_status).split(".")[-1]
         ok = sol in ("optimal", "feasible")
