@@ -14,9 +14,11 @@ import dataclasses
 
 import numpy as np
 
+from ..flow.equations import bus_mismatch, injection, load_power
+from ..flow.jacobian import JacobianPattern, factorize
 from ..flow.newton import solve_flow
-from ..flow.result import FlowResult
-from ..network.compile import PQ
+from ..flow.result import FlowResult, FlowStatus, build_result
+from ..network.compile import PQ, PV, SLACK
 from .problem import Evaluation, PlanProblem, Settings
 from .results import Violation
 
@@ -82,9 +84,109 @@ def close_pool(pb: PlanProblem):
         pb._pool = None
 
 
-def evaluate(pb: PlanProblem, st: Settings, warm: list | None = None, tables=False) -> Evaluation:
+CHORD_ITERATIONS = 10     # chord steps allowed before a check falls back to full Newton
+CHORD_RATE = 0.5          # ... and the least mismatch reduction each step must give
+CHORD_TIGHTER = 1e-3      # chord solutions go this far below the load flow's tolerance: linear
+                          # convergence would otherwise stop just under it, where a Newton step
+                          # lands far below (the figures of a move must not depend on the path)
+
+
+class _ChordBase:
+    """The factorised Jacobian of one solved point, for chord checks of small moves from it.
+
+    Built for the point's own PV / PQ split (generators held at a reactive limit stay PQ), so a
+    move that keeps every limit state converges to the full Newton solution of the moved
+    settings; one sparse LU serves every move checked from this point.
+    """
+
+    def __init__(self, fr: FlowResult):
+        c = fr.compiled
+        self.flow = fr
+        kind = fr.kind
+        self.pvpq = np.flatnonzero((kind != SLACK) & c.alive)
+        self.pq = np.flatnonzero((kind == PQ) & c.alive)
+        self.held = fr.limit_state != 0
+        self.q_fixed = np.where(fr.limit_state > 0, c.q_max, np.where(fr.limit_state < 0, c.q_min, 0.0))
+        pat = JacobianPattern(c.ybus(), self.pvpq, self.pq)
+        dload = c.s_load_i + 2.0 * c.s_load_z * np.abs(fr.v)
+        self.lu = factorize(pat.matrix(fr.v, dload))
+
+
+def chord_flow(base: _ChordBase, c, tol: float = 1e-8 * CHORD_TIGHTER) -> FlowResult | None:
+    """Load flow of ``c`` (the base point's network with other shunts, setpoints or taps) by
+    chord iterations on the base point's factorised Jacobian, or None when the chord does not
+    settle within ``CHORD_ITERATIONS`` steps, or the solution would change a reactive-limit
+    state (the caller then runs the full Newton load flow). The tolerance is the load flow's
+    times ``CHORD_TIGHTER``."""
+    fr = base.flow
+    y = c.ybus()
+    pvpq, pq = base.pvpq, base.pq
+    na = len(pvpq)
+    kind = fr.kind
+    vm = np.abs(fr.v)
+    va = np.angle(fr.v)
+    ctrl = (kind != PQ) & c.alive
+    vm[ctrl] = c.v_set[ctrl]
+    history = []
+    with np.errstate(all="ignore"):
+        for it in range(CHORD_ITERATIONS + 1):
+            v = vm * np.exp(1j * va)
+            mis = bus_mismatch(c, y, v, base.q_fixed)
+            F = np.concatenate([mis.real[pvpq], mis.imag[pq]])
+            norm = float(np.abs(F).max()) if F.size else 0.0
+            history.append(norm * c.base_mva)
+            if not np.isfinite(norm) or (it and norm > CHORD_RATE * history[-2] / c.base_mva):
+                return None
+            if norm <= tol:
+                break
+            if it == CHORD_ITERATIONS:
+                return None
+            dx = base.lu.solve(F)
+            va[pvpq] -= dx[:na]
+            vm[pq] -= dx[na:]
+        # the limit states must stand: no PV generator past a limit, no held one wanting back
+        q_gen = injection(y, v).imag + load_power(c, vm).imag - c.s_gen.imag
+        pv = (kind == PV) & c.alive
+        if np.any(pv & ((q_gen > c.q_max + 1e-9) | (q_gen < c.q_min - 1e-9))):
+            return None
+        at = fr.limit_state
+        if np.any(((at > 0) & (vm > c.v_set + 1e-9)) | ((at < 0) & (vm < c.v_set - 1e-9))):
+            return None
+    return build_result(c, y, v, kind.copy(), base.q_fixed.copy(), at.copy(), status=FlowStatus.CONVERGED,
+                        message=f"converged in {it} chord iterations", iterations=it, history=history,
+                        seconds=0.0, build_tables=False, equations_solved=True, oscillating_buses=[],
+                        continuation_steps=0, strategy="chord")
+
+
+def _chord_base_or_none(fr):
+    """A chord base for a converged flow; None (full Newton for every move) when there is no
+    converged flow or its Jacobian cannot be factorised."""
+    if fr is None or not fr.converged:
+        return None
+    try:
+        return _ChordBase(fr)
+    except (RuntimeError, ValueError):
+        return None
+
+
+def chord_bases(pb: PlanProblem, flows) -> list:
+    """The chord factorisations of the present point's flows, kept on ``pb`` while they are the
+    present point (one LU per level, rebuilt only when the point moves)."""
+    cache = getattr(pb, "_chord", None)
+    if cache is None or len(cache) != len(flows) or any(b.flow is not f for b, f in zip(cache, flows)):
+        cache = [_chord_base_or_none(f) for f in flows]
+        pb._chord = cache
+    return cache
+
+
+def evaluate(pb: PlanProblem, st: Settings, warm: list | None = None, tables=False, chord=False) -> Evaluation:
     """Full AC load flows (reactive limits enforced) of ``st`` at every level, and the merit
-    that decides acceptance. With ``pb.options.jobs`` > 1 the levels run in parallel processes."""
+    that decides acceptance. With ``pb.options.jobs`` > 1 the levels run in parallel processes.
+
+    ``chord`` (for small moves from the converged ``warm`` flows): each level is solved first by
+    chord iterations on the warm point's factorised Jacobian (:func:`chord_flow`), to the load
+    flow's tolerance; a level where the chord does not settle, or a reactive limit would switch,
+    gets the full Newton load flow. The final plan is always checked by full Newton."""
     flows, losses, viols = [], [], []
     total = 0.0
     ok = True
@@ -93,7 +195,15 @@ def evaluate(pb: PlanProblem, st: Settings, warm: list | None = None, tables=Fal
         start = warm[l] if warm is not None and warm[l] is not None and warm[l].converged else "flat"
         jobs.append((pb.compiled_for(l, st), start, tables))
     pool = level_pool(pb)
-    if pool is not None:
+    if chord and warm is not None and not tables:
+        bases = chord_bases(pb, warm)
+        solved = []
+        for l, job in enumerate(jobs):
+            fr = chord_flow(bases[l], job[0]) if bases[l] is not None else None
+            if fr is not None:
+                pb.chord_flows = getattr(pb, "chord_flows", 0) + 1
+            solved.append((fr, 1) if fr is not None else _solve_level(job))
+    elif pool is not None:
         # the symbolic caches (SuperLU objects) stay in this process: workers get bare arrays,
         # and the flows they return are given back this process's compiled networks
         solved = list(pool.map(_solve_level, [_portable(j) for j in jobs]))

@@ -9,7 +9,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.linalg
 
 from ..flow.result import FlowResult
 from ..network.compile import PQ, compile_network, replace
@@ -226,21 +225,9 @@ class PlanProblem:
     def level_data(self, l: int, st: Settings, fr: FlowResult, radius_v: float, radius_units: int) -> LevelData:
         c = fr.compiled
         sens = self.sensitivity(fr)
-        w = np.sqrt(np.maximum(sens.r, 0.0))
-        m = sens.di.shape[1]
-        # R-only QR of [M c] (no Q is formed): |c + M du|^2 = |d + R du|^2 + const exactly, with
-        # R, d the first m rows and const the square of the last diagonal entry
-        A = np.empty((2 * len(w), m + 1))
-        A[:len(w), :m] = w[:, None] * sens.di.real
-        A[len(w):, :m] = w[:, None] * sens.di.imag
-        A[:len(w), m] = w * sens.i0.real
-        A[len(w):, m] = w * sens.i0.imag
-        if m:
-            Ra = scipy.linalg.qr(A, mode="r", overwrite_a=True, check_finite=False)[0]
-            Ra = np.vstack([Ra, np.zeros((max(0, m + 1 - Ra.shape[0]), m + 1))])
-            R, d, const = Ra[:m, :m].copy(), Ra[:m, m].copy(), float(Ra[m, m] ** 2)
-        else:
-            R, d, const = np.zeros((0, 0)), np.zeros(0), float(A[:, 0] @ A[:, 0])
+        # |c + M du|^2 = |d + R du|^2 + const exactly (sensitivity.Sensitivity.loss_model: an
+        # R-only QR on small networks, a Gram matrix from sparse products on large ones)
+        R, d, const = sens.loss_model()
         # rows that can bind inside this trust region (others are dropped to keep the MILP small)
         span_units = np.concatenate([self.unit_pu() * radius_units, self.exist_step * radius_units,
                                      np.full(len(self.vset_bus), radius_v),
@@ -289,11 +276,7 @@ class PlanProblem:
         shunt_buses = np.concatenate([self.site_bus, self.exist_bus]).astype(np.int64)
         sens = linearize(fr, shunt_buses=shunt_buses, vset_buses=self.vset_bus, xfmr_branches=self.tap_all)
         if len(self.tap_all) and self.tap_sum.shape[0] != self.tap_sum.shape[1]:
-            k = len(shunt_buses) + len(self.vset_bus)
-
-            def fold(a):
-                return None if a is None else np.concatenate([a[:, :k], a[:, k:] @ self.tap_sum], axis=1)
-            sens.dvm, sens.dq, sens.di, sens.dv = fold(sens.dvm), fold(sens.dq), fold(sens.di), fold(sens.dv)
+            sens.fold(len(shunt_buses) + len(self.vset_bus), self.tap_sum)
         return sens
 
     def lever_changes(self, l: int, st: Settings, to: Settings, flow: FlowResult) -> np.ndarray:

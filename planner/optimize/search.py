@@ -121,27 +121,60 @@ def within_budget(pb: PlanProblem, st: Settings) -> bool:
     return True
 
 
+_SCREEN_CHUNK = 512   # moves screened at a time: bounds the (moves x rows) arrays whatever the case size
+
+
+def capital_of(pb: PlanProblem, fixed: np.ndarray, switched: np.ndarray) -> np.ndarray:
+    """:meth:`PlanProblem.capital` of many settings at once: rows of ``fixed`` / ``switched``."""
+    sites = pb.sites
+    if not sites:
+        return np.zeros(len(fixed))
+    unit = np.array([s.unit_mvar for s in sites], float)
+    site_cost = np.array([s.fixed_cost for s in sites], float)
+    per_mvar = np.array([s.cost_per_mvar for s in sites], float)
+    sw_site = np.array([s.switched_fixed_cost for s in sites], float)
+    sw_mvar = np.array([s.switched_cost_per_mvar for s in sites], float)
+    units = fixed + switched
+    return (np.where(units != 0, site_cost + per_mvar * unit * units, 0.0)
+            + np.where(switched != 0, sw_site + sw_mvar * unit * switched, 0.0)).sum(axis=1)
+
+
 def screen(pb: PlanProblem, st: Settings, flows, moves: list):
-    """Predicted merit and per-level losses (MW) of each move by the linear model at ``st``."""
+    """Predicted merit and per-level losses (MW) of each move by the linear model at ``st``.
+
+    Vectorised over the moves, in chunks of ``_SCREEN_CHUNK`` so that memory stays bounded
+    on large networks (thousands of moves times thousands of monitored rows)."""
     L = len(pb.levels)
+    N = len(moves)
     units = max([s.max_units for s in pb.sites] + list(pb.exist_max) + [1])
-    merit = pb.capital_weight() * np.array([pb.capital(n) for n in moves], float)
-    losses = np.zeros((len(moves), L))
+    fixed = np.array([n.fixed for n in moves], float).reshape(N, -1)
+    switched = np.array([n.switched for n in moves], float).reshape(N, -1)
+    merit = pb.capital_weight() * capital_of(pb, fixed, switched)
+    losses = np.zeros((N, L))
     weights = pb.loss_weights()
+    unit_pu = pb.unit_pu()
     for l in range(L):
         lev = pb.level_data(l, st, flows[l], 1.0, units)
-        du = np.array([pb.lever_changes(l, st, n, flows[l]) for n in moves], float)
-        s = lev.d[None, :] + du @ lev.R.T if len(lev.d) else np.zeros((len(moves), 0))
-        losses[:, l] = (np.sum(s * s, axis=1) + lev.const) * pb.base
-        viol = np.zeros(len(moves))
-        for x0, slope, lo, hi in ((lev.v0, lev.dv, lev.v_lo, lev.v_hi), (lev.q0, lev.dq, lev.q_lo, lev.q_hi),
-                                  (lev.s0, lev.ds, None, lev.s_hi)):
-            if x0 is None or not len(x0):
-                continue
-            x = x0[None, :] + du @ slope.T
-            if lo is not None:
-                viol += np.maximum(lo[None, :] - x, 0.0).sum(axis=1)
-            viol += np.maximum(x - hi[None, :], 0.0).sum(axis=1)
+        v_now = np.abs(flows[l].v[pb.vset_bus])
+        du = np.concatenate([
+            unit_pu * (fixed + np.array([n.steps[l] for n in moves], float).reshape(N, -1)
+                       - st.fixed - st.steps[l]),
+            pb.exist_step * (np.array([n.exist[l] for n in moves], float).reshape(N, -1) - st.exist[l]),
+            np.array([n.vset[l] for n in moves], float).reshape(N, -1) - v_now,
+            np.array([n.ratio[l] for n in moves], float).reshape(N, -1) - st.ratio[l]], axis=1)
+        viol = np.zeros(N)
+        for a in range(0, N, _SCREEN_CHUNK):
+            part = du[a:a + _SCREEN_CHUNK]
+            s = lev.d[None, :] + part @ lev.R.T if len(lev.d) else np.zeros((len(part), 0))
+            losses[a:a + _SCREEN_CHUNK, l] = (np.sum(s * s, axis=1) + lev.const) * pb.base
+            for x0, slope, lo, hi in ((lev.v0, lev.dv, lev.v_lo, lev.v_hi), (lev.q0, lev.dq, lev.q_lo, lev.q_hi),
+                                      (lev.s0, lev.ds, None, lev.s_hi)):
+                if x0 is None or not len(x0):
+                    continue
+                x = x0[None, :] + part @ slope.T
+                if lo is not None:
+                    viol[a:a + _SCREEN_CHUNK] += np.maximum(lo[None, :] - x, 0.0).sum(axis=1)
+                viol[a:a + _SCREEN_CHUNK] += np.maximum(x - hi[None, :], 0.0).sum(axis=1)
         merit += weights[l] * losses[:, l] + pb.penalty() * viol
     return merit, losses
 
@@ -174,7 +207,7 @@ def local_search(pb: PlanProblem, cur: Settings, ev: Evaluation, options, log: l
                 if moves[j].key() not in seen:
                     chunk.append(j)
             for j in chunk:
-                new = evaluate(pb, moves[j], warm=ev.flows)
+                new = evaluate(pb, moves[j], warm=ev.flows, chord=True)
                 used += len(pb.levels)
                 seen[moves[j].key()] = new.merit
                 if new.converged and new.merit < (best[1].merit if best else ev.merit) - 1e-12:

@@ -28,6 +28,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.linalg
+import scipy.linalg.lapack
 import scipy.sparse as sp
 
 from ..flow.jacobian import JacobianPattern, bus_derivatives, factorize
@@ -36,19 +38,131 @@ from ..flow.result import FlowResult
 from ..network.compile import PQ, PV, SLACK
 
 
+# Above this many entries in the explicit (2 branches x levers) current-slope matrix the loss
+# model is formed from the state-space Gram matrix instead (see Sensitivity.loss_model).
+EXPLICIT_LIMIT = 2_000_000
+
+
 @dataclass
 class Sensitivity:
-    """Linear model of one operating point: value at the point and slope per lever."""
+    """Linear model of one operating point: value at the point and slope per lever.
+
+    Only real arrays of (buses x levers) are held: the angle and magnitude slopes. Complex
+    slopes (bus voltages, branch currents) are formed on request, for the rows asked for, and
+    the quadratic loss model comes from :meth:`loss_model` without any (branches x levers)
+    array on large networks.
+    """
     vm0: np.ndarray            # (n,) bus voltage magnitudes
-    dvm: np.ndarray            # (n, m)
+    dvm: np.ndarray            # (n, m) magnitude slopes
+    dva: np.ndarray            # (n, m) angle slopes, rad
     gen_buses: np.ndarray      # compiled indices of generator (PV and slack) buses
     q0: np.ndarray             # (g,) reactive output at those buses, pu
     dq: np.ndarray             # (g, m)
     i0: np.ndarray             # (nb,) complex series current of every branch, from-bus voltage frame
-    di: np.ndarray             # (nb, m) complex, same frame
     r: np.ndarray              # (nb,) series resistance seen by the current (pu)
     losses0: float             # pu, sum r |i0|^2
-    dv: np.ndarray = None      # (n, m) complex bus voltage slopes
+    v: np.ndarray = None       # (n,) complex bus voltages of the point
+    _parts: tuple = None       # what the current slopes are built from (see _current_operator)
+    _di: np.ndarray = None
+
+    @property
+    def m(self) -> int:
+        return self.dvm.shape[1]
+
+    def dv_rows(self, rows) -> np.ndarray:
+        """Complex bus-voltage slopes of the given buses, (len(rows), m)."""
+        rows = np.asarray(rows, dtype=np.int64)
+        v = self.v[rows]
+        vm = np.abs(v)
+        return v[:, None] * (self.dvm[rows] / np.where(vm > 0, vm, 1.0)[:, None] + 1j * self.dva[rows])
+
+    @property
+    def dv(self) -> np.ndarray:
+        """(n, m) complex bus-voltage slopes (formed on request; small networks and tests)."""
+        return self.dv_rows(np.arange(len(self.v)))
+
+    @property
+    def di(self) -> np.ndarray:
+        """(nb, m) complex series-current slopes in the from-bus frame (formed on request)."""
+        if self._di is None:
+            B, direct = self._current_operator()
+            X = np.vstack([self.dva, self.dvm])
+            self._di = B @ X + direct.toarray()
+        return self._di
+
+    def _current_operator(self):
+        """Sparse complex map from [angle slopes; magnitude slopes] (2n) to the current slopes of
+        every branch in its from-bus frame, and the levers' direct part (sparse, nb x m)."""
+        return self._parts
+
+    def fold(self, k: int, tap_sum: np.ndarray) -> None:
+        """Sum the columns from ``k`` on by ``tap_sum`` (levers that move together)."""
+        def f(a):
+            return np.concatenate([a[:, :k], a[:, k:] @ tap_sum], axis=1)
+        B, direct = self._parts
+        direct = sp.hstack([direct[:, :k], direct[:, k:] @ sp.csr_matrix(tap_sum)]).tocsc()
+        self._parts = (B, direct)
+        self.dvm, self.dva, self.dq = f(self.dvm), f(self.dva), f(self.dq)
+        self._di = None
+
+    def loss_model(self):
+        """(R, d, const) with ``sum r |I + dI du|^2 = |d + R du|^2 + const`` exactly.
+
+        Small networks: R-only QR of the explicit weighted current slopes ``[M c]`` (no Q is
+        formed). Large ones (more than ``EXPLICIT_LIMIT`` entries in M): the Gram matrix
+        ``M^T M = X^T H X + ...`` from the sparse state-space Hessian ``H = B^T W B`` of the
+        losses and the (2n x m) real state slopes X, then a pivoted Cholesky factor; no
+        (branches x levers) array is formed.
+        """
+        m = self.m
+        w = np.sqrt(np.maximum(self.r, 0.0))
+        nb = len(w)
+        c = np.concatenate([w * self.i0.real, w * self.i0.imag])
+        if m == 0:
+            return np.zeros((0, 0)), np.zeros(0), float(c @ c)
+        if 2 * nb * (m + 1) <= EXPLICIT_LIMIT:
+            di = self.di
+            A = np.empty((2 * nb, m + 1))
+            A[:nb, :m] = w[:, None] * di.real
+            A[nb:, :m] = w[:, None] * di.imag
+            A[:, m] = c
+            Ra = scipy.linalg.qr(A, mode="r", overwrite_a=True, check_finite=False)[0]
+            Ra = np.vstack([Ra, np.zeros((max(0, m + 1 - Ra.shape[0]), m + 1))])
+            return Ra[:m, :m].copy(), Ra[:m, m].copy(), float(Ra[m, m] ** 2)
+        B, direct = self._parts
+        Wb = sp.diags(w) @ B
+        Br = sp.vstack([Wb.real, Wb.imag]).tocsr()                       # (2 nb, 2 n) real
+        Dr = sp.vstack([sp.diags(w) @ direct.real, sp.diags(w) @ direct.imag]).tocsc()
+        X = np.vstack([self.dva, self.dvm])
+        H = (Br.T @ Br).tocsr()
+        HX = H @ X
+        G = X.T @ HX
+        BD = (Br.T @ Dr)
+        if BD.nnz:
+            cross = X.T @ BD.toarray()
+            G += cross + cross.T + (Dr.T @ Dr).toarray()
+        g = X.T @ (Br.T @ c) + Dr.T @ c
+        G = 0.5 * (G + G.T)
+        return _factor_gram(G, np.asarray(g).ravel(), float(c @ c))
+
+
+def _factor_gram(G, g, cc):
+    """(R, d, const) from ``|c + M du|^2 = du' G du + 2 g' du + cc`` by a pivoted Cholesky
+    factor (LAPACK ?pstrf), so a rank-deficient G (two levers at one bus) is no obstacle."""
+    m = len(g)
+    scale = max(float(np.max(np.abs(np.diag(G)))), 1e-300)
+    u, piv, rank, info = scipy.linalg.lapack.dpstrf(G / scale, lower=0, tol=1e-13)
+    piv = piv - 1
+    rank = int(rank)
+    U = np.triu(u)[:rank] * np.sqrt(scale)
+    R = np.zeros((m, m))
+    R[:rank, piv] = U
+    gp = g[piv]
+    d = np.zeros(m)
+    if rank:
+        d[:rank] = scipy.linalg.solve_triangular(U[:, :rank], gp[:rank], trans="T", check_finite=False)
+    const = max(cc - float(d @ d), 0.0)
+    return R, d, const
 
 
 def _jacobian_at(c, v, kind):
@@ -77,6 +191,9 @@ def series_current_parts(c):
 def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Sensitivity:
     """Sensitivities at a solved point.
 
+    One sparse LU of the Jacobian and one solve with a right-hand side per lever column (real
+    arrays only); everything else is formed from those slopes on request.
+
     Parameters
     ----------
     flow : a converged FlowResult
@@ -101,26 +218,29 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
     na = len(pvpq)
 
     # direct change of the computed bus injection S = V conj(Y V) per lever, holding the state
-    ds_direct = np.zeros((n, m), complex)
-    ds_direct[shunt_buses, np.arange(ms)] += -1j * vm[shunt_buses] ** 2
+    # (sparse: a shunt touches its bus, a setpoint its bus's row of Y, a ratio its two ends)
     d_va, d_vm = bus_derivatives(y, v, pat.diag_pos, pat.rows, dload)
     dS_dVa = sp.csr_matrix((d_va, y.indices, y.indptr), shape=(n, n))
     dS_dVm = sp.csr_matrix((d_vm, y.indices, y.indptr), shape=(n, n))
-    if mv:
-        ds_direct[:, ms:ms + mv] = dS_dVm[:, vset_buses].toarray()
-    ys, r, k_f, k_t = series_current_parts(c)
-    if mt:
-        ds_direct[:, ms + mv:] = _ratio_injection_derivative(c, v, xfmr_branches)
+    blocks = [sp.csc_matrix((-1j * vm[shunt_buses] ** 2, (shunt_buses, np.arange(ms))), shape=(n, ms))]
+    blocks.append(dS_dVm[:, vset_buses].tocsc() if mv else sp.csc_matrix((n, 0), dtype=complex))
+    blocks.append(sp.csc_matrix(_ratio_injection_derivative(c, v, xfmr_branches)) if mt
+                  else sp.csc_matrix((n, 0), dtype=complex))
+    ds_direct = sp.hstack(blocks).tocsr()
 
-    rhs = np.vstack([ds_direct.real[pvpq], ds_direct.imag[pq]])
+    rhs = np.empty((na + len(pq), m), order="F")
+    if m:
+        rhs[:na] = ds_direct[pvpq].real.toarray()
+        rhs[na:] = ds_direct[pq].imag.toarray()
     dx = -lu.solve(rhs) if rhs.size else np.zeros((pat.size, m))
+    del rhs
 
     dva = np.zeros((n, m))
     dvm = np.zeros((n, m))
     dva[pvpq] = dx[:na]
     dvm[pq] = dx[na:]
+    del dx
     dvm[vset_buses, ms + np.arange(mv)] = 1.0
-    dv = v[:, None] * (dvm / np.where(vm > 0, vm, 1.0)[:, None] + 1j * dva)
 
     # generator reactive output Q = Im(S_calc) + Q_load(V)
     gen_buses = np.flatnonzero((kind != PQ) & c.alive)
@@ -129,32 +249,50 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
     # dS_dVm already holds the load derivative on its diagonal, so it gives dQ directly.
     # A setpoint column's direct effect is already in dvm (its unit entry at the bus), so only
     # the shunt and ratio columns add their direct part here.
-    direct = ds_direct[gen_buses].copy()
+    direct = ds_direct[gen_buses].toarray()
     direct[:, ms:ms + mv] = 0.0
-    ds_total = (dS_dVa[gen_buses] @ dva + dS_dVm[gen_buses] @ dvm) + direct
-    dq = ds_total.imag
+    dq = (dS_dVa[gen_buses] @ dva).imag + (dS_dVm[gen_buses] @ dvm).imag + direct.imag
 
-    # series currents of every branch
-    i0 = ys * (v[c.f] * k_f - v[c.t] * k_t)
-    di = ys[:, None] * (dv[c.f] * k_f[:, None] - dv[c.t] * k_t[:, None])
-    if mt:
-        dk_f, dk_t = _tap_factor_derivative(c, xfmr_branches)
-        cols = ms + mv + np.arange(mt)
-        di[xfmr_branches, cols] += ys[xfmr_branches] * (v[c.f[xfmr_branches]] * dk_f
-                                                        - v[c.t[xfmr_branches]] * dk_t)
-    # Express each current in the frame of its from-bus voltage (|I|, hence the losses, do not
-    # depend on the frame). In the slack's frame a large reactive current rotates with the bus
-    # angles, so a linear model of it mixes reactive into active current and misses the
-    # product of the two changes; in the local frame the parts stay close to P/|V| and Q/|V|,
-    # which move nearly linearly with shunt injections.
+    # series currents of every branch, in the frame of its from-bus voltage (|I|, hence the
+    # losses, do not depend on the frame). In the slack's frame a large reactive current
+    # rotates with the bus angles, so a linear model of it mixes reactive into active current
+    # and misses the product of the two changes; in the local frame the parts stay close to
+    # P/|V| and Q/|V|, which move nearly linearly with shunt injections.
+    ys, r, k_f, k_t = series_current_parts(c)
+    i_raw = ys * (v[c.f] * k_f - v[c.t] * k_t)
     vf = v[c.f]
     vmf = np.abs(vf)
     rot = np.where(vmf > 0, np.conj(vf) / np.where(vmf > 0, vmf, 1.0), 1.0)
-    dang_f = np.imag(dv[c.f] / np.where(vmf > 0, vf, 1.0)[:, None])
-    di = rot[:, None] * (di - 1j * i0[:, None] * dang_f)
-    i0 = rot * i0
-    return Sensitivity(vm0=vm, dvm=dvm, gen_buses=gen_buses, q0=q0, dq=dq, i0=i0, di=di, r=r,
-                       losses0=float(np.sum(r * np.abs(i0) ** 2)), dv=dv)
+    B, direct_i = _current_operator(c, v, vm, ys, k_f, k_t, rot, i_raw, xfmr_branches, ms + mv, m)
+    i0 = rot * i_raw
+    return Sensitivity(vm0=vm, dvm=dvm, dva=dva, gen_buses=gen_buses, q0=q0, dq=dq, i0=i0, r=r,
+                       losses0=float(np.sum(r * np.abs(i0) ** 2)), v=v, _parts=(B, direct_i))
+
+
+def _current_operator(c, v, vm, ys, k_f, k_t, rot, i_raw, xfmr_branches, first_tap, m):
+    """Sparse (nb x 2n) complex map from [d angle; d |V|] to each branch's series-current change in
+    its from-bus frame, ``rot (dI - j I dangle_f)``, and the ratio levers' direct part (nb x m).
+
+    ``dV = V (d|V| / |V| + j d angle)``; ``dI = ys (k_f dV_f - k_t dV_t)``."""
+    n, nb = c.n, len(c.f)
+    f, t = c.f, c.t
+    unit = v / np.where(vm > 0, vm, 1.0)
+    rows = np.arange(nb)
+    a_f = rot * (ys * k_f * 1j * v[f] - 1j * i_raw)
+    a_t = -rot * ys * k_t * 1j * v[t]
+    m_f = rot * ys * k_f * unit[f]
+    m_t = -rot * ys * k_t * unit[t]
+    B = sp.csr_matrix((np.concatenate([a_f, a_t, m_f, m_t]),
+                       (np.tile(rows, 4), np.concatenate([f, t, n + f, n + t]))), shape=(nb, 2 * n))
+    mt = len(xfmr_branches)
+    if mt:
+        dk_f, dk_t = _tap_factor_derivative(c, xfmr_branches)
+        br = xfmr_branches
+        val = rot[br] * ys[br] * (v[f[br]] * dk_f - v[t[br]] * dk_t)
+        direct = sp.csc_matrix((val, (br, first_tap + np.arange(mt))), shape=(nb, m))
+    else:
+        direct = sp.csc_matrix((nb, m), dtype=complex)
+    return B, direct
 
 
 def flow_magnitude_slopes(flow: FlowResult, sens: Sensitivity, branches: np.ndarray):
@@ -172,7 +310,7 @@ def flow_magnitude_slopes(flow: FlowResult, sens: Sensitivity, branches: np.ndar
     i_t = ytf[branches] * vf + ytt[branches] * vt
     s_f, s_t = vf * np.conj(i_f), vt * np.conj(i_t)
     use_from = np.abs(s_f) >= np.abs(s_t)
-    dvf, dvt = sens.dv[f], sens.dv[t]
+    dvf, dvt = sens.dv_rows(f), sens.dv_rows(t)
     di_f = yff[branches, None] * dvf + yft[branches, None] * dvt
     di_t = ytf[branches, None] * dvf + ytt[branches, None] * dvt
     ds_f = dvf * np.conj(i_f)[:, None] + vf[:, None] * np.conj(di_f)

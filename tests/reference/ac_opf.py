@@ -43,13 +43,15 @@ def injection_jacobian(Y, vm, va):
     return ds_dva.real, ds_dvm.real, ds_dva.imag, ds_dvm.imag
 
 
-def newton_pf(case: RawCase, vset=None, extra_shunt=None, tol=1e-12, max_iter=30):
+def newton_pf(case: RawCase, vset=None, extra_shunt=None, tol=1e-12, max_iter=30, start=None, Y=None):
     """Newton-Raphson load flow; PV buses hold ``vset`` whatever their reactive output.
 
+    ``start``: (vm, va) to start from (flat by default); ``Y``: the case's bus admittance
+    matrix when the caller already has it.
     Returns an OptimizeResult with vm, va (rad), p, q (pu injections), losses (pu,
     the sum of all active injections), iterations, success.
     """
-    Y = case.ybus(extra_shunt)
+    Y = case.ybus(extra_shunt) if Y is None else Y
     n = case.n
     vset = case.vset if vset is None else np.asarray(vset, float)
     slack = case.btype == SLACK
@@ -57,8 +59,8 @@ def newton_pf(case: RawCase, vset=None, extra_shunt=None, tol=1e-12, max_iter=30
     pq = ~(slack | pv)
     ang = np.flatnonzero(~slack)
     mag = np.flatnonzero(pq)
-    vm = np.where(pq, 1.0, vset)
-    va = np.zeros(n)
+    vm = np.where(pq, 1.0, vset) if start is None else np.where(pq, start[0], vset)
+    va = np.zeros(n) if start is None else np.array(start[1], float)
     p_sch = case.pg - case.pd
     q_sch = case.qg - case.qd
     ok = False
