@@ -204,8 +204,8 @@ def evaluate(pb: PlanProblem, st: Settings, warm: list | None = None, tables=Fal
                 pb.chord_flows = getattr(pb, "chord_flows", 0) + 1
             solved.append((fr, 1) if fr is not None else _solve_level(job))
     elif pool is not None:
-        # the symbolic caches (SuperLU objects) stay in this process: workers get bare arrays,
-        # and the flows they return are given back this process's compiled networks
+        # workers get the level's ordering but no factor objects; the flows they return are
+        # given back this process's compiled networks (and, the first time, the ordering)
         solved = list(pool.map(_solve_level, [_portable(j) for j in jobs]))
         for k, ((c, _, _), (fr, runs, sym)) in enumerate(zip(jobs, solved)):
             fr.compiled = c
