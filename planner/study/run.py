@@ -307,15 +307,19 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
         ctx = mp.get_context("spawn")
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 
-    with _signals_deferred(), _one_blas_thread():   # every worker is known before an interrupt can stop them
-        q = ctx.Queue()
-        pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
-        levers = [_levers(spec, alt, sites) for alt in alts]
-        # the largest problems first, so a long one does not start last (results keep file order)
-        first = sorted(range(len(alts)), key=lambda k: -_size(levers[k]))
-        futures = {pool.submit(_optimize_one, (cases, levers[k], limits, objective, options,
-                                               alts[k].name, merit)): k for k in first}
+    pool = q = None
     try:
+        # every worker is known before an interrupt can stop them: a signal that arrives while
+        # they start is delivered on leaving this block, inside the try, so the clean-up below
+        # stops them all (and waits for them) before this process lets go of the shared queue
+        with _signals_deferred(), _one_blas_thread():
+            q = ctx.Queue()
+            pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
+            levers = [_levers(spec, alt, sites) for alt in alts]
+            # the largest problems first, so a long one does not start last (results keep file order)
+            first = sorted(range(len(alts)), key=lambda k: -_size(levers[k]))
+            futures = {pool.submit(_optimize_one, (cases, levers[k], limits, objective, options,
+                                                   alts[k].name, merit)): k for k in first}
         results = [None] * len(alts)
         pending = set(futures)
 
@@ -336,13 +340,16 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
     except BaseException:
         # an interrupt (Ctrl-C) or a failed alternative: stop every worker now, not after minutes
         # of optimisation nobody will read (the executor has no public call for this)
-        for proc in list(getattr(pool, "_processes", {}).values()):
-            proc.terminate()
-        pool.shutdown(wait=True, cancel_futures=True)
+        if pool is not None:
+            for proc in list((getattr(pool, "_processes", None) or {}).values()):
+                proc.terminate()
+            pool.shutdown(wait=True, cancel_futures=True)
         raise
     finally:
-        pool.shutdown(wait=True)
-        q.close()
+        if pool is not None:
+            pool.shutdown(wait=True)
+        if q is not None:
+            q.close()
     return results
 
 
