@@ -16,6 +16,7 @@ import shutil
 import signal
 import stat
 import subprocess
+import time
 import sys
 from pathlib import Path
 
@@ -465,6 +466,50 @@ def test_interrupt_stops_cleanly_removes_partial_output_and_exits_130(tmp_path, 
     assert "Traceback" not in err
     assert err.strip().splitlines()[-1].startswith("interrupted")
     assert not out.exists() or [p.name for p in out.iterdir()] == []
+
+
+def _session_members(sid: int) -> list:
+    """Processes (other than zombies) of session ``sid``, from /proc."""
+    out = []
+    for d in Path("/proc").iterdir():
+        if d.name.isdigit():
+            try:
+                stat = (d / "stat").read_text()
+            except OSError:
+                continue
+            fields = stat[stat.rindex(")") + 2:].split()
+            if int(fields[3]) == sid and fields[0] != "Z":
+                out.append(int(d.name))
+    return out
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc to list the session's processes")
+def test_interrupt_while_workers_start_exits_130_and_leaves_no_process(tmp_path):
+    # Ctrl-C at a terminal reaches the whole process group; here it lands right after the line
+    # that says the workers are starting, before any worker has said anything
+    out = tmp_path / "reports"
+    proc = subprocess.Popen([sys.executable, "-m", "planner", "study", str(ROOT / "studies" / "wrenfold-2027.toml"),
+                             "--out", str(out), "--jobs", "2"], cwd=ROOT, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True, start_new_session=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+    seen = []
+    while not any("on 2 processes" in ln for ln in seen):
+        line = proc.stderr.readline()
+        assert line, "the study ended before it said anything: " + "".join(seen)
+        seen.append(line)
+    os.killpg(proc.pid, signal.SIGINT)
+    _, err = proc.communicate(timeout=60)
+    err = "".join(seen) + err
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    assert err.strip().splitlines()[-1].startswith("interrupted")
+    left = _session_members(proc.pid)
+    for _ in range(100):            # workers may take a moment to go after their parent
+        if not left:
+            break
+        time.sleep(0.1)
+        left = _session_members(proc.pid)
+    assert left == [], f"processes left behind: {left}"
 
 
 def test_plan_with_failing_base_case_says_so_without_inf(tmp_path):

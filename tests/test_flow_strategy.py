@@ -111,8 +111,9 @@ def test_overloaded_two_bus_reports_collapse_with_the_fraction_reached():
     # nose of the curve (discriminant of the quartic = 0) for the load 6 + j0.5 pu scaled by lam:
     # 1 - 2 X Q lam = 2 X |S| lam
     nose = 1.0 / (2 * X2 * Q2 + 2 * X2 * abs(complex(2 * P2, Q2)))
-    frac = float(res.message.split("reach only ")[1].split("%")[0]) / 100
+    frac = float(res.message.split("reached only ")[1].split("%")[0]) / 100
     assert nose - 0.01 < frac <= nose
+    assert res.message.startswith("no solution found:") and "loadability limit" in res.message
 
 
 def test_cli_exits_non_zero_on_a_suspect_solution_unless_accepted(tmp_path, capsys):
@@ -159,6 +160,55 @@ def test_heavier_meshed_grid_converges_from_flat_start_and_balances(flowcheck):
     assert res.success, res.message
     assert res.vm[res.compiled.alive].min() > 0.8
     flowcheck.check(res, flowcheck.from_network(net))
+
+
+def _low_voltage_single(base, single, bus):
+    """A low-voltage solution of the single case (limits off): plain Newton started with
+    ``bus`` at 0.2 pu lands on a solution with that bus near zero volts."""
+    vm, va = single.vm.copy(), single.va_deg.copy()
+    k = int(np.flatnonzero(single.compiled.bus_ids == bus)[0])
+    vm[k], va[k] = 0.2, va[k] - 30.0
+    net = base.copy()
+    net.buses["v_pu"], net.buses["angle_deg"] = vm, va
+    low = solve_flow(net, start="stored", enforce_q_limits=False, continuation=False,
+                     check_plausibility=False)
+    assert low.equations_solved and low.vm[k] < 0.1
+    return low
+
+
+def test_ring_started_on_low_voltage_solutions_reports_the_operable_one(bases):
+    """The low-voltage trap of a large ring (limits off), at 80 copies of IEEE 14 (1,120 buses).
+
+    IEEE 14 has, besides its operable solution, low-voltage ones with one load bus near zero
+    volts and a few hundred MW more losses (found here by Newton from a start with that bus at
+    0.2 pu). Three copies of the ring started at such solutions (the rest at the operable one)
+    make plain Newton converge to a solution of the ring that is mathematically valid and
+    inoperable, its extra losses carried to the slack by the ring ties. The tool must never call
+    it converged: without continuation it is SUSPECT; with it, the operable solution (every copy
+    equal to the single case's) is reported."""
+    base = bases["ieee14"]
+    single = solve_flow(base, enforce_q_limits=False)
+    copies = 80
+    slack_mw = float(single.generators.mw[single.compiled.kind[single.compiled.gen_bus] == 2].sum())
+    ring = ring_copies(base, copies, slack_mw=slack_mw, ties_per_link=2)
+    low = {bus: _low_voltage_single(base, single, bus) for bus in (14, 12)}
+    trapped = {5: 14, 30: 12, 55: 14}                 # copy -> its bus near zero volts
+    start = np.concatenate([low[trapped[k]].v if k in trapped else single.v for k in range(copies)])
+    ring.buses["v_pu"], ring.buses["angle_deg"] = np.abs(start), np.rad2deg(np.angle(start))
+
+    plain = solve_flow(ring, start="stored", enforce_q_limits=False, continuation=False, build_tables=False)
+    assert plain.equations_solved and plain.status == FlowStatus.SUSPECT and not plain.success
+    assert plain.vm.min() < 0.1 and "far below its band" in plain.message
+    n = len(base.buses)
+    for k, bus in trapped.items():             # Newton did land on an inoperable solution
+        assert plain.vm[k * n + bus - 1] < 0.1
+    assert plain.losses_mw > copies * single.losses_mw + 300.0
+
+    res = solve_flow(ring, start="stored", enforce_q_limits=False, build_tables=False)
+    assert res.status == FlowStatus.CONVERGED and res.success and res.strategy == "continuation"
+    assert np.abs(res.v - np.tile(single.v, copies)).max() < 1e-6
+    assert res.losses_mw == pytest.approx(copies * single.losses_mw, rel=1e-7)
+    assert "far below its band" in res.message             # says what it rejected
 
 
 # --- symbolic reuse -----------------------------------------------------------------------------

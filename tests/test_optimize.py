@@ -526,9 +526,8 @@ def test_paralleled_transformers_move_together_and_report_tap_positions():
 
 
 def test_levels_checked_in_worker_processes_give_the_serial_plan(f33):
-    # Options.jobs > 1: the AC checks of the levels of each proposal run in worker processes.
-    # Every decision equals the serial run's; figures agree to rounding (a worker's load flow
-    # orders its sparse matrix afresh, the serial run reuses the ordering: ~1e-12 relative)
+    # Options.jobs > 1: the AC checks of the levels of each proposal run in worker processes,
+    # which get (and send back) the load flow's ordering: the plan is exactly the serial one
     from planner.optimize.levers import Options
     levels = [LevelCase("peak", f33, 2000.0), LevelCase("light", scaled(f33, 0.4), 6760.0)]
     levers = Levers(sites=sites_at((14, 24, 30)))
@@ -536,9 +535,7 @@ def test_levels_checked_in_worker_processes_give_the_serial_plan(f33):
     serial = optimize_plan(levels, levers, lim, options=Options(jobs=1, bound=False))
     parallel = optimize_plan(levels, levers, lim, options=Options(jobs=2, bound=False))
     a, b = serial.to_dict(), parallel.to_dict()
-    for key in ("banks", "setpoints", "taps", "status", "stop_reason", "ac_flows", "milp_solves"):
-        assert a[key] == b[key], key
-    assert [e["accepted"] for e in a["iterations"]] == [e["accepted"] for e in b["iterations"]]
-    for n in ("peak", "light"):
-        assert b["losses_after_mw"][n] == pytest.approx(a["losses_after_mw"][n], rel=1e-9)
+    a.pop("seconds", None)
+    b.pop("seconds", None)
+    assert a == b
     assert serial.verified and len(serial.banks) >= 1

@@ -74,3 +74,24 @@ def output_errors(option: str, path):
     except OSError as exc:
         why = exc.strerror or str(exc)
         raise OutputError(f"cannot write: {why.lower()}", option=option, path=path) from None
+
+
+def jobs(text: str) -> int:
+    """Worker processes for ``--jobs``: a whole number 1-256.
+
+    >>> jobs("2")
+    2
+    """
+    try:
+        n = int(text)
+    except ValueError:
+        n = None
+    if n is None or not 1 <= n <= 256:
+        raise argparse.ArgumentTypeError(f"must be a whole number 1-256, got {text!r}")
+    return n
+
+
+def add_jobs(parser) -> None:
+    parser.add_argument("--jobs", type=jobs, metavar="N", help="worker processes: alternatives (or the load "
+                        "levels of a single one) run side by side; the plans are the same for any N "
+                        "(default: every core)")

@@ -18,12 +18,14 @@ def add_parser(sub):
                     "study's output folder, the parent of its report folder)")
     pl.add_argument("--level", help="load level to optimise (default: the heaviest)")
     pl.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors and warnings")
+    options.add_jobs(pl)
     pl.set_defaults(run=run)
     return pl
 
 
 def run(args) -> int:
-    return run_plan_file(args.study, json_path=args.json, quiet=args.quiet, level=args.level)
+    return run_plan_file(args.study, json_path=args.json, quiet=args.quiet, level=args.level,
+                         jobs=getattr(args, "jobs", None))
 
 
 def default_plan_path(spec) -> Path:
@@ -32,7 +34,7 @@ def default_plan_path(spec) -> Path:
     return Path(parent) / f"{spec.path.stem}.plan.json"
 
 
-def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
+def run_plan_file(path, json_path=None, quiet=False, level=None, jobs=None) -> int:
     """Read the study file, optimise one level with every lever it enables, write the plan JSON.
 
     Exit status: 0 when the plan is AC-verified with every limit met; 1 when it is not (limits
@@ -61,7 +63,7 @@ def run_plan_file(path, json_path=None, quiet=False, level=None) -> int:
     spec.alternatives = [AlternativeSpec(name="plan", description="every lever the study file enables")]
     progress = Progress(quiet)
     try:
-        plans = plan_alternatives(spec, progress=progress, jobs=1)
+        plans = plan_alternatives(spec, progress=progress, jobs=jobs)
     finally:
         progress.close()
     check_interrupted()       # a stop during the last solver call must not pass for a result

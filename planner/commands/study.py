@@ -14,12 +14,13 @@ def add_parser(sub):
     st.add_argument("--out", metavar="FOLDER", help="parent folder of the report (default: the study's "
                     "output key, else reports/ beside the study file)")
     st.add_argument("-q", "--quiet", action="store_true", help="no progress or summary: only errors and warnings")
+    options.add_jobs(st)
     st.set_defaults(run=run)
     return st
 
 
 def run(args) -> int:
-    return run_study_file(args.study, out_dir=args.out, quiet=args.quiet)
+    return run_study_file(args.study, out_dir=args.out, quiet=args.quiet, jobs=getattr(args, "jobs", None))
 
 
 def output_option(spec, out_dir) -> str:
@@ -29,7 +30,7 @@ def output_option(spec, out_dir) -> str:
     return f"{spec.path.name}: study.output" if spec.output else "default report folder"
 
 
-def run_study_file(path, out_dir=None, quiet=False) -> int:
+def run_study_file(path, out_dir=None, quiet=False, jobs=None) -> int:
     """Run the study, write the report folder atomically, say where it is.
 
     The report folder is checked before the study runs: it must be new, empty, or an earlier
@@ -50,7 +51,7 @@ def run_study_file(path, out_dir=None, quiet=False) -> int:
     warn_about_model(con, spec.network_path)
     progress = Progress(quiet, iterations=spec.max_iterations)
     try:
-        result = run_study(spec, progress=progress)
+        result = run_study(spec, progress=progress, jobs=jobs)
     finally:
         progress.close()
     check_interrupted()       # a stop during the last solver call must not pass for a result

@@ -18,7 +18,7 @@ Method
   quadratic model ``F(x + mu dx) ~ (1 - mu) F + mu^2 F(x + dx)`` through the full-step point),
   then halved until the mismatch falls. Three tiny steps in a row end the attempt as stalled.
 * Continuation: if Newton fails from the requested start, load and generation are scaled to
-  ``CONT_FIRST`` of the schedule, solved, and raised in steps (doubling after an easy step,
+  the first of ``CONT_FIRST_TRIES`` that solves, and raised in steps (doubling after an easy step,
   halving after a failed one), each step warm-started from a secant prediction of the last two
   solutions; reactive limits are switched at every step. It reaches the operable
   (high-voltage) solution whenever the path from light load does not fold.
@@ -61,8 +61,11 @@ GROWTH_BOUND = 1e2                # full step accepted unless the mismatch grows
 WINDOW = 5                        # ... of the last WINDOW iterates
 TINY_STEP = 0.05                  # a multiplier below this counts towards a stall
 STALL_STEPS = 3
-CONT_FIRST = 0.1                  # first fraction of the schedule solved by the continuation
-CONT_FLOOR = 0.01                 # ... and the fraction tried when that fails
+# fractions of the schedule the continuation tries to solve first, in this order, from a DC start.
+# Half the schedule first: on a large meshed grid (50,000 buses) a DC start at a tenth of the
+# schedule is far from its solution (the line charging, not the load, sets the voltages there)
+# and Newton fails from it, while half the schedule solves as easily as the full one.
+CONT_FIRST_TRIES = (0.5, 0.1, 0.01)
 CONT_STEP = 0.15                  # first step of the fraction
 CONT_MIN_STEP = 1e-3
 CONT_STEP_ITERS = 8               # Newton iterations allowed per continuation step
@@ -198,10 +201,11 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
                            f"({total} iterations in all); plain Newton: {first}")
         elif status == FlowStatus.SUSPECT:
             message += f"; continuation from light load found no other solution ({msg_c})"
+        elif status_c == FlowStatus.COLLAPSE:
+            # the conclusion first: no solution was found, and how far the load could go
+            status, message = FlowStatus.COLLAPSE, f"no solution found: {msg_c} (plain Newton: {message})"
         else:
             message += f"; continuation from light load: {msg_c}"
-            if status_c == FlowStatus.COLLAPSE:
-                status = FlowStatus.COLLAPSE
     elif status == FlowStatus.CONVERGED and strategy == "newton":
         message = f"converged in {iters} iterations"
     if st1.oscillating.size and status == FlowStatus.CONVERGED:
@@ -488,14 +492,17 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
     q_fixed = st.q_fixed
     diverged = FlowStatus.DIVERGED
 
-    def residual(vv):
-        mis = bus_mismatch(c, y, vv, q_fixed, scale)
-        return np.concatenate([mis.real[free], mis.imag[pq]])
+    s_sched = scale * c.s_gen + 1j * q_fixed     # as in bus_mismatch, with Y v kept for the Jacobian
+
+    def residual(vv, vmm):
+        ib = y @ vv
+        mis = vv * np.conj(ib) - s_sched + load_power(c, vmm, scale)
+        return np.concatenate([mis.real[free], mis.imag[pq]]), ib
 
     with np.errstate(all="raise", under="ignore"):
         try:
             vm, va = np.abs(v), np.angle(v)
-            F = residual(v)
+            F, ibus = residual(v, vm)
         except FloatingPointError:
             return v, iters, diverged, "the iteration diverged (numerical overflow)"
         recent: list[float] = []
@@ -519,7 +526,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             if iters >= max_iter:
                 return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
             try:
-                dx = -system.solve(v, load_derivative(c, vm, scale), F)
+                dx = -system.solve(v, load_derivative(c, vm, scale), F, ibus)
             except RuntimeError:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
@@ -540,14 +547,14 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 vm_new[pq] += alpha * dx[na:]
                 v_new = vm_new * np.exp(1j * va_new)
                 try:
-                    F_new = residual(v_new)
+                    F_new, ib_new = residual(v_new, vm_new)
                     m = float(np.sqrt(F_new @ F_new))
                 except FloatingPointError:
-                    F_new, m = None, np.inf
+                    F_new, ib_new, m = None, None, np.inf
                 positive = vm_new[pq].size == 0 or vm_new[pq].min() > 0.0
-                return v_new, vm_new, va_new, F_new, (m if positive else np.inf)
+                return v_new, vm_new, va_new, F_new, ib_new, (m if positive else np.inf)
 
-            v_new, vm_new, va_new, F_new, m1 = trial(1.0)
+            v_new, vm_new, va_new, F_new, ib_new, m1 = trial(1.0)
             alpha = 1.0
             if not (m1 <= GROWTH_BOUND * min(recent)):
                 # rejected: optimal multiplier from the full-step point, then halving
@@ -556,7 +563,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 else:
                     alpha = 0.5
                 for _ in range(LINE_SEARCH_STEPS):
-                    v_new, vm_new, va_new, F_new, m = trial(alpha)
+                    v_new, vm_new, va_new, F_new, ib_new, m = trial(alpha)
                     if m <= (1.0 - 1e-4 * alpha) * merit:
                         break
                     alpha *= 0.5
@@ -566,7 +573,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             tiny = tiny + 1 if alpha < TINY_STEP else 0
             if tiny >= STALL_STEPS:
                 return v, iters, diverged, "the iteration diverged (stalled: only tiny steps lower the mismatch)"
-            v, vm, va, F = v_new, vm_new, va_new, F_new
+            v, vm, va, F, ibus = v_new, vm_new, va_new, F_new, ib_new
 
 
 def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0) -> bool:
@@ -616,11 +623,12 @@ def _continuation(ctx: _Context, history):
 
     Returns (v, limit state, iterations, status, message, steps)."""
     c = ctx.c
-    v = _balanced_dc_start(c, CONT_FIRST)
+    tries = list(CONT_FIRST_TRIES)
+    v = _balanced_dc_start(c, tries[0])
     st = _LimitState.fresh(c)
     iters = 0
     lam, step = 0.0, CONT_STEP
-    target = CONT_FIRST
+    target = tries.pop(0)
     prev = None                    # (lam, v) of the solution before the current one
     steps = 0
     while True:
@@ -648,16 +656,16 @@ def _continuation(ctx: _Context, history):
             target = min(1.0, lam + step)
         else:
             if lam == 0.0:
-                if target > CONT_FLOOR:
-                    target = CONT_FLOOR
+                if tries:
+                    target = tries.pop(0)
                     continue
                 return v_new, st_new, iters, FlowStatus.DIVERGED, \
                     f"no solution even at {target:.0%} of the schedule ({message})", steps
             step *= 0.5
             if step < CONT_MIN_STEP:
                 return v, st, iters, FlowStatus.COLLAPSE, (
-                    f"solutions reach only {lam:.1%} of the scheduled load and generation "
-                    "(likely beyond the network's loadability)"), steps
+                    f"continuation from light load reached only {lam:.1%} of the scheduled load and "
+                    "generation; the load is likely beyond the network's loadability limit"), steps
             target = min(1.0, lam + step)
         if iters >= CONT_MAX_ITERS:
             return v, st, iters, FlowStatus.ITERATION_LIMIT, (

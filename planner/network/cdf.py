@@ -164,28 +164,51 @@ def _parse_section(records, fields, file, section):
     n = len(records)
     width = max(b for _, _, _, b, _ in fields)
     texts = [t for _, t in records]
-    raw = b"".join(t.encode("latin-1")[:width].ljust(width) for t in texts)
-    mat = np.frombuffer(raw, np.uint8).reshape(n, width) if n else np.zeros((0, width), np.uint8)
+    if n:
+        # a fixed-width unicode array (C-level copy, short lines padded with NUL): one byte per
+        # character, since the text was decoded as latin-1
+        mat = np.array(texts, dtype=f"<U{width}").view(np.uint32).reshape(n, width).astype(np.uint8)
+        lengths = np.fromiter(map(len, texts), np.int64, n)
+        mat[np.arange(width) >= lengths[:, None]] = _SPACE
+    else:
+        mat = np.zeros((0, width), np.uint8)
     out, bad = {}, np.zeros(n, bool)
     numeric = []
+    num_fields = []
     for key, label, a, b, kind in fields:
         if key in _NOT_READ:
             continue
         if kind == "str":
             out[key] = np.array([t[a - 1:b].strip() for t in texts], dtype=object)
             continue
-        sub = mat[:, a - 1:b].copy()
-        sub[(sub == _LOWER_D) | (sub == _UPPER_D)] = _E
-        nonblank = sub != _SPACE
-        blank = ~nonblank.any(axis=1)
-        flagged = ~_ALLOWED[sub].all(axis=1)
-        # a space between two non-blank characters would make two numbers of one field
-        first_nb = np.argmax(nonblank, axis=1)
-        last_nb = sub.shape[1] - 1 - np.argmax(nonblank[:, ::-1], axis=1)
-        flagged |= ~blank & (nonblank.sum(axis=1) != last_nb - first_nb + 1)
-        sub[blank | flagged, -1] = ord("0")
-        sub[blank | flagged, :-1] = _SPACE
-        numeric.append((key, kind, sub, flagged))
+        num_fields.append((key, kind, a - 1, b))
+    if num_fields:
+        # the checks of every numeric field at once: per field counts from running sums along
+        # the record of non-blank characters, characters other than digits, sign, point and
+        # exponent, and starts of runs of non-blank characters (more than one: a space between
+        # two non-blank characters would make two numbers of one field)
+        work = mat.copy()
+        work[(work == _LOWER_D) | (work == _UPPER_D)] = _E
+        nonblank = work != _SPACE
+        lo = np.array([a for _, _, a, _ in num_fields])
+        hi = np.array([b for _, _, _, b in num_fields])
+        run_start = nonblank.copy()
+        run_start[:, 1:] &= ~nonblank[:, :-1]
+
+        def per_field(x):
+            cs = np.zeros((n, width + 1), np.int32)
+            np.cumsum(x, axis=1, out=cs[:, 1:])
+            return cs[:, hi] - cs[:, lo]
+        blank_all = per_field(nonblank) == 0
+        flagged_all = (per_field(~_ALLOWED[work]) > 0) | (
+            per_field(run_start) + (nonblank[:, lo] & ~run_start[:, lo]) > 1)
+        for k, (key, kind, a, b) in enumerate(num_fields):
+            sub = work[:, a:b].copy()
+            flagged = flagged_all[:, k].copy()
+            fill = blank_all[:, k] | flagged
+            sub[fill, -1] = ord("0")
+            sub[fill, :-1] = _SPACE
+            numeric.append((key, kind, sub, flagged))
     values = _block_floats([sub for _, _, sub, _ in numeric])
     for k, (key, kind, sub, flagged) in enumerate(numeric):
         vals = values[:, k].copy() if values is not None else None
@@ -263,21 +286,19 @@ def _first_row(mask):
 def _split_lines(data: bytes):
     # latin-1 maps every byte to one character, so the fixed columns stay byte columns and no
     # byte sequence can fail to decode; CR, LF and CRLF all end a line.
-    return data.decode("latin-1").replace("\r\n", "\n").replace("\r", "\n").split("\n")
+    text = data.decode("latin-1")
+    if "\r" in text:
+        text = text.replace("\r\n", "\n").replace("\r", "\n")
+    return text.split("\n")
 
 
 def _section(lines, start, file, name):
     """Records of the section whose header is at index ``start``: (line number, text) pairs up
     to the ``-999`` terminator; blank lines are skipped."""
-    records = []
-    i = start + 1
-    while i < len(lines):
-        text = lines[i]
-        if text.strip().startswith("-999"):
-            break
-        if text.strip():
-            records.append((i + 1, text))
-        i += 1
+    # one pass of C-level string methods finds the terminator; then the records in one slice
+    i = next((j for j in range(start + 1, len(lines)) if lines[j].lstrip().startswith("-999")), None)
+    if i is not None:
+        records = [(j + 1, t) for j, t in enumerate(lines[start + 1:i], start + 1) if t and not t.isspace()]
     else:
         raise InputError(f"{name} section that starts at line {start + 1} has no closing -999 line",
                          file=file, line=len(lines), field=f"{name} section")
@@ -415,7 +436,8 @@ def read_cdf(path) -> Network:
 
 
 def _prefixed(prefix: str, numbers: np.ndarray) -> np.ndarray:
-    return np.char.add(prefix, numbers.astype(str)).astype(object) if len(numbers) else np.array([], object)
+    return np.array([f"{prefix}{x}" for x in numbers.tolist()], dtype=object) if len(numbers) else \
+        np.array([], object)
 
 
 def _branch_ids_vectorized(a: np.ndarray, b: np.ndarray, circuit: np.ndarray) -> np.ndarray:
@@ -426,7 +448,7 @@ def _branch_ids_vectorized(a: np.ndarray, b: np.ndarray, circuit: np.ndarray) ->
     lo, hi = np.minimum(a, b), np.maximum(a, b)
     key = pd.MultiIndex.from_arrays([lo, hi])
     single = ~key.duplicated(keep=False)
-    ids = np.char.add(np.char.add(a.astype(str), "-"), b.astype(str)).astype(object)
+    ids = np.array([f"{x}-{y}" for x, y in zip(a.tolist(), b.tolist())], dtype=object)
     if not single.all():
         multi = np.flatnonzero(~single)
         ids[multi] = _branch_ids([(int(a[k]), int(b[k]), int(circuit[k])) for k in multi],

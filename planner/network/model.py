@@ -15,6 +15,7 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass, field
 
+import numpy as np
 import pandas as pd
 
 # Column name -> dtype, in the order tables are written. Readers fill missing optional
@@ -138,6 +139,8 @@ def make_table(kind: str, records) -> pd.DataFrame:
     (0.0, True)
     """
     cols = TABLES[kind]
+    if _is_standard(records, cols, DEFAULTS[kind]):     # a table made before: only copied
+        return records.copy()
     df = pd.DataFrame(records) if not isinstance(records, pd.DataFrame) else records.copy()
     if df.empty and not len(df.columns):
         return empty_table(kind)
@@ -150,7 +153,20 @@ def make_table(kind: str, records) -> pd.DataFrame:
     if missing:
         raise KeyError(f"{kind}: missing column {missing[0]!r}")
     df = df[list(cols)]
-    return df.astype(cols).reset_index(drop=True)
+    # only the columns not yet of their dtype (a table made before passes through cheaply)
+    need = {c: t for c, t in cols.items() if df[c].dtype != np.dtype(t)}
+    if need:
+        df = df.astype(need)
+    return df.reset_index(drop=True)
+
+
+def _is_standard(df, cols: dict, defaults: dict) -> bool:
+    """True for a DataFrame that already has exactly the standard columns, dtypes and a plain
+    0..n-1 index, with no missing value in a column that has a default."""
+    return (isinstance(df, pd.DataFrame) and list(df.columns) == list(cols)
+            and isinstance(df.index, pd.RangeIndex) and df.index.start == 0 and df.index.step == 1
+            and all(df[c].dtype == np.dtype(t) for c, t in cols.items())
+            and not any(df[c].isna().any() for c in defaults))
 
 
 @dataclass

@@ -86,10 +86,57 @@ def _read_text(path: Path) -> str:
         raise InputError(f"not UTF-8 text (byte 0x{data[exc.start]:02x})", file=path, line=line) from None
 
 
+def _read_csv_columns(text: str):
+    """Fast path of :func:`_read_table`: (header, line numbers, columns of stripped text cells) by
+    pandas' compiled parser, or None when the file needs the careful row-by-row reader (quotes,
+    NUL bytes, rows of another length, blank rows, no header): that reader then reads it, or
+    raises the error naming the line."""
+    if not text or '"' in text or "\x00" in text:
+        return None
+    if "\r" in text:
+        text = text.replace("\r\n", "\n")
+        if "\r" in text:                          # old Mac line ends
+            return None
+    # every line must hold as many cells as the header: count the commas of each line at once
+    raw = np.frombuffer(text.encode("utf-8"), np.uint8)
+    ends = np.flatnonzero(raw == 10)
+    n_lines = len(ends) + (0 if text.endswith("\n") else 1)
+    commas = np.bincount(np.searchsorted(ends, np.flatnonzero(raw == 44)), minlength=n_lines)
+    if n_lines == 0 or len(commas) != n_lines or not np.all(commas == commas[0]):
+        return None
+    try:
+        df = pd.read_csv(io.StringIO(text), header=None, dtype=str, na_filter=False, keep_default_na=False,
+                         skip_blank_lines=False, quoting=csv.QUOTE_NONE, engine="c")
+    except (ValueError, pd.errors.ParserError):
+        return None
+    if len(df) != n_lines or df.shape[1] != commas[0] + 1:
+        return None
+    columns = [_stripped(df[k].to_numpy(object)) for k in df.columns]
+    if not columns or not all(set(map(type, col)) <= {str} for col in columns):
+        return None
+    header = [col[0] for col in columns]
+    if not all(header):                          # a blank first line or an empty column name
+        return None
+    body = [col[1:] for col in columns]
+    filled = np.zeros(len(df) - 1, bool)
+    for col in body:
+        filled |= np.fromiter(map(bool, col), bool, len(col))
+    if not filled.all():                         # a blank row: the careful reader skips it
+        return None
+    for k, name in enumerate(header):
+        if name in header[:k]:
+            return None
+    return header, list(range(2, len(df) + 1)), body
+
+
 def _read_csv(path: Path):
     """Header and data rows of a CSV file: rows are (data row number, line number, cells).
     Rows with nothing in them are skipped."""
     text = _read_text(path)
+    return _read_csv_text(path, text)
+
+
+def _read_csv_text(path: Path, text: str):
     reader = csv.reader(io.StringIO(text, newline=""), strict=True)
     header, rows = None, []
     try:
@@ -158,12 +205,32 @@ class CsvPlaces:
 
 
 def _read_table(kind: str, path: Path, bus_kv: dict | None, base_mva: float) -> pd.DataFrame:
-    header, rows = _read_csv(path)
+    text = _read_text(path)
+    fast = _read_csv_columns(text)
+    if fast is not None:
+        header, lines, columns = fast
+        return table_from_cells(kind, header, _ColumnRows(columns), bus_kv, base_mva, CsvPlaces(path, lines),
+                                columns=columns)
+    header, rows = _read_csv_text(path, text)
     places = CsvPlaces(path, [lno for _, lno, _ in rows])
     return table_from_cells(kind, header, [cells for _, _, cells in rows], bus_kv, base_mva, places)
 
 
-def table_from_cells(kind: str, header, rows, bus_kv: dict | None, base_mva: float, places) -> pd.DataFrame:
+class _ColumnRows:
+    """Rows of a table held as columns, for the few rows re-read one by one."""
+
+    def __init__(self, columns):
+        self.columns = columns
+
+    def __len__(self):
+        return len(self.columns[0]) if self.columns else 0
+
+    def __getitem__(self, i):
+        return [col[i] for col in self.columns]
+
+
+def table_from_cells(kind: str, header, rows, bus_kv: dict | None, base_mva: float, places,
+                     columns=None) -> pd.DataFrame:
     """The standard table of ``kind`` from a header (column names) and data rows (lists of cells).
 
     Shared by every reader of the tabular layout (CSV files, workbook sheets), so unit columns,
@@ -173,6 +240,7 @@ def table_from_cells(kind: str, header, rows, bus_kv: dict | None, base_mva: flo
     ``column(k)`` and ``cell(i, k, name)`` return the ``InputError`` location of the whole table, of
     header column ``k`` and of the value in data row ``i``, column ``k`` (both 0-based).
     ``bus_kv`` (bus -> base kV) and ``base_mva`` are needed only for ohm and microsiemens columns.
+    ``columns`` (optional): the same cells as one sequence per header column, text only.
     """
     cols, units, defaults = TABLES[kind], UNIT_COLUMNS[kind], DEFAULTS[kind]
     for k, name in enumerate(header):
@@ -189,8 +257,8 @@ def table_from_cells(kind: str, header, rows, bus_kv: dict | None, base_mva: flo
             hint = f" (or {alt[0]!r})" if alt else ""
             raise InputError(f"missing required column {c!r}{hint}", **places.table())
 
-    if all(isinstance(c, str) for cells in rows for c in cells):
-        columns = _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, places)
+    if columns is not None or all(set(map(type, col)) <= {str} for col in zip(*rows)):   # all text
+        columns = _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, places, columns)
         df = pd.DataFrame(columns, columns=[c for c in cols if c in given])
     else:   # a workbook's typed cells: row by row
         records = [_row_values(i, cells, header, cols, units, defaults, bus_kv, base_mva, places)
@@ -244,19 +312,33 @@ def _plain_number_chars(cells) -> np.ndarray:
     return np.bincount(row_of_byte[bad_byte], minlength=len(cells)) == 0
 
 
-def _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, places) -> dict:
+_EDGE_SPACE = re.compile(r"(?:^|\x00)\s|\s(?:\x00|$)")
+
+
+def _stripped(cells) -> list:
+    """The cells without surrounding white space; one regular-expression scan of the joined
+    column finds whether any cell has some (a CSV file's cells are stripped already)."""
+    if _EDGE_SPACE.search("\x00".join(cells)) is None:
+        return list(cells)
+    return [c.strip() for c in cells]
+
+
+def _convert_columns(header, rows, cols, units, defaults, bus_kv, base_mva, places, columns=None) -> dict:
     """Whole columns of text cells converted at once (pandas / numpy). Cells a column conversion
     cannot take (or would take too generously: ``inf``, ``nan``, ``1_0``) mark their row; marked
     rows are re-read by :func:`_row_values` in file order, which raises the same one-line error
     (file, row, line, column) as a row-by-row reader, or supplies the row's values."""
     n = len(rows)
-    cells_by_col = list(zip(*rows)) if n else [() for _ in header]
+    if columns is not None:
+        cells_by_col = columns
+    else:
+        cells_by_col = list(zip(*rows)) if n else [() for _ in header]
     out: dict[str, np.ndarray] = {}
     bad = np.zeros(n, bool)
     per_unit = []
     for j, name in enumerate(header):
         target, how = units.get(name, (name, None))
-        raw = pd.Series(cells_by_col[j], dtype=object).str.strip() if n else pd.Series([], dtype=object)
+        raw = pd.Series(_stripped(cells_by_col[j]), dtype=object)
         blank = (raw == "").to_numpy(bool)
         flagged = blank & (target not in defaults)
         dtype = "float64" if how else cols[name]

@@ -2,9 +2,10 @@
 and the merit that decides acceptance; the voltage margins the linear model learns from them.
 
 The load flows of the levels of one proposal are independent: with ``Options.jobs`` > 1 they
-run in a pool of worker processes (created once per plan). Decisions are the serial run's;
-figures agree to about 1e-12 relative (a worker orders its sparse Jacobian afresh, the serial
-path reuses the load flow's cached ordering).
+run in a pool of worker processes (created once per plan). The results are exactly the serial
+run's: a worker gets the level's Jacobian ordering (the symbolic cache without its factors), and
+the first ordering a worker chooses comes back to this process, so every load flow factorises
+in the order the serial run uses.
 """
 from __future__ import annotations
 
@@ -34,17 +35,33 @@ def _solve_level(job):
         fr = solve_flow(compiled=c, start="flat", build_tables=tables)
         runs += 1
     if portable:
-        fr.compiled = dataclasses.replace(fr.compiled, _cache={})   # back across the process line
+        # back across the process line: the ordering (plain arrays) but no factor objects
+        fr.compiled = dataclasses.replace(fr.compiled, _cache={})
+        return fr, runs, _ordering(c)
     return fr, runs
 
 
+def _ordering(c):
+    """The symbolic cache of a compiled network's load flows without its factor objects (or None)."""
+    cache = c._cache.get("shared", {}).get("flow_symbolic")
+    sym = getattr(cache, "sym", None)
+    if sym is None or getattr(sym, "order", None) is None:
+        return None
+    out = copy.copy(cache)
+    out.sym = copy.copy(sym)
+    out.sym._systems = {}
+    out.extra = {}
+    return out
+
+
 def _portable(job):
-    """A job without the caches that cannot cross to a worker process."""
+    """A job without the caches that cannot cross to a worker process (the ordering goes along)."""
     c, start, tables = job
     if not isinstance(start, str):
         start = copy.copy(start)
         start.compiled = dataclasses.replace(start.compiled, _cache={})
-    return dataclasses.replace(c, _cache={}), start, tables, True
+    sym = _ordering(c)
+    return dataclasses.replace(c, _cache={"shared": {"flow_symbolic": sym}} if sym else {}), start, tables, True
 
 
 def level_pool(pb: PlanProblem):
@@ -187,11 +204,15 @@ def evaluate(pb: PlanProblem, st: Settings, warm: list | None = None, tables=Fal
                 pb.chord_flows = getattr(pb, "chord_flows", 0) + 1
             solved.append((fr, 1) if fr is not None else _solve_level(job))
     elif pool is not None:
-        # the symbolic caches (SuperLU objects) stay in this process: workers get bare arrays,
-        # and the flows they return are given back this process's compiled networks
+        # workers get the level's ordering but no factor objects; the flows they return are
+        # given back this process's compiled networks (and, the first time, the ordering)
         solved = list(pool.map(_solve_level, [_portable(j) for j in jobs]))
-        for (c, _, _), (fr, _) in zip(jobs, solved):
+        for k, ((c, _, _), (fr, runs, sym)) in enumerate(zip(jobs, solved)):
             fr.compiled = c
+            shared = c._cache.setdefault("shared", {})
+            if sym is not None and _ordering(c) is None:
+                shared["flow_symbolic"] = sym      # the ordering the serial run would have chosen
+            solved[k] = (fr, runs)
     else:
         solved = [_solve_level(j) for j in jobs]
     for l, lc in enumerate(pb.levels):

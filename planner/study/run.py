@@ -194,9 +194,17 @@ def _without_solver_caches(plan):
     return plan
 
 
+def resolve_jobs(jobs: int | None) -> int:
+    """Worker processes for ``jobs``: None means every core (:func:`default_jobs`).
+
+    >>> resolve_jobs(3), resolve_jobs(0) >= 1, resolve_jobs(None) == default_jobs()
+    (3, True, True)
+    """
+    return default_jobs() if jobs is None or int(jobs) < 1 else int(jobs)
+
+
 def default_jobs() -> int:
     """Every core the process may use (a value for ``jobs``)."""
-    import os
     try:
         return max(1, len(os.sched_getaffinity(0)))
     except AttributeError:      # not on every platform
@@ -207,10 +215,11 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
     """Optimise and AC-verify every alternative of a study; returns ``[(AlternativeSpec, PlanResult)]``
     in study-file order. Builds no report data (``planner plan`` uses this).
 
-    ``jobs`` worker processes run alternatives side by side (default 1: one after another in this
-    process; :func:`default_jobs` gives every core). The plans are the same as a serial run's when
-    no optimiser step stops at its time limit, and come back in study-file order. (Not yet the
-    default: an interrupt that lands while workers start can leave a worker's traceback behind.) ``progress`` is called with short text lines.
+    ``jobs`` worker processes (default: every core, :func:`default_jobs`; 1 = everything in this
+    process) run the alternatives side by side; with a single alternative they run the AC checks
+    of its load levels instead. The plans are byte-for-byte those of a serial run (no optimiser
+    decision depends on which process runs it) and come back in study-file order. ``progress``
+    is called with short text lines.
     """
     say = progress or (lambda text: None)
     if net is None:
@@ -222,11 +231,14 @@ def plan_alternatives(spec: StudySpec, net=None, progress=None, jobs: int | None
     sites = candidate_sites(net, spec)
     limits = Limits(v_min=spec.v_min_pu, v_max=spec.v_max_pu, per_bus=spec.bus_limits,
                     ratings=spec.ratings, q_limits=spec.q_limits)
-    options = Options(max_iterations=spec.max_iterations, mip_gap=spec.mip_gap, time_limit_s=spec.step_seconds,
-                      merit_rel_tolerance=spec.rel_tolerance)
     alts = list(spec.alternatives)
+    workers = resolve_jobs(jobs)
+    jobs = min(workers, max(1, len(alts)))
+    options = Options(max_iterations=spec.max_iterations, mip_gap=spec.mip_gap, time_limit_s=spec.step_seconds,
+                      merit_rel_tolerance=spec.rel_tolerance,
+                      # one alternative: its load levels' AC checks take the cores instead
+                      jobs=min(workers, len(cases)) if len(alts) == 1 else 1)
     merit = (spec.objective, spec.currency, float(np.sum(weights)))
-    jobs = min(max(1, int(jobs if jobs is not None else 1)), max(1, len(alts)))
     say(f"{len(cases)} load levels: " + ", ".join(lc.name for lc in cases)
         + f"; {len(alts)} alternatives" + (f" on {jobs} processes" if jobs > 1 else ""))
     if jobs == 1:
@@ -262,6 +274,35 @@ class _signals_deferred:
         return False
 
 
+def _size(levers: Levers) -> int:
+    """A rough measure of an alternative's work, for the order workers take them in."""
+    return len(levers.sites) * (2 if levers.gen_v_range or levers.taps else 1) \
+        + (10 if levers.gen_v_range else 0) + (10 if levers.taps else 0)
+
+
+_BLAS_VARS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+class _one_blas_thread:
+    """One BLAS thread in the worker processes started inside (their environment is set before
+    they import numpy); this process's environment is given back afterwards. The plans also cap
+    BLAS threads themselves (threadpoolctl), so a fork server started earlier is covered too."""
+
+    def __enter__(self):
+        self.saved = {k: os.environ.get(k) for k in _BLAS_VARS}
+        for k in _BLAS_VARS:
+            os.environ.setdefault(k, "1")
+        return self
+
+    def __exit__(self, *exc):
+        for k, v in self.saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+        return False
+
+
 def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, say, merit) -> list:
     import multiprocessing as mp
     import queue as _queue
@@ -277,13 +318,20 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
         ctx = mp.get_context("spawn")
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 
-    with _signals_deferred():       # every worker is known before an interrupt can stop them
-        q = ctx.Queue()
-        pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
-        futures = {pool.submit(_optimize_one, (cases, _levers(spec, alt, sites), limits, objective, options,
-                                               alt.name, merit, _security(spec, alt, cases))): k
-                   for k, alt in enumerate(alts)}
+    pool = q = None
     try:
+        # every worker is known before an interrupt can stop them: a signal that arrives while
+        # they start is delivered on leaving this block, inside the try, so the clean-up below
+        # stops them all (and waits for them) before this process lets go of the shared queue
+        with _signals_deferred(), _one_blas_thread():
+            q = ctx.Queue()
+            pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
+            levers = [_levers(spec, alt, sites) for alt in alts]
+            # the largest problems first, so a long one does not start last (results keep file order)
+            first = sorted(range(len(alts)), key=lambda k: -_size(levers[k]))
+            futures = {pool.submit(_optimize_one, (cases, levers[k], limits, objective, options,
+                                                   alts[k].name, merit, _security(spec, alts[k], cases))): k
+                       for k in first}
         results = [None] * len(alts)
         pending = set(futures)
 
@@ -304,13 +352,16 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
     except BaseException:
         # an interrupt (Ctrl-C) or a failed alternative: stop every worker now, not after minutes
         # of optimisation nobody will read (the executor has no public call for this)
-        for proc in list(getattr(pool, "_processes", {}).values()):
-            proc.terminate()
-        pool.shutdown(wait=True, cancel_futures=True)
+        if pool is not None:
+            for proc in list((getattr(pool, "_processes", None) or {}).values()):
+                proc.terminate()
+            pool.shutdown(wait=True, cancel_futures=True)
         raise
     finally:
-        pool.shutdown(wait=True)
-        q.close()
+        if pool is not None:
+            pool.shutdown(wait=True)
+        if q is not None:
+            q.close()
     return results
 
 
@@ -338,7 +389,7 @@ def run_study(spec: StudySpec, progress=None, jobs: int | None = None) -> StudyR
 
     The network is read once; the base case is solved once per level (with result tables) and
     checked against the same per-bus bands the optimiser used. ``jobs`` as in
-    :func:`plan_alternatives`.
+    :func:`plan_alternatives` (default: every core).
 
     >>> from planner.study.spec import read_study
     >>> spec = read_study("tests/data/studies/feeder33_plan.toml")
@@ -392,7 +443,7 @@ def run_study(spec: StudySpec, progress=None, jobs: int | None = None) -> StudyR
                        network=net, base=base, alternatives=alts, inputs=_input_files(spec),
                        tool_version=__version__, created=_dt.datetime.now().strftime("%Y-%m-%d %H:%M"),
                        seconds=time.perf_counter() - t0,
-                       jobs=min(max(1, int(jobs if jobs is not None else 1)), max(1, len(plans))))
+                       jobs=min(resolve_jobs(jobs), max(1, len(plans))))
     if spec.proof is not None and spec.proof.any:      # N-1, hourly and bank checks (planner/proof)
         from ..proof.run import prove_study
         result.proof = prove_study(spec, net, cases, plans, spec.proof, progress=progress)
