@@ -278,8 +278,8 @@ def post_outage_slopes(pb, rf, sol, branches_out, alive) -> np.ndarray:
         dS_dVm = sp.csr_matrix((d_vm, y.indices, y.indptr), shape=(n, n))
         ds[:, ms:ms + mv] = dS_dVm[:, vset].toarray() * held[None, :]
     if mt:
-        from ..optimize.sensitivity import _ratio_injection_derivative
-        ds[:, ms + mv:] = _ratio_injection_derivative(c, v, taps)
+        from ..optimize.sensitivity import ratio_injection_derivative
+        ds[:, ms + mv:] = ratio_injection_derivative(c, v, taps)
         ds[:, ms + mv + np.flatnonzero(np.isin(taps, branches_out))] = 0.0
     dvm = np.zeros((n, ds.shape[1]))
     if pat.size:

@@ -224,7 +224,7 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -> Se
     dS_dVm = sp.csr_matrix((d_vm, y.indices, y.indptr), shape=(n, n))
     blocks = [sp.csc_matrix((-1j * vm[shunt_buses] ** 2, (shunt_buses, np.arange(ms))), shape=(n, ms))]
     blocks.append(dS_dVm[:, vset_buses].tocsc() if mv else sp.csc_matrix((n, 0), dtype=complex))
-    blocks.append(sp.csc_matrix(_ratio_injection_derivative(c, v, xfmr_branches)) if mt
+    blocks.append(sp.csc_matrix(ratio_injection_derivative(c, v, xfmr_branches)) if mt
                   else sp.csc_matrix((n, 0), dtype=complex))
     ds_direct = sp.hstack(blocks).tocsr()
 
@@ -330,7 +330,7 @@ def _tap_factor_derivative(c, br):
     return np.where(tf, dk, 0.0), np.where(tf, 0.0, dk)
 
 
-def _ratio_injection_derivative(c, v, br):
+def ratio_injection_derivative(c, v, br):
     """(n, len(br)) change of bus injections per unit change of each lever ratio."""
     n = c.n
     out = np.zeros((n, len(br)), complex)
@@ -385,7 +385,7 @@ def loss_gradient(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches) -
     if mv:
         ds[:, ms:ms + mv] = dS_dVm_l[:, vset_buses].toarray()
     if len(xfmr_branches):
-        ds[:, ms + mv:] = _ratio_injection_derivative(c, v, xfmr_branches)
+        ds[:, ms + mv:] = ratio_injection_derivative(c, v, xfmr_branches)
     dg = np.vstack([ds.real[pvpq], ds.imag[pq]])
     direct = ds.real.sum(axis=0)
     if mv:
