@@ -14,7 +14,9 @@ The public API, flat (everything else is internal and may change):
 
 plus the types :class:`Network`, :class:`FlowResult` / :class:`FlowStatus`, :class:`PlanResult` /
 :class:`PlanStatus`, the optimiser's inputs (:class:`LevelCase`, :class:`Levers`, :class:`BankSite`,
-:class:`Limits`, :class:`Objective`, :class:`Options`), :class:`StudySpec` and the errors :class:`PlannerError`, :class:`InputError`, :class:`NetworkError`,
+:class:`Limits`, :class:`Objective`, :class:`Options`), N-1 security as a constraint
+(:class:`SecurityRequest`, passed as ``plan(..., security=...)``, and :class:`SecurityResult` /
+:class:`SecurityStatus` in the plan's ``security`` field), :class:`StudySpec` and the errors :class:`PlannerError`, :class:`InputError`, :class:`NetworkError`,
 :class:`OutputError`.
 
 Names are imported on first use, so ``import planner`` stays light and the optimiser (Pyomo)
@@ -53,6 +55,9 @@ _EXPORTS = {
     "Limits": ("planner.optimize", "Limits"),
     "Objective": ("planner.optimize", "Objective"),
     "Options": ("planner.optimize", "Options"),
+    "SecurityRequest": ("planner.contingency.secure", "SecurityRequest"),
+    "SecurityResult": ("planner.contingency.secure", "SecurityResult"),
+    "SecurityStatus": ("planner.contingency.secure", "SecurityStatus"),
     "StudySpec": ("planner.study.spec", "StudySpec"),
     "StudyResult": ("planner.study.result", "StudyResult"),
     "StudyStatus": ("planner.study.result", "StudyStatus"),
@@ -89,5 +94,6 @@ if TYPE_CHECKING:        # for type checkers and editors; never run
     from .flow.result import FlowStatus  # noqa: F401
     from .optimize import (BankSite, LevelCase, Levers, Limits, Objective, Options, PlanResult,  # noqa: F401
                            PlanStatus, plan)
+    from .contingency.secure import SecurityRequest, SecurityResult, SecurityStatus  # noqa: F401
     from .study.run import run_study  # noqa: F401
     from .study.spec import StudySpec, read_study  # noqa: F401

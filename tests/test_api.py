@@ -56,6 +56,8 @@ def test_public_names_resolve_to_the_library_functions():
     from planner.optimize import plan
     assert planner.plan is plan and planner.PlanStatus.VERIFIED.name == "VERIFIED"
     assert issubclass(planner.OutputError, planner.PlannerError)
+    from planner.contingency.secure import SecurityRequest, SecurityStatus
+    assert planner.SecurityRequest is SecurityRequest and planner.SecurityStatus is SecurityStatus
     with pytest.raises(AttributeError, match="no attribute 'nonesuch'"):
         planner.nonesuch      # noqa: B018
 
