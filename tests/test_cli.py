@@ -582,3 +582,31 @@ def test_read_only_output_folder_found_before_the_work(tmp_path, capsys, monkeyp
     line = one_error_line(capsys.readouterr().err)
     assert line.startswith("error: --out ") and "read-only file system" in line
     assert not (tmp_path / "r").exists()
+
+
+def test_study_scheduler_option_overrides_the_sweep_section(tmp_path, monkeypatch):
+    # --scheduler sends the N-1 sweep where it says, whatever the study's [sweep] section holds
+    import planner.sweep.engine as engine
+    seen = []
+    real = engine.sweep_client
+
+    def recording(where, *args, **kwargs):
+        seen.append(where)
+        return real("serial", *args, **kwargs)
+    monkeypatch.setattr(engine, "sweep_client", recording)
+    out = tmp_path / "reports"
+    assert main(["study", str(STUDIES / "ieee30_secure.toml"), "--out", str(out), "--jobs", "1",
+                 "--scheduler", "tcp://127.0.0.1:1", "-q"]) == 0
+    assert seen == ["tcp://127.0.0.1:1"]
+    assert (out / "ieee30-secure" / "n1_outcomes.csv").is_file()
+
+
+def test_study_scheduler_option_needs_dask_for_an_address(tmp_path, monkeypatch, capsys):
+    import planner.sweep.engine as engine
+    monkeypatch.setattr(engine, "dask_available", lambda: False)
+    with pytest.raises(SystemExit) as stop:
+        main(["study", str(STUDIES / "ieee30_secure.toml"), "--out", str(tmp_path), "--scheduler",
+              "tcp://10.0.0.5:8786"])
+    assert stop.value.code == 2
+    err = capsys.readouterr().err
+    assert "--scheduler" in err and "needs Dask" in err and "distributed" in err

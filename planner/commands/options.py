@@ -91,6 +91,24 @@ def jobs(text: str) -> int:
     return n
 
 
+def scheduler(text: str) -> str:
+    """Where ``--scheduler`` sends the N-1 and hourly sweeps: ``serial`` (this process), ``local``
+    (this machine's cores) or a Dask scheduler address, which needs the ``distributed`` extra.
+
+    >>> scheduler("serial"), scheduler(" tcp://10.0.0.5:8786 ")
+    ('serial', 'tcp://10.0.0.5:8786')
+    """
+    where = text.strip()
+    if not where:
+        raise argparse.ArgumentTypeError("must be serial, local or a Dask scheduler address, got ''")
+    if where not in ("serial", "local"):
+        from ..sweep.engine import dask_available
+        if not dask_available():
+            raise argparse.ArgumentTypeError(f"a scheduler address ({where}) needs Dask: "
+                                             "pip install -e '.[distributed]'")
+    return where
+
+
 def add_jobs(parser) -> None:
     parser.add_argument("--jobs", type=jobs, metavar="N", help="worker processes: alternatives (or the load "
                         "levels of a single one) run side by side; the plans are the same for any N "

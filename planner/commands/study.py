@@ -15,12 +15,17 @@ def add_parser(sub):
                     "output key, else reports/ beside the study file)")
     st.add_argument("-q", "--quiet", action="store_true", help="no progress or summary: only errors and warnings")
     options.add_jobs(st)
+    st.add_argument("--scheduler", type=options.scheduler, metavar="ADDRESS",
+                    help="where the N-1 and hourly sweeps run: a Dask scheduler address (tcp://HOST:8786), "
+                    "local (this machine's cores) or serial (this process); overrides the study's "
+                    "[sweep] scheduler; every choice gives the same results")
     st.set_defaults(run=run)
     return st
 
 
 def run(args) -> int:
-    return run_study_file(args.study, out_dir=args.out, quiet=args.quiet, jobs=getattr(args, "jobs", None))
+    return run_study_file(args.study, out_dir=args.out, quiet=args.quiet, jobs=getattr(args, "jobs", None),
+                          scheduler=getattr(args, "scheduler", None))
 
 
 def output_option(spec, out_dir) -> str:
@@ -30,12 +35,13 @@ def output_option(spec, out_dir) -> str:
     return f"{spec.path.name}: study.output" if spec.output else "default report folder"
 
 
-def run_study_file(path, out_dir=None, quiet=False, jobs=None) -> int:
+def run_study_file(path, out_dir=None, quiet=False, jobs=None, scheduler=None) -> int:
     """Run the study, write the report folder atomically, say where it is.
 
     The report folder is checked before the study runs: it must be new, empty, or an earlier
     report (it holds the report marker file); anything else is refused, naming ``--out`` or the
-    study's ``output`` key.
+    study's ``output`` key. ``scheduler`` (``--scheduler``) replaces the study's ``[sweep]
+    scheduler`` for the N-1 and hourly sweeps.
     """
     from ..atomic import check_folder_target, to_json
     from ..report.atomic import MARKER, write_report_folder
@@ -45,6 +51,8 @@ def run_study_file(path, out_dir=None, quiet=False, jobs=None) -> int:
 
     con = Console(quiet)
     spec = read_study(path)
+    if scheduler is not None and spec.proof is not None:
+        spec.proof.scheduler = scheduler
     option = output_option(spec, out_dir)
     target = report_folder(spec, out_dir)
     check_folder_target(target, option, marker=MARKER)
