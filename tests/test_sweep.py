@@ -61,7 +61,21 @@ def test_study_n1_runs_through_the_sweep_scheduler_with_identical_results(net30,
     assert p.banks
     proof = ProofSpec(outages=OutageSpec(elements=("line", "transformer")), scheduler="serial", chunk_size=7)
     serial_data, serial = prove_study(None, net30, cases, [(AlternativeSpec("A"), p)], proof)
-    dask_data, dask_run = prove_study(None, net30, cases, [(AlternativeSpec("A"), p)], proof, client=cluster)
+
+    class Recorder:                 # the command line's progress: text lines and bar steps
+        def __init__(self):
+            self.lines, self.steps = [], []
+
+        def __call__(self, text):
+            self.lines.append(text)
+
+        def step(self, done, total):
+            self.steps.append((done, total))
+    seen = Recorder()
+    dask_data, dask_run = prove_study(None, net30, cases, [(AlternativeSpec("A"), p)], proof, client=cluster,
+                                      progress=seen)
+    # the bar moves with every finished chunk of outages: 41 outages in chunks of 7, four sweeps
+    assert seen.steps.count((6, 6)) == 4 and len(seen.steps) == 4 * 6
     for name in ("n1_outcomes.csv", "n1_violations.csv"):
         pd.testing.assert_frame_equal(serial[name], dask_run[name])
     assert serial_data == dask_data
@@ -119,6 +133,24 @@ def test_progress_bar_only_on_terminal():
     pipe = io.StringIO()
     TerminalProgress(pipe)(1, 2)
     assert pipe.getvalue() == ""
+
+
+def test_study_progress_bar_shows_the_rate():
+    # the command line's bar (rich, the progress extra) shows count, rate and time left
+    pytest.importorskip("rich")
+    import time as _time
+    from planner.commands.console import Progress
+    p = Progress(stream=io.StringIO(), bar=True)
+    try:
+        for i in range(1, 5):
+            p.step(i, 10)
+            _time.sleep(0.02)
+        task = p._bar.tasks[0]
+        rate = [str(c.render(task)) for c in p._bar.columns if type(c).__name__ == "RateColumn"]
+        assert task.completed == 4 and task.total == 10
+        assert len(rate) == 1 and rate[0].endswith("/s") and float(rate[0][:-2].replace(",", "")) > 0
+    finally:
+        p.close()
 
 
 def test_chunks_and_serial_order():

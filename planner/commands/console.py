@@ -137,7 +137,7 @@ class Progress:
                 pass
             else:
                 self._bar = _Bar(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
-                                 TextColumn("elapsed"), TimeElapsedColumn(), TextColumn("left"),
+                                 _rate_column(), TextColumn("elapsed"), TimeElapsedColumn(), TextColumn("left"),
                                  TimeRemainingColumn(), console=_RichConsole(file=self.stream),
                                  transient=True)
                 self._task = self._bar.add_task("starting", total=None)
@@ -188,6 +188,17 @@ class Progress:
                 pass
             self._bar = None
         self._closed = True
+
+
+def _rate_column():
+    """A rich column with the bar's rate (steps a second), blank until rich has measured one."""
+    from rich.progress import ProgressColumn
+    from rich.text import Text
+
+    class RateColumn(ProgressColumn):
+        def render(self, task):
+            return Text(f"{task.speed:,.1f}/s" if task.speed else "")
+    return RateColumn()
 
 
 _ALTERNATIVE = re.compile(r"^alternative (\d+)/(\d+)")

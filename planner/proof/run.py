@@ -110,6 +110,8 @@ def _prove(spec, net, cases, plans, proof, progress, client):
         kw = dict(band=o.band, bus_bands=o.bus_bands, ratings=o.ratings, screen=o.screen)
         if client is not None:        # chunks of outages on the cluster (serial: in this process)
             kw.update(client=client, chunk_size=proof.chunk_size)
+            if step:                  # the bar counts finished chunks of outages
+                kw.update(progress=lambda d, t: step(d, t))
         base_res = {n: verify_n1(level_net[n], outs, **kw) for n in levels}
         out = {"band": list(o.band), "levels": levels, "outages": len(outs), "min_kv": o.min_kv,
                "elements": list(o.elements), "cases": {}}
