@@ -573,6 +573,7 @@ DERIVE_PROFILE = ("hour,duration_h,network,area_1\n0,2,0.50,0.2\n2,1,0.45,0.2\n3
                   "6,1,1.00,0.2\n7,1,0.90,0.2\n8,3,0.55,0.2\n11,1,0.92,0.2\n")
 DERIVE = ('[study]\ntitle = "derived"\nnetwork = "{net}"\n[limits]\nv_min_pu = 0.90\n'
           '[objective]\nkind = "losses"\n[solver]\nmax_iterations = 3\n'
+          '[sweep]\nscheduler = "serial"\n'      # in this process; cluster runs are compared in test_sweep
           '[banks]\ncandidates = [18]\nunit_mvar = 0.15\nmax_units = 4\n'
           '[profile]\nfile = "p.csv"\nderive_levels = 2\n{extra}')
 
