@@ -137,7 +137,6 @@ def test_progress_bar_only_on_terminal():
 
 def test_study_progress_bar_shows_the_rate():
     # the command line's bar (rich, the progress extra) shows count, rate and time left
-    pytest.importorskip("rich")
     import time as _time
     from planner.commands.console import Progress
     p = Progress(stream=io.StringIO(), bar=True)
