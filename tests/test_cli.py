@@ -443,28 +443,40 @@ def test_closed_pipe_ends_quietly_with_the_usual_status():
     assert r.stderr == ""
 
 
-@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
-def test_interrupt_stops_cleanly_removes_partial_output_and_exits_130(tmp_path, sig):
-    # the demo study runs for minutes: the interrupt lands in the middle of the optimisation
-    out = tmp_path / "reports"
+def _demo_study_until(out, text, *args, **popen):
+    """Start the demo study writing under ``out``; return it once a progress line holds ``text``,
+    with the lines seen so far."""
     proc = subprocess.Popen([sys.executable, "-m", "planner", "study", str(ROOT / "studies" / "wrenfold-2027.toml"),
-                             "--out", str(out)], cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                             "--out", str(out), *args], cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             text=True,
                             # as at a terminal: a test runner started in the background inherits
                             # an ignored SIGINT, which Python would keep
-                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
-    # wait until the optimisation is under way (its first progress line), however busy the machine
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL), **popen)
     seen = []
-    while not any("alternative" in ln for ln in seen):
+    while not any(text in ln for ln in seen):
         line = proc.stderr.readline()
         assert line, "the study ended before it said anything: " + "".join(seen)
         seen.append(line)
-    proc.send_signal(sig)
+    return proc, seen
+
+
+def _interrupted(proc, seen):
+    """The interrupted study ends with 130, one "interrupted" line and no traceback."""
     _, err = proc.communicate(timeout=60)
     err = "".join(seen) + err
     assert proc.returncode == 130, err
     assert "Traceback" not in err
     assert err.strip().splitlines()[-1].startswith("interrupted")
+
+
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
+def test_interrupt_stops_cleanly_removes_partial_output_and_exits_130(tmp_path, sig):
+    # the demo study runs for minutes: the interrupt lands in the middle of the optimisation
+    out = tmp_path / "reports"
+    # wait until the optimisation is under way (its first progress line), however busy the machine
+    proc, seen = _demo_study_until(out, "alternative")
+    proc.send_signal(sig)
+    _interrupted(proc, seen)
     assert not out.exists() or [p.name for p in out.iterdir()] == []
 
 
@@ -488,21 +500,9 @@ def test_interrupt_while_workers_start_exits_130_and_leaves_no_process(tmp_path)
     # Ctrl-C at a terminal reaches the whole process group; here it lands right after the line
     # that says the workers are starting, before any worker has said anything
     out = tmp_path / "reports"
-    proc = subprocess.Popen([sys.executable, "-m", "planner", "study", str(ROOT / "studies" / "wrenfold-2027.toml"),
-                             "--out", str(out), "--jobs", "2"], cwd=ROOT, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, start_new_session=True,
-                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
-    seen = []
-    while not any("on 2 processes" in ln for ln in seen):
-        line = proc.stderr.readline()
-        assert line, "the study ended before it said anything: " + "".join(seen)
-        seen.append(line)
+    proc, seen = _demo_study_until(out, "on 2 processes", "--jobs", "2", start_new_session=True)
     os.killpg(proc.pid, signal.SIGINT)
-    _, err = proc.communicate(timeout=60)
-    err = "".join(seen) + err
-    assert proc.returncode == 130, err
-    assert "Traceback" not in err
-    assert err.strip().splitlines()[-1].startswith("interrupted")
+    _interrupted(proc, seen)
     left = _session_members(proc.pid)
     for _ in range(100):            # workers may take a moment to go after their parent
         if not left:
