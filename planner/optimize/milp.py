@@ -98,14 +98,6 @@ class StepSpec:
     seeds: list = field(default_factory=list)
 
 
-def _lin(coefs, terms, rel_tol=1e-9):
-    """quicksum of coef*term, dropping coefficients far below the row's largest (they only
-    hurt the solver's numerics)."""
-    coefs = np.asarray(coefs, float)
-    tol = rel_tol * (np.abs(coefs).max() if coefs.size else 0.0)
-    return pyo.quicksum(float(c) * t for c, t in zip(coefs, terms) if abs(c) > tol)
-
-
 def objective_scale(spec: "StepSpec") -> float:
     """Cost of the present point's losses: the model's objective is divided by it, so HiGHS
     sees numbers near one whatever the currency or the size of the network."""
@@ -114,35 +106,79 @@ def objective_scale(spec: "StepSpec") -> float:
 
 
 def build_model(spec: StepSpec):
-    """A Pyomo model of one trust-region step over all load levels."""
+    """A Pyomo model of one trust-region step over all load levels, built from the spec's arrays.
+
+    Every dense row (loss square terms, voltage / reactive / loading / extra limit rows) is one
+    flat linear expression over one variable per lever column (see :mod:`.rows`), and a limit
+    side that no change inside the step can reach is left out.
+    """
     _load()
+    from .rows import Columns, add_limit_rows, box_reach, linear
+
     m = pyo.ConcreteModel(name="loss_step")
-    S = range(len(spec.unit_pu))
-    E = range(len(spec.exist_step_pu))
-    G = range(len(spec.v_lo))
-    T = range(len(spec.tap_step))
-    L = range(len(spec.levels))
-    nmax = spec.max_units
+    nS, nL = len(spec.unit_pu), len(spec.levels)
+    S, E, G, T, L = range(nS), range(len(spec.exist_step_pu)), range(len(spec.v_lo)), range(len(spec.tap_step)), range(nL)
+    nmax = np.asarray(spec.max_units, int)
+    cur = np.array([lev.cur_units for lev in spec.levels], float).reshape(nL, nS)
+    radius = np.asarray(spec.unit_radius_of, float)
+    tr_lo, tr_hi = np.maximum(cur - radius, 0.0), np.minimum(cur + radius, nmax)   # (L, S) units
+    fixed_ok = np.asarray(spec.allow_fixed, bool)
+    # At a single level a switched unit does what a fixed unit does, costs no less and carries
+    # a larger tie-break, so no optimum uses one: switched units are left out there (exact).
+    dominated = (nL == 1) & fixed_ok & (np.asarray(spec.sw_mvar_cost) >= 0) & (np.asarray(spec.sw_site_cost) >= 0)
+    sw_ok = np.asarray(spec.allow_switched, bool) & ~dominated
+    # the units in service at level l: nf alone where switched units are out, k alone where fixed
+    # units are, else a variable u[l, s] = nf + k; the unit trust region is that variable's bounds
+    only_nf = ~sw_ok
+    only_k = sw_ok & ~fixed_ok
+    both = sw_ok & fixed_ok
+
+    def nf_bounds(_, s):
+        if not fixed_ok[s]:
+            return (0, 0)
+        if only_nf[s]:
+            return _ordered((tr_lo[:, s].max(), tr_hi[:, s].min()))
+        return (0, int(nmax[s]))
+
+    def k_bounds(_, l, s):
+        if not sw_ok[s]:
+            return (0, 0)
+        if only_k[s]:
+            return _ordered((tr_lo[l, s], tr_hi[l, s]))
+        return (0, int(nmax[s]))
+
     m.z = pyo.Var(S, within=pyo.Binary)
-    m.zs = pyo.Var(S, within=pyo.Binary)
+    m.zs = pyo.Var(S, within=pyo.Binary, bounds=lambda _, s: (0, 1 if sw_ok[s] else 0))
     m.nf = pyo.Var(S, domain=lambda _, s: pyo.NonNegativeReals if spec.continuous[s] else pyo.NonNegativeIntegers,
-                   bounds=lambda _, s: (0, int(nmax[s]) if spec.allow_fixed[s] else 0))
-    m.ns = pyo.Var(S, within=pyo.NonNegativeIntegers,
-                   bounds=lambda _, s: (0, int(nmax[s]) if spec.allow_switched[s] else 0))
-    m.k = pyo.Var(L, S, within=pyo.NonNegativeIntegers, bounds=lambda _, l, s: (0, int(nmax[s])))
-    m.site_cap = pyo.Constraint(S, rule=lambda m, s: m.nf[s] + m.ns[s] <= int(nmax[s]) * m.z[s])
-    m.sw_cap = pyo.Constraint(S, rule=lambda m, s: m.ns[s] <= int(nmax[s]) * m.zs[s])
-    m.steps_cap = pyo.Constraint(L, S, rule=lambda m, l, s: m.k[l, s] <= m.ns[s])
+                   bounds=nf_bounds)
+    m.ns = pyo.Var(S, within=pyo.NonNegativeIntegers, bounds=lambda _, s: (0, int(nmax[s]) if sw_ok[s] else 0))
+    m.k = pyo.Var(L, S, within=pyo.NonNegativeIntegers, bounds=k_bounds)
+    both_idx = [(l, s) for l in L for s in np.flatnonzero(both).tolist()]
+    m.u = pyo.Var(both_idx, domain=lambda _, l, s: pyo.NonNegativeReals if spec.continuous[s] else pyo.NonNegativeIntegers,
+                  bounds=lambda _, l, s: _ordered((tr_lo[l, s], tr_hi[l, s])))
+    m.u_def = pyo.Constraint(both_idx, rule=lambda m, l, s: (0.0, linear([1.0, -1.0, -1.0], [m.u[l, s], m.nf[s], m.k[l, s]]), 0.0))
+
+    def unit_var(l, s):
+        return m.u[l, s] if both[s] else (m.k[l, s] if only_k[s] else m.nf[s])
+
+    m.site_cap = pyo.Constraint(S, rule=lambda m, s: (None, linear(
+        [1.0, 1.0, -float(nmax[s])], [m.nf[s], m.ns[s], m.z[s]]), 0.0))
+    sw_sites = np.flatnonzero(sw_ok).tolist()
+    m.sw_cap = pyo.Constraint(sw_sites, rule=lambda m, s: (None, linear([1.0, -float(nmax[s])], [m.ns[s], m.zs[s]]), 0.0))
+    m.steps_cap = pyo.Constraint([(l, s) for l in L for s in sw_sites],
+                                 rule=lambda m, l, s: (None, linear([1.0, -1.0], [m.k[l, s], m.ns[s]]), 0.0))
     new = [s for s in S if not spec.existing_sites[s]]
     if spec.max_new_sites is not None and len(new) > spec.max_new_sites:
-        m.sites_cap = pyo.Constraint(expr=pyo.quicksum(m.z[s] for s in new) <= int(spec.max_new_sites))
-    mvar = {s: spec.unit_pu[s] * spec.base_mva for s in S}
-    capital = pyo.quicksum(spec.site_cost[s] * m.z[s] + spec.sw_site_cost[s] * m.zs[s]
-                           + spec.mvar_cost[s] * mvar[s] * (m.nf[s] + m.ns[s])
-                           + spec.sw_mvar_cost[s] * mvar[s] * m.ns[s] for s in S)
-    m.capital = pyo.Expression(expr=capital)
-    if spec.budget is not None and len(S):
-        m.budget_cap = pyo.Constraint(expr=m.capital <= float(spec.budget))
+        m.sites_cap = pyo.Constraint(expr=(None, linear([1.0] * len(new), [m.z[s] for s in new]),
+                                           float(int(spec.max_new_sites))))
+    mvar = np.asarray(spec.unit_pu, float) * spec.base_mva
+    cap_coef = ([float(c) for c in spec.site_cost] + [float(c) for c in spec.sw_site_cost]
+                + (np.asarray(spec.mvar_cost) * mvar).tolist()
+                + ((np.asarray(spec.mvar_cost) + np.asarray(spec.sw_mvar_cost)) * mvar).tolist())
+    cap_vars = [m.z[s] for s in S] + [m.zs[s] for s in S] + [m.nf[s] for s in S] + [m.ns[s] for s in S]
+    m.capital = pyo.Expression(expr=linear(cap_coef, cap_vars))
+    if spec.budget is not None and nS:
+        m.budget_cap = pyo.Constraint(expr=(None, linear(cap_coef, cap_vars), float(spec.budget)))
 
     # setpoints: one variable per level, or shared
     lv = [0] if spec.common_setpoints else list(L)
@@ -168,53 +204,100 @@ def build_model(spec: StepSpec):
 
     scale = objective_scale(spec)
     root = np.sqrt(spec.base_mva)   # square terms in units whose squares are MW
-    obj_terms = [spec.capital_weight / scale * m.capital]
-    tie = []
+    obj_coef, obj_vars, obj_const = [], [], 0.0
+    offset = 0.0      # the breaches no decision changes (see rows.add_limit_rows)
+    obj_coef += [spec.capital_weight / scale * c for c in cap_coef]
+    obj_vars += cap_vars
     m.levels = pyo.Block(L)
+    # at most this many bank sites can change at once: the new ones the site limit allows and
+    # those with units now (which may go to none)
     for l in L:
         lev = spec.levels[l]
         b = m.levels[l]
         vl = 0 if spec.common_setpoints else l
-        du = ([spec.unit_pu[s] * (m.nf[s] + m.k[l, s] - float(lev.cur_units[s])) for s in S]
-              + [spec.exist_step_pu[e] * (m.e[l, e] - int(lev.cur_exist[e])) for e in E]
-              + [m.v[vl, g] - float(lev.v_now[g]) for g in G]
-              + [(spec.tap_step[t] if spec.tap_step[t] > 0 else 1.0) * m.d[l, t] for t in T])
-        # trust region on bank units at each site
-        b.unit_tr = pyo.ConstraintList()
-        for s in S:
-            b.unit_tr.add(m.nf[s] + m.k[l, s] - float(lev.cur_units[s]) <= spec.unit_radius_of[s])
-            b.unit_tr.add(m.nf[s] + m.k[l, s] - float(lev.cur_units[s]) >= -spec.unit_radius_of[s])
         lo_du, hi_du = _du_ranges(spec, lev, l)
-        # loss model: tangent cuts of each square term
+        moving = int(np.count_nonzero((cur[l] > 0) | np.asarray(spec.existing_sites, bool)))
+        k_sites = None if spec.max_new_sites is None else int(spec.max_new_sites) + moving
+        cols = Columns(
+            [unit_var(l, s) for s in S] + [m.e[l, e] for e in E] + [m.v[vl, g] for g in G] + [m.d[l, t] for t in T],
+            np.concatenate([spec.unit_pu, spec.exist_step_pu, np.ones(len(G)),
+                            np.where(spec.tap_step > 0, spec.tap_step, 1.0)]),
+            np.concatenate([spec.unit_pu * cur[l], spec.exist_step_pu * np.asarray(lev.cur_exist, float),
+                            np.asarray(lev.v_now, float), np.zeros(len(T))]),
+            lo_du, hi_du, np.arange(len(lo_du)) < nS, k_sites)
+        # loss model: s_k = root (d_k + R_k du), each square under-estimated by its tangent cuts
         K = range(len(lev.d))
         b.s = pyo.Var(K)
         b.w = pyo.Var(K, within=pyo.NonNegativeReals)
-        b.s_def = pyo.Constraint(K, rule=lambda _, k: b.s[k] == root * float(lev.d[k]) + _lin(root * lev.R[k], du))
+        Rr = root * np.asarray(lev.R, float).reshape(len(lev.d), -1)
+        s_lo, s_hi = box_reach(Rr, lo_du, hi_du)
+        s_lo, s_hi = s_lo + root * lev.d, s_hi + root * lev.d
+        # the dropped slopes move each square by at most 2 |s| e + e^2: keep that below 1e-7 of
+        # the level's losses in all (far inside the MILP gap and the cut-refinement tolerance)
+        loss_now = spec.base_mva * (float(lev.d @ lev.d) + lev.const)
+        s_big = np.maximum(np.abs(s_lo), np.abs(s_hi))
+        e_tol = 1e-7 * max(loss_now, 1e-12) / max(len(lev.d), 1) / (2.0 * (s_big.max() if len(K) else 0.0) + 1.0)
+        const, terms, _ = cols.terms(Rr, tol=e_tol)
+        b.s_def = pyo.Constraint(K, rule=lambda _, k: (
+            float(root * lev.d[k] + const[k]), linear([1.0] + [-c for c in terms[k][0]], [b.s[k]] + terms[k][1]),
+            float(root * lev.d[k] + const[k])))
         b.cuts = pyo.ConstraintList()
+        count = _cut_counts(spec, s_hi - s_lo, loss_now)
         for k in K:
-            span = root * (np.abs(lev.R[k]) @ np.maximum(np.abs(lo_du), np.abs(hi_du)))
-            lo, hi = root * lev.d[k] - span, root * lev.d[k] + span
-            pts = np.unique(np.concatenate([np.linspace(lo, hi, spec.tangent_points), [root * lev.d[k], 0.0]]))
-            for p in pts:
-                b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
+            pts = np.linspace(s_lo[k], s_hi[k], count[k]) if s_hi[k] > s_lo[k] else np.array([s_lo[k]])
+            pts = np.unique(np.concatenate([pts, [root * lev.d[k]]]))
+            for p in pts[pts != 0.0]:     # the cut at 0 is w >= 0, the variable's own bound
+                b.cuts.add((None, linear([2.0 * p, -1.0], [b.s[k], b.w[k]]), p * p))
         for seed in spec.seeds:
             for k, p in enumerate(root * (lev.d + lev.R @ seed[l])):
-                b.cuts.add(b.w[k] >= 2.0 * p * b.s[k] - p * p)
-        b.loss = pyo.Expression(expr=pyo.quicksum(b.w[k] for k in K) + spec.base_mva * float(lev.const))  # MW
+                if p != 0.0:
+                    b.cuts.add((None, linear([2.0 * p, -1.0], [b.s[k], b.w[k]]), p * p))
+        b.loss = pyo.Expression(expr=linear([1.0] * len(K), [b.w[k] for k in K], spec.base_mva * float(lev.const)))  # MW
         # voltage, reactive and loading rows, each with a penalised slack
-        viol = (_limit_rows(b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, du)
-                + _limit_rows(b, "q", lev.q0, lev.dq, lev.q_lo, lev.q_hi, du)
-                + _limit_rows(b, "s", lev.s0, lev.ds, None, lev.s_hi, du))
+        breach = (add_limit_rows(pyo, b, "v", lev.v0, lev.dv, lev.v_lo, lev.v_hi, cols)
+                  + add_limit_rows(pyo, b, "q", lev.q0, lev.dq, lev.q_lo, lev.q_hi, cols)
+                  + add_limit_rows(pyo, b, "s", lev.s0, lev.ds, None, lev.s_hi, cols))
         for j, (x0, slopes, lo, hi) in enumerate(lev.extra_rows or ()):
-            viol = viol + _limit_rows(b, f"extra{j}", x0, slopes, lo, hi, du)
-        obj_terms.append(lev.weight / scale * b.loss + spec.penalty / scale * viol)
-        tie.append(pyo.quicksum(m.k[l, s] for s in S))
-    obj_terms.append(spec.tie_break * (pyo.quicksum(m.nf[s] + 2 * m.ns[s] for s in S) + pyo.quicksum(tie)))
-    m.objective = pyo.Objective(expr=pyo.quicksum(obj_terms), sense=pyo.minimize)
+            breach += add_limit_rows(pyo, b, f"extra{j}", x0, slopes, lo, hi, cols)
+        offset += spec.penalty / scale * breach
+        obj_coef += [lev.weight / scale] * len(K)
+        obj_vars += [b.w[k] for k in K]
+        obj_const += lev.weight / scale * spec.base_mva * float(lev.const)
+        for comp in b.component_objects(pyo.Var, descend_into=False):
+            if "_slack_" in comp.local_name:
+                obj_coef += [spec.penalty / scale] * len(comp)
+                obj_vars += list(comp.values())
+        obj_coef += [spec.tie_break] * nS
+        obj_vars += [m.k[l, s] for s in S]
+    obj_coef += [spec.tie_break] * nS + [2.0 * spec.tie_break] * nS
+    obj_vars += [m.nf[s] for s in S] + [m.ns[s] for s in S]
+    m.objective = pyo.Objective(expr=linear(obj_coef, obj_vars, obj_const), sense=pyo.minimize)
+    # objective value = the solver's objective + this constant (solve_model adds it back)
+    m.objective_offset = float(offset)
     return m
 
 
-def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
+def _cut_counts(spec: StepSpec, width: np.ndarray, loss_mw: float) -> np.ndarray:
+    """Tangent points per square term, evenly spaced over the term's range ``width``.
+
+    Between tangent points ``h`` apart a square is under-estimated by at most ``h^2 / 4``. The
+    spacing keeps the sum of those errors within a quarter of the tolerance at which
+    :func:`solve_step` stops refining the cuts, so a first solve usually needs no second round;
+    a square with a narrow range gets fewer cuts (at least 2), a wide one at most
+    ``4 x tangent_points``.
+    """
+    if not len(width):
+        return np.zeros(0, int)
+    tol = max(REFINE_TOL, 0.5 * spec_mip_gap(spec))
+    budget = 0.25 * tol * max(loss_mw, 1e-12) / len(width)      # MW per square term
+    need = np.ceil(np.maximum(width, 0.0) / (2.0 * np.sqrt(budget))) + 1
+    return np.clip(need, 2, 4 * max(int(spec.tangent_points), 2)).astype(int)
+
+
+REFINE_TOL = 1e-5    # relative error of the cut model at which solve_step stops refining
+
+
+def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_TOL):
     """Build and solve one step, tightening the loss cuts until they are exact enough.
 
     The tangent cuts underestimate each square between tangent points. After each solve,
@@ -268,25 +351,6 @@ def _same_solution(a, b) -> bool:
     return (np.allclose(a.fixed, b.fixed, atol=1e-7, rtol=0) and np.array_equal(a.switched, b.switched)
             and np.array_equal(a.steps, b.steps) and np.array_equal(a.exist, b.exist)
             and np.allclose(a.vset, b.vset, atol=1e-7, rtol=0) and np.allclose(a.tap_change, b.tap_change, atol=1e-7, rtol=0))
-
-
-def _limit_rows(b, tag, x0, slopes, lo, hi, du):
-    """Rows ``lo - slack <= x0 + slopes du <= hi + slack`` on block ``b`` (``lo`` None: upper
-    side only); returns the sum of the slacks for the objective."""
-    rows = range(0 if x0 is None else len(x0))
-    total = 0
-    for side, bound in (("lo", lo), ("hi", hi)):
-        if bound is None:
-            continue
-        slack = pyo.Var(rows, within=pyo.NonNegativeReals)
-        b.add_component(f"{tag}_slack_{side}", slack)
-        if side == "lo":
-            rule = lambda _, i: float(x0[i]) + _lin(slopes[i], du) >= float(bound[i]) - slack[i]  # noqa: E731
-        else:
-            rule = lambda _, i: float(x0[i]) + _lin(slopes[i], du) <= float(bound[i]) + slack[i]  # noqa: E731
-        b.add_component(f"{tag}_limit_{side}", pyo.Constraint(rows, rule=rule))
-        total = total + pyo.quicksum(slack[i] for i in rows)
-    return total
 
 
 def _ordered(bounds):
@@ -385,6 +449,7 @@ def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution
     if T:
         step = np.where(spec.tap_step > 0, spec.tap_step, 1.0)
         tap = np.where(spec.tap_step > 0, np.round(tap / step) * step, tap)
+    offset = float(getattr(m, "objective_offset", 0.0))   # constant kept out of HiGHS (build_model)
     pred = []
     for l, lev in enumerate(spec.levels):
         du = np.concatenate([spec.unit_pu * (fixed + steps[l] - lev.cur_units),
@@ -393,7 +458,7 @@ def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution
         s = lev.d + lev.R @ du if len(lev.d) else np.zeros(0)
         pred.append(float(s @ s + lev.const))
     return StepSolution(True, status, fixed, switched, steps, exist, vset, tap, np.array(pred),
-                        float(pyo.value(m.objective)), timed_out, float(bound))
+                        float(pyo.value(m.objective)) + offset, timed_out, float(bound) + offset)
 
 
 def spec_time_limit(spec) -> float:
