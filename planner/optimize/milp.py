@@ -282,16 +282,16 @@ def _cut_counts(spec: StepSpec, width: np.ndarray, loss_mw: float) -> np.ndarray
 
     Between tangent points ``h`` apart a square is under-estimated by at most ``h^2 / 4``. The
     spacing keeps the sum of those errors within a quarter of the tolerance at which
-    :func:`solve_step` stops refining the cuts, so a first solve usually needs no second round;
-    a square with a narrow range gets fewer cuts (at least 2), a wide one at most
-    ``4 x tangent_points``.
+    :func:`solve_step` stops refining the cuts; a square with a narrow range needs fewer cuts
+    (at least 2), and none gets more than ``tangent_points`` (more made each LP slower than
+    the refinement rounds they saved on the demo study's three-level models).
     """
     if not len(width):
         return np.zeros(0, int)
     tol = max(REFINE_TOL, 0.5 * spec_mip_gap(spec))
     budget = 0.25 * tol * max(loss_mw, 1e-12) / len(width)      # MW per square term
     need = np.ceil(np.maximum(width, 0.0) / (2.0 * np.sqrt(budget))) + 1
-    return np.clip(need, 2, 4 * max(int(spec.tangent_points), 2)).astype(int)
+    return np.clip(need, 2, max(int(spec.tangent_points), 2)).astype(int)
 
 
 REFINE_TOL = 1e-5    # relative error of the cut model at which solve_step stops refining
