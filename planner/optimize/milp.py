@@ -215,16 +215,23 @@ def build_model(spec: StepSpec):
         lev = spec.levels[l]
         b = m.levels[l]
         vl = 0 if spec.common_setpoints else l
-        lo_du, hi_du = _du_ranges(spec, lev, l)
         moving = int(np.count_nonzero((cur[l] > 0) | np.asarray(spec.existing_sites, bool)))
         k_sites = None if spec.max_new_sites is None else int(spec.max_new_sites) + moving
-        cols = Columns(
-            [unit_var(l, s) for s in S] + [m.e[l, e] for e in E] + [m.v[vl, g] for g in G] + [m.d[l, t] for t in T],
-            np.concatenate([spec.unit_pu, spec.exist_step_pu, np.ones(len(G)),
-                            np.where(spec.tap_step > 0, spec.tap_step, 1.0)]),
-            np.concatenate([spec.unit_pu * cur[l], spec.exist_step_pu * np.asarray(lev.cur_exist, float),
-                            np.asarray(lev.v_now, float), np.zeros(len(T))]),
-            lo_du, hi_du, np.arange(len(lo_du)) < nS, k_sites)
+        col_vars = [unit_var(l, s) for s in S] + [m.e[l, e] for e in E] + [m.v[vl, g] for g in G] + [m.d[l, t] for t in T]
+        col_scale = np.concatenate([spec.unit_pu, spec.exist_step_pu, np.ones(len(G)),
+                                    np.where(spec.tap_step > 0, spec.tap_step, 1.0)])
+        col_offset = np.concatenate([spec.unit_pu * cur[l], spec.exist_step_pu * np.asarray(lev.cur_exist, float),
+                                     np.asarray(lev.v_now, float), np.zeros(len(T))])
+        # the box of du from the variables' own bounds, so it holds every change the model can
+        # make (a shared setpoint variable is bounded around the first level's voltage, which
+        # differs from this level's where a generator sits at a reactive limit)
+        lo_du, hi_du = _du_ranges(spec, lev, l)
+        for j, var in enumerate(col_vars):
+            if var.lb is not None:
+                lo_du[j] = min(col_scale[j] * var.lb - col_offset[j], 0.0)
+            if var.ub is not None:
+                hi_du[j] = max(col_scale[j] * var.ub - col_offset[j], 0.0)
+        cols = Columns(col_vars, col_scale, col_offset, lo_du, hi_du, np.arange(len(lo_du)) < nS, k_sites)
         # loss model: s_k = root (d_k + R_k du), each square under-estimated by its tangent cuts
         K = range(len(lev.d))
         b.s = pyo.Var(K)
