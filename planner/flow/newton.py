@@ -46,6 +46,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, compile_network
+from .allocator import keep_freed_memory
 from .equations import bus_mismatch, injection, load_derivative, load_power
 from .jacobian import SymbolicCache
 from .result import FlowResult, FlowStatus, build_result
@@ -148,6 +149,7 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
     >>> [solve_flow(net, symbolic=cache).iterations for _ in range(2)], cache.builds
     ([3, 3], 1)
     """
+    keep_freed_memory()      # once per process: iterations reuse memory instead of page-faulting
     c = compiled if compiled is not None else compile_network(net)
     tol = _check_tolerance(tol_mva, c.base_mva)
     max_iter = _check_max_iter(max_iter)
