@@ -258,6 +258,8 @@ class _Context:
         c = self.c
         self.free = np.flatnonzero((c.kind != SLACK) & c.alive)
         self.sym = self.cache.get(self.y, self.free)
+        # voltage-dependent load anywhere (else the load is a constant of each Newton loop)
+        self.zip_loads = bool(np.any(c.s_load_i) or np.any(c.s_load_z))
 
 
 @dataclass
@@ -375,58 +377,84 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
     if short[k] > 0:
         return (f"bus {c.bus_ids[k]} at {vm[k]:.3f} pu, far below its band minimum "
                 f"{c.v_min[k]:.2f} pu")
-    z = 1.0 / c.ys
+    limit, ok_branch = _transfer_angles(c, cache)
     ang = np.angle(v)
     on_f = np.where(c.tap_from, c.shift, 0.0)
     on_t = np.where(c.tap_from, 0.0, c.shift)
-    delta = np.angle(np.exp(1j * ((ang[c.f] - on_f) - (ang[c.t] - on_t))))
-    limit = np.arctan2(z.imag, z.real)
-    ok_branch = (z.imag > 0) & alive[c.f] & alive[c.t]
+    # angle across each branch, wrapped to [-pi, pi)
+    delta = np.remainder((ang[c.f] - on_f) - (ang[c.t] - on_t) + np.pi, 2 * np.pi) - np.pi
     over = np.where(ok_branch, np.abs(delta) - limit, -np.inf)
     if len(over) and over.max() > 0:
         j = int(np.argmax(over))
         return (f"branch {c.branch_ids[j]} carries {np.rad2deg(abs(delta[j])):.1f} deg across it, beyond "
                 f"its maximum-transfer angle {np.rad2deg(limit[j]):.1f} deg")
     losses = float((injection(y, v).real * alive).sum() - (c.ysh.real * vm ** 2 * alive).sum())
-    estimate = _dc_loss_estimate(c, cache)
     load = float(np.abs(load_power(c, vm).real[alive]).sum())
+    if losses <= LOSS_FACTOR * 0.01 * load:
+        return None           # within the bound whatever the DC estimate (it is never negative)
+    estimate = _dc_loss_estimate(c, cache)
     if estimate is not None and losses > LOSS_FACTOR * (estimate + 0.01 * load):
         return (f"losses {losses * c.base_mva:.1f} MW, over {LOSS_FACTOR:g} x a DC estimate of "
                 f"{estimate * c.base_mva:.1f} MW plus 1 % of load")
     return None
 
 
+def _same_arrays(a: tuple, b: tuple) -> bool:
+    return len(a) == len(b) and all(x.shape == y.shape and np.array_equal(x, y) for x, y in zip(a, b))
+
+
+def _transfer_angles(c: Compiled, cache: SymbolicCache | None):
+    """Maximum-transfer angle of each branch (the angle of its series impedance) and whether it
+    applies (inductive, both ends live); kept in ``cache`` while impedances and live buses hold."""
+    key = (c.ys, c.f, c.t, c.alive)
+    hit = cache.extra.get("transfer") if cache is not None else None
+    if hit is not None and _same_arrays(hit[0], key):
+        return hit[1]
+    with np.errstate(all="ignore"):
+        z = 1.0 / c.ys
+        out = (np.arctan2(z.imag, z.real), (z.imag > 0) & c.alive[c.f] & c.alive[c.t])
+    if cache is not None:
+        cache.extra["transfer"] = (tuple(a.copy() for a in key), out)
+    return out
+
+
 def _dc_loss_estimate(c: Compiled, cache: SymbolicCache | None = None):
     """sum over branches of r |P_dc|^2 (pu), from a DC load flow; None if it cannot be made.
 
     The factorised DC matrix is kept in ``cache`` (valid while the branch impedances and the
-    slack buses are the same), so the check costs one triangular solve per load flow."""
+    slack buses are the same), and the estimate itself while the injections are, so the check
+    costs at most one triangular solve per load flow."""
     free = np.flatnonzero((c.kind != SLACK) & c.alive)
     fixed = np.flatnonzero((c.kind == SLACK) & c.alive)
-    key = (c.ys.tobytes(), c.f.tobytes(), c.t.tobytes(), free.tobytes())
+    key = (c.ys, c.f, c.t, free)
     with np.errstate(all="ignore"):
         hit = cache.extra.get("dc") if cache is not None else None
-        if hit is None or hit[0] != key:
+        if hit is None or not _same_arrays(hit[0], key):
             b, bser = _dc_matrix(c)
             try:
                 lu = spla.splu(b[free][:, free].tocsc()) if len(free) else None
             except RuntimeError:
                 lu = None
-            hit = (key, lu, b[free][:, fixed], bser)
+            hit = (tuple(a.copy() for a in key), lu, b[free][:, fixed], bser, {})
             if cache is not None:
                 cache.extra["dc"] = hit
-        _, lu, b_fx, bser = hit
+        _, lu, b_fx, bser, last = hit
         if lu is None:
             return None
         n = c.n
         p_shift = np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
         p = (c.s_gen - c.s_load_p - c.s_load_i - c.s_load_z).real - c.ysh.real - p_shift
         va = np.where(c.kind == SLACK, c.va_stored, 0.0)
+        if "p" in last and np.array_equal(last["p"], p) and np.array_equal(last["va"], va):
+            return last["estimate"]
+        va_in = va.copy()
         va[free] = lu.solve(p[free] - b_fx @ va[fixed])
         flow = bser * (va[c.f] - va[c.t] + np.where(c.tap_from, -c.shift, c.shift))
         r = (1.0 / c.ys).real
         est = float(np.nansum(np.where(r > 0, r * flow * flow, 0.0)))
-    return est if math.isfinite(est) else None
+        est = est if math.isfinite(est) else None
+        last.update(p=p, va=va_in, estimate=est)
+    return est
 
 
 # --- one schedule: Newton with limit rounds -------------------------------------------------
@@ -494,12 +522,20 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
     q_fixed = st.q_fixed
     diverged = FlowStatus.DIVERGED
 
-    s_sched = scale * c.s_gen + 1j * q_fixed     # as in bus_mismatch, with Y v kept for the Jacobian
+    # as in bus_mismatch, with Y v kept for the Jacobian; the constant-power part of the schedule
+    # is summed once, the voltage-dependent parts (if any) at each evaluation
+    s_fixed = scale * c.s_gen + 1j * q_fixed - scale * c.s_load_p
+    zip_loads = ctx.zip_loads
+    # positions of [P at free buses, Q at PQ buses] in the float view of a complex bus vector
+    pick = np.concatenate([2 * free, 2 * pq + 1])
 
     def residual(vv, vmm):
         ib = y @ vv
-        mis = vv * np.conj(ib) - s_sched + load_power(c, vmm, scale)
-        return np.concatenate([mis.real[free], mis.imag[pq]]), ib
+        mis = vv * np.conj(ib)
+        mis -= s_fixed
+        if zip_loads:
+            mis += scale * (c.s_load_i * vmm + c.s_load_z * vmm ** 2)
+        return np.take(mis.view(np.float64), pick), ib
 
     with np.errstate(all="raise", under="ignore"):
         try:
@@ -528,7 +564,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             if iters >= max_iter:
                 return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
             try:
-                dx = -system.solve(v, load_derivative(c, vm, scale), F, ibus)
+                dx = -system.solve(v, load_derivative(c, vm, scale) if zip_loads else None, F, ibus)
             except RuntimeError:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"

@@ -120,7 +120,7 @@ def cached_order_jacobian(res, cache: SymbolicCache):
     return system.matrix(res.v, c.s_load_i + 2.0 * c.s_load_z * vm)[0]
 
 
-def cpu_best(fn, repeat=3):
+def cpu_best(fn, repeat=5):
     """Smallest CPU time of ``repeat`` calls."""
     best = np.inf
     for _ in range(repeat):
