@@ -46,7 +46,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, compile_network
-from .allocator import keep_freed_memory
+from .runtime import keep_freed_memory, one_blas_thread
 from .equations import bus_mismatch, injection, load_derivative, load_power
 from .jacobian import SymbolicCache
 from .result import FlowResult, FlowStatus, build_result
@@ -76,6 +76,9 @@ FAR_BELOW_BAND_PU = 0.15          # a voltage this far below its band minimum is
 LOSS_FACTOR = 5.0                 # losses above this x (DC estimate + 1 % of load) are suspect
 SAME_SOLUTION_PU = 1e-4
 MAX_ITER_CAP = 100_000
+# networks from this many buses solve with BLAS held to one thread (see planner.flow.runtime); on
+# smaller ones BLAS is hardly called and the switch would cost more than it saves
+ONE_BLAS_THREAD_FROM = 1000
 GIVE_UP_ITERS = 10                # an attempt still above its first mismatch after this many ends
 
 
@@ -156,8 +159,18 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
     if symbolic is None:
         # shared by every copy of this Compiled made with compile.replace (lever changes)
         symbolic = c._cache.setdefault("shared", {}).setdefault("flow_symbolic", SymbolicCache())
+    args = (c, tol, max_iter, enforce_q_limits, start, build_tables, continuation, check_plausibility,
+            symbolic)
+    if c.n < ONE_BLAS_THREAD_FROM:
+        return _solve(*args)
+    with one_blas_thread():
+        return _solve(*args)
+
+
+def _solve(c, tol, max_iter, enforce_q_limits, start, build_tables, continuation, check_plausibility,
+           symbolic) -> FlowResult:
     t0 = time.perf_counter()
-    y = c.ybus()
+    y = _admittance(c)
     ctx = _Context(c, y, tol, enforce_q_limits, symbolic)
     with np.errstate(all="ignore"):
         v = initial_voltage(c, start)
@@ -219,6 +232,18 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
                         equations_solved=status in (FlowStatus.CONVERGED, FlowStatus.SUSPECT),
                         oscillating_buses=[int(b) for b in c.bus_ids[st1.oscillating]],
                         continuation_steps=steps, strategy=strategy)
+
+
+def _admittance(c: Compiled) -> sp.csr_matrix:
+    """``c.ybus()``, kept on ``c`` while its branch part and bus shunts are the same (repeated
+    solves of one network build it once; never modified by the solver)."""
+    yb = c.ybranch()                    # itself kept by compile while ratios and shifts hold
+    hit = c._cache.get("flow_ybus")
+    if hit is not None and hit[0] is yb and np.array_equal(hit[1], c.ysh):
+        return hit[2]
+    y = c.ybus()
+    c._cache["flow_ybus"] = (yb, c.ysh.copy(), y)
+    return y
 
 
 def _check_tolerance(tol_mva, base_mva) -> float:
