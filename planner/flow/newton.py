@@ -572,7 +572,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
         tiny = 0
         start_norm, local = None, 0
         while True:
-            norm = float(np.abs(F).max()) if F.size else 0.0
+            norm = max(float(F.max()), -float(F.min())) if F.size else 0.0   # max |F|, no temporary
             history.append(norm * c.base_mva)
             start_norm = norm if start_norm is None else start_norm
             if ctx.give_up and local >= GIVE_UP_ITERS and norm > start_norm:
@@ -589,7 +589,8 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             if iters >= max_iter:
                 return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
             try:
-                dx = -system.solve(v, load_derivative(c, vm, scale) if zip_loads else None, F, ibus)
+                dx = system.solve(v, load_derivative(c, vm, scale) if zip_loads else None, F, ibus)
+                np.negative(dx, out=dx)
             except RuntimeError:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
@@ -606,8 +607,8 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             def trial(alpha):
                 va_new = va.copy()
                 vm_new = vm.copy()
-                va_new[free] += alpha * dx[:na]
-                vm_new[pq] += alpha * dx[na:]
+                va_new[free] += dx[:na] if alpha == 1.0 else alpha * dx[:na]
+                vm_new[pq] += dx[na:] if alpha == 1.0 else alpha * dx[na:]
                 v_new = vm_new * np.exp(1j * va_new)
                 try:
                     F_new, ib_new = residual(v_new, vm_new)
