@@ -485,8 +485,12 @@ def _branch_ids_vectorized(a: np.ndarray, b: np.ndarray, circuit: np.ndarray) ->
     if not len(a):
         return np.array([], object)
     lo, hi = np.minimum(a, b), np.maximum(a, b)
-    key = pd.MultiIndex.from_arrays([lo, hi])
-    single = ~key.duplicated(keep=False)
+    top = int(hi.max()) + 1
+    if 0 <= int(lo.min()) and top < 2 ** 31:
+        # one integer per unordered pair (CDF bus numbers have four digits): a hash, no MultiIndex
+        single = ~pd.Series(lo.astype(np.int64) * top + hi).duplicated(keep=False).to_numpy()
+    else:
+        single = ~pd.MultiIndex.from_arrays([lo, hi]).duplicated(keep=False)
     ids = np.array([f"{x}-{y}" for x, y in zip(a.tolist(), b.tolist())], dtype=object)
     if not single.all():
         multi = np.flatnonzero(~single)
