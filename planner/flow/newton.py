@@ -470,7 +470,8 @@ def _dc_loss_estimate(c: Compiled, cache: SymbolicCache | None = None):
         p_shift = np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
         p = (c.s_gen - c.s_load_p - c.s_load_i - c.s_load_z).real - c.ysh.real - p_shift
         va = np.where(c.kind == SLACK, c.va_stored, 0.0)
-        if "p" in last and np.array_equal(last["p"], p) and np.array_equal(last["va"], va):
+        if "p" in last and np.array_equal(last["p"], p) and np.array_equal(last["va"], va) \
+                and np.array_equal(last["shift"], c.shift) and np.array_equal(last["tap_from"], c.tap_from):
             return last["estimate"]
         va_in = va.copy()
         va[free] = lu.solve(p[free] - b_fx @ va[fixed])
@@ -478,7 +479,7 @@ def _dc_loss_estimate(c: Compiled, cache: SymbolicCache | None = None):
         r = (1.0 / c.ys).real
         est = float(np.nansum(np.where(r > 0, r * flow * flow, 0.0)))
         est = est if math.isfinite(est) else None
-        last.update(p=p, va=va_in, estimate=est)
+        last.update(p=p, va=va_in, shift=c.shift.copy(), tap_from=c.tap_from.copy(), estimate=est)
     return est
 
 
