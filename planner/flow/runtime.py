@@ -48,7 +48,10 @@ _done: list[bool] = []
 def keep_freed_memory() -> bool:
     """Set the allocator as the module docstring says, once; True if it was set (now or before).
 
-    >>> keep_freed_memory() in (True, False)
+    >>> import os, sys
+    >>> opted_out = any(k in os.environ for k in ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_",
+    ...                                           "PLANNER_DEFAULT_ALLOCATOR"))
+    >>> keep_freed_memory() == (sys.platform.startswith("linux") and not opted_out)   # glibc Linux
     True
     """
     if _done:
