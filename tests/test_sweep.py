@@ -102,14 +102,20 @@ def test_local_process_pool_identical():
     prof = profile_from_factors(_factors()[:20])
     serial = verify_profile(net, prof, where="serial", chunk_size=5)
     f = prof.bus_factors(net.buses.bus, net.buses.area)
-    from planner.hourly.verify import _hour_chunk
+    from planner.hourly.verify import _bin_tasks, _hour_chunk, _schedule_setup
     from planner.network.compile import compile_network
     from planner.sweep.repeated import RepeatedFlow
     c = compile_network(net)
-    shared = dict(cases=[c], factors=f, level_of=np.zeros(20, np.int64), banks=[], steps=np.zeros((20, 0), np.int64),
-                  lo=np.full(c.n, 0.95), hi=np.full(c.n, 1.05), base=RepeatedFlow(c).solve(load_scale=f[0]))
-    parts = engine._run_pool(_hour_chunk, [(a, a + 5) for a in range(0, 20, 5)], shared, 2, None)
-    losses = np.concatenate([p["losses_mw"] for p in parts])
+    level_of, steps = np.zeros(20, np.int64), np.zeros((20, 0), np.int64)
+    rfs = [RepeatedFlow(c)]
+    setup = _schedule_setup(rfs, f, level_of, [], steps, rfs[0].solve(load_scale=f[0]))
+    shared = dict(cases=[c], factors=f, level_of=level_of, setup=setup, lo=np.full(c.n, 0.95), hi=np.full(c.n, 1.05))
+    tasks = _bin_tasks(setup, 5)
+    assert len(tasks) >= 2                       # the pool really gets several tasks
+    parts = engine._run_pool(_hour_chunk, tasks, shared, 2, None)
+    losses = np.full(20, np.nan)
+    for hours, part in parts:
+        losses[hours] = part["losses_mw"]
     assert np.array_equal(losses, serial.intervals.losses_mw.to_numpy())
 
 
