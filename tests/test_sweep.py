@@ -78,6 +78,9 @@ def test_study_n1_runs_through_the_sweep_scheduler_with_identical_results(net30,
     assert seen.steps.count((6, 6)) == 4 and len(seen.steps) == 4 * 6
     for name in ("n1_outcomes.csv", "n1_violations.csv"):
         pd.testing.assert_frame_equal(serial[name], dask_run[name])
+    # the serial run says where its sweeps ran (the study asked for this process); the numbers agree
+    assert serial_data.pop("sweep") == {"where": "serial", "bus_flows": 30 * 41 * 2 * 2, "chosen": False,
+                                        "in_process_up_to": 10_000_000}
     assert serial_data == dask_data
     assert len(serial["n1_outcomes.csv"]) == 2 * 2 * 41      # base and plan, two levels, 41 branches
     assert serial_data["outages"]["cases"]["base"]["peak"]["count"] > 0
@@ -161,3 +164,23 @@ def test_study_progress_bar_shows_the_rate():
 def test_chunks_and_serial_order():
     assert chunked(range(7), 3) == [[0, 1, 2], [3, 4, 5], [6]]
     assert run_chunks(_square, chunked(range(5), 2), shared={"k": 1}, where="serial") == [[0, 1], [4, 9], [16]]
+
+
+def test_sweeps_run_in_this_process_when_small_else_on_the_cores_or_where_named(net30, monkeypatch):
+    # the choice is a count (buses x load flows), never a timing
+    from planner.optimize.engine import LevelCase
+    from planner.proof import run as pr
+    from planner.proof.spec import OutageSpec, ProofSpec
+    from planner.study.spec import AlternativeSpec
+    cases = [LevelCase("peak", net30), LevelCase("light", net30)]
+    plans = [(AlternativeSpec("A"), None), (AlternativeSpec("B"), None)]
+    proof = ProofSpec(outages=OutageSpec(elements=("line", "transformer"), levels=["peak"]))
+    outs = len(outage_list(net30, kinds=("line", "transformer")))
+    work = 30 * outs * 1 * 3                      # buses x outages x one level x (base + two plans)
+    assert pr.sweep_place(net30, cases, plans, proof) == ("serial", work)
+    monkeypatch.setattr(pr, "IN_PROCESS_UP_TO", work - 1)
+    assert pr.sweep_place(net30, cases, plans, proof) == ("local", work)
+    proof.scheduler = "serial"
+    assert pr.sweep_place(net30, cases, plans, proof) == ("serial", work)
+    proof.scheduler = "tcp://10.1.2.3:8786"
+    assert pr.sweep_place(net30, cases, plans, proof) == ("tcp://10.1.2.3:8786", work)
