@@ -121,8 +121,21 @@ def _call_with(fn, shared, task):
     return fn(shared, task)
 
 
+WORKER_WAIT_S = 60.0    # an emergency stop only: how long a sweep waits for a cluster's first worker
+
+
 def _run_dask(client, fn, tasks, shared, progress):
     from distributed import as_completed
+    if shared is not None:
+        # a broadcast to a cluster whose workers have not yet registered once hung (a LocalCluster
+        # started inside a unit test): wait for one worker first; a scheduler without any worker
+        # is a clear error, not a hang. Which worker runs what never changes the numbers.
+        if not client.scheduler_info().get("workers"):
+            try:
+                client.wait_for_workers(1, timeout=WORKER_WAIT_S)
+            except TimeoutError:
+                raise RuntimeError(f"the Dask scheduler {client.scheduler.address} has no worker "
+                                   f"(waited {WORKER_WAIT_S:g} s): start workers or use --scheduler serial") from None
     shared_f = client.scatter(shared, broadcast=True) if shared is not None else None
     futures = [client.submit(_call_with, fn, shared_f, t, pure=False) for t in tasks]
     index = {f.key: i for i, f in enumerate(futures)}
