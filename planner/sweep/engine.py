@@ -126,16 +126,20 @@ def _call_with(fn, shared, task):
 WORKER_WAIT_S = 60.0    # an emergency stop only: how long a sweep waits for a cluster's first worker
 
 
-_UNPACKED: dict = {}     # token -> shared data, per worker process (the last few sweeps' data)
+_UNPACKED: dict = {}     # (token, thread) -> shared data, per worker (the last few sweeps' data)
 
 
 def _call_packed(fn, blob, token, task):
-    """Run one task on a worker with the sweep's shared data, unpickled once per process."""
-    shared = _UNPACKED.get(token)
+    """Run one task on a worker with the sweep's shared data, unpickled once per worker thread:
+    the chunk functions keep working state (factorisations, solver caches) in it, which two
+    threads of one process (a cluster of thread workers) must not share."""
+    import threading
+    key = (token, threading.get_ident())
+    shared = _UNPACKED.get(key)
     if shared is None:
-        if len(_UNPACKED) >= 4:
+        if len(_UNPACKED) >= 8:
             _UNPACKED.clear()
-        shared = _UNPACKED[token] = pickle.loads(blob)
+        shared = _UNPACKED[key] = pickle.loads(blob)
     return fn(shared, task)
 
 
