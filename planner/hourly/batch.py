@@ -41,7 +41,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse.linalg as spla
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 from ..flow.jacobian import LU_OPTIONS, JacobianPattern
 from ..network.compile import PQ, PV, SLACK
@@ -52,6 +52,18 @@ CHORD_MIN_CONTRACTION = 0.5  # a step that shrinks the mismatch less than this: 
 BIN_WIDTH = 0.04            # span of mean load factor whose hours share one reference Jacobian
 BLOCK_ENTRIES = 2_000_000   # buses x hours held in one block (memory: ~16 bytes an entry, a few arrays)
 LIMIT_TOL = 1e-9            # pu; the load flow's reactive-limit test
+
+
+_CONTROLLER = None
+
+
+def _one_blas_thread():
+    """A context holding BLAS to one thread (the libraries are looked up once per process: a
+    fresh look-up costs milliseconds, more than a block's solve)."""
+    global _CONTROLLER
+    if _CONTROLLER is None:
+        _CONTROLLER = ThreadpoolController()
+    return _CONTROLLER.limit(limits=1, user_api="blas")
 
 
 @dataclass
@@ -122,7 +134,7 @@ class ChordSystem:
             jac = JacobianPattern(y, self.pvpq, self.pq).matrix(ref.v, dload)
             try:
                 if jac.shape[0] <= DENSE_UP_TO:
-                    with threadpool_limits(1, user_api="blas"):
+                    with _one_blas_thread():
                         dense = sla.lu_factor(jac.toarray(), check_finite=True)
                     if np.all(np.isfinite(dense[0])) and np.all(np.abs(np.diag(dense[0])) > 0):
                         self.lu = dense
@@ -135,7 +147,7 @@ class ChordSystem:
 
     def solve(self, rhs):
         if self._dense:
-            with threadpool_limits(1, user_api="blas"):
+            with _one_blas_thread():
                 return sla.lu_solve(self.lu, rhs, check_finite=False)
         return self.lu.solve(rhs)
 
