@@ -172,6 +172,9 @@ def _hour_chunk(shared, bins):
                        bins, shared.setdefault("_systems", {}))
 
 
+REFERENCE_ROUNDS = 3     # references per bin at most (the first, then for the hours it left)
+
+
 def _schedule_setup(rfs, factors, level_of, banks, steps, base_sol):
     """Bins of intervals and their reference solutions, worked out once before any chunking so
     that every interval's answer depends only on the profile (not on chunks or workers).
@@ -244,21 +247,33 @@ def _solve_bins(rfs, factors, level_of, setup, lo, hi, bins, systems):
             continue
         rf = rfs[int(level_of[mine[0]])]
         ref, delta = setup["refs"][b], setup["deltas"][b]
-        redo = mine
-        if ref.success:
-            y = rf.y0 if delta is None else rf.y_with(ysh_delta=delta)
-            system = systems.get(b)
+        ref_hour = setup["ref_hours"][b]
+        y = rf.y0 if delta is None else rf.y_with(ysh_delta=delta)
+        pending = mine
+        step = block_columns(n)
+        # the hours a reference's blocks do not accept (most often: a generator on the other
+        # side of its reactive limit) get a reference of their own, their median hour, a few times
+        for round_ in range(REFERENCE_ROUNDS):
+            if not ref.success or not len(pending):
+                break
+            system = systems.get((b, round_))
             if system is None:
-                system = systems[b] = ChordSystem(rf, y, ref, factors[setup["ref_hours"][b]])
-            redo = []
-            step = block_columns(n)
-            for a in range(0, len(mine), step):
-                block = mine[a:a + step]
+                system = systems[(b, round_)] = ChordSystem(rf, y, ref, factors[ref_hour])
+            rejected = []
+            for a in range(0, len(pending), step):
+                block = pending[a:a + step]
                 blk = solve_block(rf, y, ref, factors[block], system=system)
                 _record_block(out, np.array([pos[int(t)] for t in block]), blk, rf.c, lo, hi)
-                redo.extend(block[~blk.accepted].tolist())
-        start = ref if ref.success else setup["base"]
-        for t in redo:
+                rejected.extend(block[~blk.accepted].tolist())
+            if len(rejected) == len(pending):
+                break                                   # no progress: one solve per hour
+            pending = np.array(rejected, np.int64)
+            if len(pending) and round_ + 1 < REFERENCE_ROUNDS:
+                mean = factors[pending].mean(axis=1)
+                ref_hour = int(pending[np.argsort(mean, kind="stable")[(len(pending) - 1) // 2]])
+                ref = rf.solve(load_scale=factors[ref_hour], ysh_delta=delta, start=ref)
+        start = ref if ref.success else (setup["refs"][b] if setup["refs"][b].success else setup["base"])
+        for t in pending:
             sol = rf.solve(load_scale=factors[t], ysh_delta=delta, start=start)
             _record(out, pos[int(t)], sol, rf.c, lo, hi)
     return hours, out
