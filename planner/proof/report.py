@@ -187,6 +187,22 @@ def proof_files(frames: dict) -> dict:
     out = {}
     for name, df in frames.items():
         buf = io.StringIO()
-        df.to_csv(buf, index=False, float_format="%.6g")
+        _six_digits(df).to_csv(buf, index=False)
         out[name] = buf.getvalue()
+    return out
+
+
+def _six_digits(df):
+    """``df`` with its float columns as text of six significant digits, NaN as an empty field: the
+    text of ``to_csv(float_format="%.6g")``, made once per column (pandas formats each value
+    through a slower path: a second of the demo's 43,800-row hourly table, measured).
+
+    >>> import pandas as pd
+    >>> _six_digits(pd.DataFrame({"x": [0.1234567, float("nan"), 1e-9], "n": [1, 2, 3]})).x.tolist()
+    ['0.123457', '', '1e-09']
+    """
+    out = df.copy()
+    for col in df.columns:
+        if df[col].dtype.kind == "f":
+            out[col] = ["" if v != v else "%.6g" % v for v in df[col].tolist()]
     return out
