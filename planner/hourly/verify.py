@@ -19,7 +19,11 @@ Control rules for switched banks
 
 Modelling choices: loads scale with the factor (all ZIP parts alike); generators other than the
 slack keep their schedule and the slack takes up the change, as at the study's load levels.
-Each interval is warm-started from the previous one and reuses the Jacobian ordering.
+Under the schedule rule the intervals are solved in blocks (:mod:`planner.hourly.batch`: bins of
+nearby load share one factorised reference Jacobian, chord steps to the load flow's tolerance, a
+full Newton-Raphson solve for any interval a block does not accept); every interval's answer
+depends only on the profile, never on how the work is split. Under the voltage rule each interval
+is one Newton-Raphson solve warm-started from the one before, reusing the Jacobian ordering.
 
 >>> from planner.network.model import Network, make_table
 >>> net = Network(buses=make_table("buses", [{"bus": 1, "base_kv": 33.0, "kind": "slack"},
@@ -341,10 +345,10 @@ def verify_hours(cases, factors, level_of, duration_h, *, band, banks=(), rule="
     level_factors : ndarray [L, n], optional
         Each level's own factors; the level cases are solved at them for the level-based estimate.
     where, chunk_size, progress, client
-        With the schedule rule, run the intervals as chunks of ``chunk_size`` (each warm-started
-        from the first interval's solution) through :func:`planner.sweep.engine.run_chunks`
-        (``where`` = "serial", "local" or a Dask scheduler address); every choice gives the same
-        numbers. Default: one pass in this process, each interval warm-started from the one before.
+        With the schedule rule, run the bins of intervals as tasks of about ``chunk_size``
+        intervals (whole bins) through :func:`planner.sweep.engine.run_chunks` (``where`` =
+        "serial", "local" or a Dask scheduler address); default: every bin in this process. Every
+        choice gives identical numbers (the bins and their references are fixed before the split).
         The voltage rule is sequential by nature and always runs in this process.
     """
     cases = list(cases)
