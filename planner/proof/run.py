@@ -20,7 +20,8 @@ CURVE_POINTS = 240          # points kept on a duration curve in the report
 # Sweeps up to this many bus-flows (buses x load flows, N-1 and hourly together) run in this
 # process unless a scheduler is named: starting a local Dask cluster and sending it the network
 # costs seconds, more than the whole sweep of a network this size (the 50-bus demo, 5 cases x
-# (8,760 hours + 100 outages), is 2.2 million: about 4 s of one core in this process, measured).
+# (8,760 hours + 100 outages), is 2.2 million bus-flows: about 3 s of one core in this process,
+# measured with tests/perf/bench_study_proof.py).
 IN_PROCESS_UP_TO = 10_000_000
 
 
