@@ -190,7 +190,7 @@ def test_scheduler_without_workers_is_a_clear_error_not_a_hang(monkeypatch):
     distributed = pytest.importorskip("distributed")
     from planner.sweep import engine
     monkeypatch.setattr(engine, "WORKER_WAIT_S", 0.5)
-    with distributed.LocalCluster(n_workers=0, processes=False, dashboard_address=None, silence_logs=50) as lc, \
+    with distributed.LocalCluster(n_workers=0, processes=False, dashboard_address=":0", silence_logs=50) as lc, \
             distributed.Client(lc) as client:
         with pytest.raises(RuntimeError, match=r"has no worker \(waited 0.5 s\)"):
             run_chunks(_square, [[1], [2]], shared={"k": 1}, client=client)
