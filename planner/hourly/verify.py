@@ -167,13 +167,13 @@ def _span(rfs, factors, level_of, banks, steps, lo, hi, first, last, start_sol=N
 
 
 def _hour_chunk(shared, bins):
-    """Bins of intervals on a worker (see :func:`_solve_bins`); repeated-flow structures and
-    factorised chord systems are built once per worker and kept in ``shared``."""
+    """Bins of intervals on a worker (see :func:`_solve_bins`); repeated-flow structures are
+    built once per worker and kept in ``shared``."""
     rfs = shared.get("_rfs")
     if rfs is None:
         rfs = shared["_rfs"] = [RepeatedFlow(c) for c in shared["cases"]]
     return _solve_bins(rfs, shared["factors"], shared["level_of"], shared["setup"], shared["lo"], shared["hi"],
-                       bins, shared.setdefault("_systems", {}))
+                       bins)
 
 
 REFERENCE_ROUNDS = 3     # references per bin at most (the first, then for the hours it left)
@@ -237,7 +237,7 @@ def _empty_out(T):
     return out
 
 
-def _solve_bins(rfs, factors, level_of, setup, lo, hi, bins, systems):
+def _solve_bins(rfs, factors, level_of, setup, lo, hi, bins):
     """The intervals of ``bins``: chord blocks from each bin's reference, a full Newton solve for
     intervals the block does not accept. Returns ``(hours, out)`` (interval indices, arrays)."""
     bin_of = setup["bin_of"]
@@ -260,9 +260,7 @@ def _solve_bins(rfs, factors, level_of, setup, lo, hi, bins, systems):
         for round_ in range(REFERENCE_ROUNDS):
             if not ref.success or not len(pending):
                 break
-            system = systems.get((b, round_))
-            if system is None:
-                system = systems[(b, round_)] = ChordSystem(rf, y, ref, factors[ref_hour])
+            system = ChordSystem(rf, y, ref, factors[ref_hour])
             rejected = []
             for a in range(0, len(pending), step):
                 block = pending[a:a + step]
@@ -368,7 +366,7 @@ def verify_hours(cases, factors, level_of, duration_h, *, band, banks=(), rule="
         setup = _schedule_setup(rfs, factors, level_of, banks, steps, base_sol)
         tasks = _bin_tasks(setup, chunk_size)
         if where is None and client is None:
-            parts = [_solve_bins(rfs, factors, level_of, setup, lo, hi, range(len(setup["ref_hours"])), {})]
+            parts = [_solve_bins(rfs, factors, level_of, setup, lo, hi, range(len(setup["ref_hours"])))]
         else:
             from ..sweep.engine import run_chunks
             shared = dict(cases=cases, factors=factors, level_of=level_of, setup=setup, lo=lo, hi=hi)
