@@ -123,17 +123,38 @@ def _call_with(fn, shared, task):
     return fn(shared, task)
 
 
-_UNPACKED: dict = {}     # token -> shared data, per worker process (the last few sweeps' data)
+WORKER_WAIT_S = 60.0    # an emergency stop only: how long a sweep waits for a cluster's first worker
+
+
+_UNPACKED: dict = {}     # (token, thread) -> shared data, per worker (the last few sweeps' data)
 
 
 def _call_packed(fn, blob, token, task):
-    """Run one task on a worker with the sweep's shared data, unpickled once per process."""
-    shared = _UNPACKED.get(token)
+    """Run one task on a worker with the sweep's shared data, unpickled once per worker thread:
+    the chunk functions keep working state (factorisations, solver caches) in it, which two
+    threads of one process (a cluster of thread workers) must not share."""
+    import threading
+    key = (token, threading.get_ident())
+    shared = _UNPACKED.get(key)
     if shared is None:
-        if len(_UNPACKED) >= 4:
+        if len(_UNPACKED) >= 8:
             _UNPACKED.clear()
-        shared = _UNPACKED[token] = pickle.loads(blob)
+        shared = _UNPACKED[key] = pickle.loads(blob)
     return fn(shared, task)
+
+
+def _wait_for_a_worker(client):
+    """A broadcast to a cluster whose workers have not yet registered once hung (a LocalCluster
+    started inside a unit test): wait for one worker first; a scheduler without any worker is a
+    clear error after :data:`WORKER_WAIT_S`, not a hang. Which worker runs what never changes
+    the numbers."""
+    if client.scheduler_info().get("workers"):
+        return
+    try:
+        client.wait_for_workers(1, timeout=WORKER_WAIT_S)
+    except TimeoutError:
+        raise RuntimeError(f"the Dask scheduler {client.scheduler.address} has no worker "
+                           f"(waited {WORKER_WAIT_S:g} s): start workers or use --scheduler serial") from None
 
 
 def _run_dask(client, fn, tasks, shared, progress):
@@ -148,7 +169,7 @@ def _run_dask(client, fn, tasks, shared, progress):
         # constant time; each worker unpickles them once (token-keyed cache).
         blob = pickle.dumps(shared, protocol=pickle.HIGHEST_PROTOCOL)
         token = hashlib.sha256(blob).hexdigest()
-        client.wait_for_workers(1)
+        _wait_for_a_worker(client)
         blob_f = client.scatter(blob, broadcast=True, hash=False)
         futures = [client.submit(_call_packed, fn, blob_f, token, t, pure=False) for t in tasks]
     index = {f.key: i for i, f in enumerate(futures)}
