@@ -59,3 +59,28 @@ def test_limit_rows_leave_out_sides_no_change_can_reach_and_keep_unavoidable_bre
     m.x[1].fix(0.0)
     m.v_slack_lo[0].set_value(0.02)
     assert pyo.value(con.body) == pytest.approx(con.lower, abs=1e-12)
+
+
+def test_a_lever_column_with_no_room_to_move_reads_back_at_its_present_position():
+    # an existing switchable bank with the unit trust radius at 0: its box has zero width, all
+    # its coefficients are dropped and it is in no row, yet the step must report it unchanged
+    import pandas as pd
+    from pathlib import Path
+    from planner.network.cdf import read_cdf
+    from planner.optimize import milp
+    from planner.optimize.ac_check import evaluate
+    from planner.optimize.engine import LevelCase
+    from planner.optimize.levers import BankSite, Levers, Limits, Objective, Options
+    from planner.optimize.problem import PlanProblem
+    net = read_cdf(Path(__file__).parent / "data" / "ieee14cdf.txt")
+    net.shunts = pd.DataFrame({"shunt_id": ["c9"], "bus": [9], "mvar_per_step": [5.0], "steps_max": [4],
+                               "steps_on": [2], "switchable": [True], "energised": [True]})
+    pb = PlanProblem([LevelCase("base", net)], Levers(sites=[BankSite(14, 5.0, 4)]), Limits(v_min=0.9, v_max=1.1),
+                     Objective(), Options())
+    st = pb.initial_settings()
+    ev = evaluate(pb, st)
+    spec = pb.step_spec(st, ev.flows, 0.0, 0, 0, 0.0)
+    sol = milp.solve_model(milp.build_model(spec), spec)
+    assert sol.ok
+    assert sol.exist.tolist() == [[2]]          # the bank's present steps
+    assert sol.fixed.tolist() == [0.0] and sol.steps.tolist() == [[0]]
