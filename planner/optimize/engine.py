@@ -149,6 +149,12 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
             tried.pop(p.key(), None)
             tried[p.key()] = p           # most recent last
         cand = pb.settings_from(sol, cur, ev.flows)
+        # the model's own expected gain of this proposal (losses, capital, penalised rows): when
+        # it is below the acceptance tolerance, a smaller region cannot do better by the
+        # model's own account, so this is the last step (checked by AC if it expects any gain)
+        # instead of a long tail of shrinking, rejected steps
+        expected = _model_merit(pb, spec, cur, None, ev.flows) - _model_merit(pb, spec, cur, cand, ev.flows)
+        last = expected < _tolerance(pb, ev.merit)
         pred = dict(zip(names, map(float, sol.predicted_loss_pu * pb.base)))
         rec = dict(iteration=it, predicted_mw=pred, radius_v=r_v, radius_units=r_u)
         if cand.key() == cur.key():
@@ -158,12 +164,6 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
             if progress:
                 progress(log[-1])
             break
-        # the model's own expected gain of this proposal (losses, capital, penalised rows): when
-        # it is below the acceptance tolerance, a smaller region cannot do better by the
-        # model's own account, so this is the last step (checked by AC if it expects any gain)
-        # instead of a long tail of shrinking, rejected steps
-        expected = _model_merit(pb, spec, cur, None, ev.flows) - _model_merit(pb, spec, cur, cand, ev.flows)
-        last = expected < _tolerance(pb, ev.merit)
         last_stop = "converged (the model expects no gain above the tolerance)"
         if last and (expected <= 0 or cand.key() in seen):
             stop = last_stop

@@ -214,7 +214,7 @@ def build_model(spec: StepSpec):
     return m
 
 
-def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
+def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, start_at_present: bool = False):
     """Build and solve one step, tightening the loss cuts until they are exact enough.
 
     The tangent cuts underestimate each square between tangent points. After each solve,
@@ -233,8 +233,13 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     sol = prev = None
     rounds = []
     timed_out = False
+    # the first solve has no start: a start at the present point changes which of the
+    # near-equal solutions inside the gap a node-limited solve returns, and on the demo study
+    # that led to plans up to 1e-4 worse (see DEVELOPERS.md); later rounds start from the
+    # previous round's solution
+    start = present_start(m, spec) if start_at_present else None
     for _ in range(max_rounds):
-        sol = solve_model(m, spec, solver)
+        sol = solve_model(m, spec, solver, start=start)
         solves += 1
         timed_out = timed_out or sol.time_limited
         sol.time_limited = timed_out
@@ -254,6 +259,9 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
                     gap += excess * lev.weight      # MW x weight
                     b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
                     added = True
+        # the next round starts from this solution: still feasible after the added cuts once
+        # HiGHS completes the continuous columns (its partial-start completion)
+        start = _decision_values(m)
         same = prev is not None and _same_solution(prev, sol)
         # HiGHS holds each cut only to its feasibility tolerance (1e-7), so a tiny gap remains
         # cuts closer than half the MILP's own optimality gap cannot change what it may return
@@ -262,6 +270,43 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
             break
         prev = sol
     return sol, solves, rounds
+
+
+def _decisions(m):
+    """The lever columns of a step model (integers and setpoints): a MIP start fixes these and
+    leaves the loss and slack columns for HiGHS to complete."""
+    for comp in (m.z, m.zs, m.nf, m.ns, m.k, m.v, m.e, m.d):
+        yield from comp.values()
+
+
+def _decision_values(m) -> list:
+    return [(v, float(v.value)) for v in _decisions(m) if v.value is not None]
+
+
+def present_start(m, spec: StepSpec) -> list:
+    """A MIP start at the present point (no lever change), so every solve has an incumbent
+    at least as good as standing still. Units in service at every level count as fixed, the
+    rest as switched (the cheapest split, so a budget the present plan keeps still holds)."""
+    L, S = len(spec.levels), len(spec.unit_pu)
+    if not L:
+        return []
+    units = np.array([lev.cur_units for lev in spec.levels], float).reshape(L, S)
+    start = []
+    for s in range(S):
+        lo, hi = units[:, s].min(), units[:, s].max()
+        nf = lo if spec.allow_fixed[s] else 0.0
+        if not spec.continuous[s]:
+            nf = float(round(nf))
+        ns = float(round(hi - nf))
+        if ns and not spec.allow_switched[s]:
+            return []                       # the present point is not in this model: no start
+        start += [(m.nf[s], nf), (m.ns[s], ns), (m.z[s], float(nf + ns > 1e-9)), (m.zs[s], float(ns > 0))]
+        start += [(m.k[l, s], float(round(units[l, s] - nf))) for l in range(L)]
+    start += [(var, float(spec.levels[l].cur_exist[e])) for (l, e), var in m.e.items()]
+    start += [(var, float(np.clip(spec.levels[l].v_now[g], var.lb, var.ub))) for (l, g), var in m.v.items()]
+    start += [(var, float(np.clip(0.0, var.lb if var.lb is not None else -np.inf,
+                                  var.ub if var.ub is not None else np.inf))) for var in m.d.values()]
+    return start
 
 
 def _same_solution(a, b) -> bool:
@@ -347,11 +392,15 @@ def deterministic_options(spec) -> dict:
             "mip_heuristic_effort": 0.01}
 
 
-def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution:
+def solve_model(m, spec: StepSpec, solver=None, time_limit=None, start: list | None = None) -> StepSolution:
     """Solve with HiGHS and read the solution back as arrays (integers rounded). The node limit
-    bounds the work; the time limit is only an emergency stop, recorded in the solution."""
+    bounds the work; the time limit is only an emergency stop, recorded in the solution.
+    ``start``: values of some columns ([(Pyomo variable, value)]) handed to HiGHS as a MIP start
+    (HiGHS fixes them and completes the others; an infeasible start is ignored)."""
     _load()
     solver = solver or new_solver()
+    if start:
+        _with_start(solver, start)
     try:
         res = solver.solve(m, load_solutions=False,
                            time_limit=time_limit if time_limit is not None else spec_time_limit(spec),
@@ -394,6 +443,24 @@ def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution
         pred.append(float(s @ s + lev.const))
     return StepSolution(True, status, fixed, switched, steps, exist, vset, tap, np.array(pred),
                         float(pyo.value(m.objective)), timed_out, float(bound))
+
+
+def _with_start(solver, start: list):
+    """Hand ``start`` to HiGHS just before its next run (after Pyomo has brought the persistent
+    model up to date, so the column numbers are current). Pyomo's HiGHS interface has no MIP
+    start option; this uses its persistent highspy model."""
+    run = type(solver)._solve
+
+    def _solve():
+        del solver._solve                     # one run only
+        h = getattr(solver, "_solver_model", None)
+        cols = getattr(solver, "_pyomo_var_to_solver_var_map", {})
+        pairs = sorted((cols[id(v)], x) for v, x in start if id(v) in cols)
+        if h is not None and pairs:
+            idx = np.array([p[0] for p in pairs], np.int32)
+            h.setSolution(len(idx), idx, np.array([p[1] for p in pairs], float))
+        return run(solver)
+    solver._solve = _solve
 
 
 def spec_time_limit(spec) -> float:
