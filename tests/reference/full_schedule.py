@@ -35,6 +35,19 @@ def full_space_schedule(case: RawCase | None = None, vgen=(0.95, 1.10), vload=(0
     gen_buses (external numbers), vm, base_losses_mw, success, nit, max_mismatch,
     bound_violation, time_s.
     """
+    try:        # small dense products: BLAS threads only contend on a shared machine
+        from threadpoolctl import threadpool_limits
+        limit = threadpool_limits(limits=1, user_api="blas")
+    except ImportError:
+        limit = None
+    try:
+        return _solve(case, vgen, vload, ftol, maxiter)
+    finally:
+        if limit is not None:
+            limit.restore_original_limits()
+
+
+def _solve(case, vgen, vload, ftol, maxiter) -> OptimizeResult:
     t0 = time.perf_counter()
     case = case or ieee30()
     gen = np.isin(case.btype, (PV, SLACK))
