@@ -96,6 +96,9 @@ def test_proof_sections_in_data_report_and_csv(feeder_run):
     for name in ("n1_outcomes.csv", "n1_violations.csv", "hourly.csv", "bank_checks.csv"):
         assert name in files and files[name].count("\n") > 1
     assert "proof_frames" not in files["report.json"]
+    # where the sweeps ran, as the study's [sweep] section asked (this process)
+    assert proof["sweep"]["where"] == "serial" and not proof["sweep"]["chosen"]
+    assert "The N-1 and hourly load flows ran in this process: as the study or command line asks." in html
 
 
 @pytest.mark.parametrize("extra, where", [

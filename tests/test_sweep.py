@@ -78,6 +78,9 @@ def test_study_n1_runs_through_the_sweep_scheduler_with_identical_results(net30,
     assert seen.steps.count((6, 6)) == 4 and len(seen.steps) == 4 * 6
     for name in ("n1_outcomes.csv", "n1_violations.csv"):
         pd.testing.assert_frame_equal(serial[name], dask_run[name])
+    # the serial run says where its sweeps ran (the study asked for this process); the numbers agree
+    assert serial_data.pop("sweep") == {"where": "serial", "bus_flows": 30 * 41 * 2 * 2, "chosen": False,
+                                        "in_process_up_to": 10_000_000}
     assert serial_data == dask_data
     assert len(serial["n1_outcomes.csv"]) == 2 * 2 * 41      # base and plan, two levels, 41 branches
     assert serial_data["outages"]["cases"]["base"]["peak"]["count"] > 0
@@ -102,14 +105,20 @@ def test_local_process_pool_identical():
     prof = profile_from_factors(_factors()[:20])
     serial = verify_profile(net, prof, where="serial", chunk_size=5)
     f = prof.bus_factors(net.buses.bus, net.buses.area)
-    from planner.hourly.verify import _hour_chunk
+    from planner.hourly.verify import _bin_tasks, _hour_chunk, _schedule_setup
     from planner.network.compile import compile_network
     from planner.sweep.repeated import RepeatedFlow
     c = compile_network(net)
-    shared = dict(cases=[c], factors=f, level_of=np.zeros(20, np.int64), banks=[], steps=np.zeros((20, 0), np.int64),
-                  lo=np.full(c.n, 0.95), hi=np.full(c.n, 1.05), base=RepeatedFlow(c).solve(load_scale=f[0]))
-    parts = engine._run_pool(_hour_chunk, [(a, a + 5) for a in range(0, 20, 5)], shared, 2, None)
-    losses = np.concatenate([p["losses_mw"] for p in parts])
+    level_of, steps = np.zeros(20, np.int64), np.zeros((20, 0), np.int64)
+    rfs = [RepeatedFlow(c)]
+    setup = _schedule_setup(rfs, f, level_of, [], steps, rfs[0].solve(load_scale=f[0]))
+    shared = dict(cases=[c], factors=f, level_of=level_of, setup=setup, lo=np.full(c.n, 0.95), hi=np.full(c.n, 1.05))
+    tasks = _bin_tasks(setup, 5)
+    assert len(tasks) >= 2                       # the pool really gets several tasks
+    parts = engine._run_pool(_hour_chunk, tasks, shared, 2, None)
+    losses = np.full(20, np.nan)
+    for hours, part in parts:
+        losses[hours] = part["losses_mw"]
     assert np.array_equal(losses, serial.intervals.losses_mw.to_numpy())
 
 
@@ -155,3 +164,33 @@ def test_study_progress_bar_shows_the_rate():
 def test_chunks_and_serial_order():
     assert chunked(range(7), 3) == [[0, 1, 2], [3, 4, 5], [6]]
     assert run_chunks(_square, chunked(range(5), 2), shared={"k": 1}, where="serial") == [[0, 1], [4, 9], [16]]
+
+
+def test_sweeps_run_in_this_process_when_small_else_on_the_cores_or_where_named(net30, monkeypatch):
+    # the choice is a count (buses x load flows), never a timing
+    from planner.optimize.engine import LevelCase
+    from planner.proof import run as pr
+    from planner.proof.spec import OutageSpec, ProofSpec
+    from planner.study.spec import AlternativeSpec
+    cases = [LevelCase("peak", net30), LevelCase("light", net30)]
+    plans = [(AlternativeSpec("A"), None), (AlternativeSpec("B"), None)]
+    proof = ProofSpec(outages=OutageSpec(elements=("line", "transformer"), levels=["peak"]))
+    outs = len(outage_list(net30, kinds=("line", "transformer")))
+    work = 30 * outs * 1 * 3                      # buses x outages x one level x (base + two plans)
+    assert pr.sweep_place(net30, cases, plans, proof) == ("serial", work)
+    monkeypatch.setattr(pr, "IN_PROCESS_UP_TO", work - 1)
+    assert pr.sweep_place(net30, cases, plans, proof) == ("local", work)
+    proof.scheduler = "serial"
+    assert pr.sweep_place(net30, cases, plans, proof) == ("serial", work)
+    proof.scheduler = "tcp://10.1.2.3:8786"
+    assert pr.sweep_place(net30, cases, plans, proof) == ("tcp://10.1.2.3:8786", work)
+
+
+def test_scheduler_without_workers_is_a_clear_error_not_a_hang(monkeypatch):
+    distributed = pytest.importorskip("distributed")
+    from planner.sweep import engine
+    monkeypatch.setattr(engine, "WORKER_WAIT_S", 0.5)
+    with distributed.LocalCluster(n_workers=0, processes=False, dashboard_address=":0", silence_logs=50) as lc, \
+            distributed.Client(lc) as client:
+        with pytest.raises(RuntimeError, match=r"has no worker \(waited 0.5 s\)"):
+            run_chunks(_square, [[1], [2]], shared={"k": 1}, client=client)

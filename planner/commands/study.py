@@ -68,9 +68,10 @@ def run_study_file(path, out_dir=None, quiet=False, jobs=None, scheduler=None) -
     plans = [(a.spec, a.plan) for a in result.alternatives]
     files = report_files(data)
     files["plans.json"] = to_json([plan_to_dict(p) for _, p in plans])
-    from ..network.workbook import csv_files_workbook, have_openpyxl
-    if have_openpyxl():   # an extra: the same tables as the CSV files, one sheet each
-        files["results.xlsx"] = csv_files_workbook(files)
+    from ..network.workbook import have_openpyxl
+    from ..report.sheets import csv_tables_xlsx
+    if have_openpyxl():   # with the xlsx extra: the same tables as the CSV files, one sheet each
+        files["results.xlsx"] = csv_tables_xlsx(files)
     with options.output_errors(option, target):
         folder = write_report_folder(target, files)
     for alt in data["alternatives"]:

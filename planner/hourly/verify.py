@@ -19,7 +19,11 @@ Control rules for switched banks
 
 Modelling choices: loads scale with the factor (all ZIP parts alike); generators other than the
 slack keep their schedule and the slack takes up the change, as at the study's load levels.
-Each interval is warm-started from the previous one and reuses the Jacobian ordering.
+Under the schedule rule the intervals are solved in blocks (:mod:`planner.hourly.batch`: bins of
+nearby load share one factorised reference Jacobian, chord steps to the load flow's tolerance, a
+full Newton-Raphson solve for any interval a block does not accept); every interval's answer
+depends only on the profile, never on how the work is split. Under the voltage rule each interval
+is one Newton-Raphson solve warm-started from the one before, reusing the Jacobian ordering.
 
 >>> from planner.network.model import Network, make_table
 >>> net = Network(buses=make_table("buses", [{"bus": 1, "base_kv": 33.0, "kind": "slack"},
@@ -48,6 +52,7 @@ import pandas as pd
 from ..network.compile import compile_network
 from ..network.model import Network
 from ..sweep.repeated import RepeatedFlow
+from .batch import ChordSystem, block_columns, block_plan, solve_block
 from .profile import LoadProfile
 
 
@@ -161,13 +166,141 @@ def _span(rfs, factors, level_of, banks, steps, lo, hi, first, last, start_sol=N
     return (out, sol) if keep_last else out
 
 
-def _hour_chunk(shared, bounds):
-    """Intervals ``bounds[0] .. bounds[1]-1`` on a worker; repeated-flow structures built once per worker."""
+def _hour_chunk(shared, bins):
+    """Bins of intervals on a worker (see :func:`_solve_bins`); repeated-flow structures are
+    built once per worker and kept in ``shared``."""
     rfs = shared.get("_rfs")
     if rfs is None:
         rfs = shared["_rfs"] = [RepeatedFlow(c) for c in shared["cases"]]
-    return _span(rfs, shared["factors"], shared["level_of"], shared["banks"], shared["steps"], shared["lo"],
-                 shared["hi"], bounds[0], bounds[1], shared["base"])
+    return _solve_bins(rfs, shared["factors"], shared["level_of"], shared["setup"], shared["lo"], shared["hi"],
+                       bins)
+
+
+REFERENCE_ROUNDS = 3     # references per bin at most (the first, then for the hours it left)
+
+
+def _schedule_setup(rfs, factors, level_of, banks, steps, base_sol):
+    """Bins of intervals and their reference solutions, worked out once before any chunking so
+    that every interval's answer depends only on the profile (not on chunks or workers).
+
+    Intervals are grouped by level and bank steps (a bank step changes the admittance matrix),
+    then binned by mean load factor (:func:`planner.hourly.batch.block_plan`); each bin's
+    reference hour is solved by the full Newton-Raphson load flow."""
+    c = rfs[0].c
+    T = len(level_of)
+    if banks:
+        bus_idx = np.array([c.index_of([b.bus])[0] for b in banks], np.int64)
+        step_pu = np.array([b.mvar_per_step for b in banks]) / c.base_mva
+        level_steps = np.array([b.steps_by_level for b in banks], np.int64).T
+        d = steps - level_steps[level_of]
+    else:
+        d = np.zeros((T, 0), np.int64)
+    _, group = np.unique(np.column_stack([level_of, d]), axis=0, return_inverse=True)
+    bin_of, ref_hours = block_plan(factors, group.reshape(-1))
+    refs, deltas = [], []
+    for t in ref_hours:
+        l = int(level_of[t])
+        delta = None
+        if d.shape[1] and d[t].any():
+            delta = np.zeros(c.n, complex)
+            np.add.at(delta, bus_idx, 1j * d[t] * step_pu)
+        sol = rfs[l].solve(load_scale=factors[t], ysh_delta=delta, start=base_sol)
+        if not sol.success:
+            cold = rfs[l].solve(load_scale=factors[t], ysh_delta=delta)
+            sol = cold if cold.success else sol
+        refs.append(sol)
+        deltas.append(delta)
+    return dict(bin_of=bin_of, ref_hours=ref_hours, refs=refs, deltas=deltas, base=base_sol)
+
+
+def _bin_tasks(setup, chunk_size):
+    """Consecutive bins packed into tasks of about ``chunk_size`` intervals (whole bins, so a bin
+    is solved by the same arithmetic whichever way the work is split)."""
+    sizes = np.bincount(setup["bin_of"], minlength=len(setup["ref_hours"]))
+    tasks, now, count = [], [], 0
+    for b, k in enumerate(sizes):
+        now.append(b)
+        count += int(k)
+        if count >= chunk_size:
+            tasks.append(now)
+            now, count = [], 0
+    if now:
+        tasks.append(now)
+    return tasks
+
+
+def _empty_out(T):
+    out = {k: np.empty(T) for k in ("losses_mw", "v_min_pu", "v_max_pu", "mismatch_mva")}
+    out.update({k: np.empty(T, np.int64) for k in ("v_min_bus", "v_max_bus", "iterations", "worst_bus",
+                                                    "status")})
+    out["_outside"] = np.zeros(T, bool)
+    return out
+
+
+def _solve_bins(rfs, factors, level_of, setup, lo, hi, bins):
+    """The intervals of ``bins``: chord blocks from each bin's reference, a full Newton solve for
+    intervals the block does not accept. Returns ``(hours, out)`` (interval indices, arrays)."""
+    bin_of = setup["bin_of"]
+    hours = np.flatnonzero(np.isin(bin_of, bins))
+    out = _empty_out(len(hours))
+    pos = {int(t): j for j, t in enumerate(hours)}
+    n = rfs[0].c.n
+    for b in bins:
+        mine = np.flatnonzero(bin_of == b)
+        if not len(mine):
+            continue
+        rf = rfs[int(level_of[mine[0]])]
+        ref, delta = setup["refs"][b], setup["deltas"][b]
+        ref_hour = setup["ref_hours"][b]
+        y = rf.y0 if delta is None else rf.y_with(ysh_delta=delta)
+        pending = mine
+        step = block_columns(n)
+        # the hours a reference's blocks do not accept (most often: a generator on the other
+        # side of its reactive limit) get a reference of their own, their median hour, a few times
+        for round_ in range(REFERENCE_ROUNDS):
+            if not ref.success or not len(pending):
+                break
+            system = ChordSystem(rf, y, ref, factors[ref_hour])
+            rejected = []
+            for a in range(0, len(pending), step):
+                block = pending[a:a + step]
+                blk = solve_block(rf, y, ref, factors[block], system=system)
+                _record_block(out, np.array([pos[int(t)] for t in block]), blk, rf.c, lo, hi)
+                rejected.extend(block[~blk.accepted].tolist())
+            if len(rejected) == len(pending):
+                break                                   # no progress: one solve per hour
+            pending = np.array(rejected, np.int64)
+            if len(pending) and round_ + 1 < REFERENCE_ROUNDS:
+                mean = factors[pending].mean(axis=1)
+                ref_hour = int(pending[np.argsort(mean, kind="stable")[(len(pending) - 1) // 2]])
+                ref = rf.solve(load_scale=factors[ref_hour], ysh_delta=delta, start=ref)
+        start = ref if ref.success else (setup["refs"][b] if setup["refs"][b].success else setup["base"])
+        for t in pending:
+            sol = rf.solve(load_scale=factors[t], ysh_delta=delta, start=start)
+            _record(out, pos[int(t)], sol, rf.c, lo, hi)
+    return hours, out
+
+
+def _record_block(out, idx, blk, c, lo, hi):
+    """Record the accepted intervals of a chord block (columns of ``blk``) at rows ``idx``."""
+    ok = blk.accepted
+    idx, cols = idx[ok], np.flatnonzero(ok)
+    if not len(cols):
+        return
+    live = np.flatnonzero(c.alive)
+    vm = np.abs(blk.v[np.ix_(live, cols)])
+    a, b = np.argmin(vm, axis=0), np.argmax(vm, axis=0)
+    k = np.arange(len(cols))
+    out["losses_mw"][idx] = blk.losses_mw[cols]
+    out["v_min_pu"][idx] = vm[a, k]
+    out["v_max_pu"][idx] = vm[b, k]
+    out["v_min_bus"][idx] = c.bus_ids[live[a]]
+    out["v_max_bus"][idx] = c.bus_ids[live[b]]
+    out["iterations"][idx] = blk.iterations[cols]
+    out["worst_bus"][idx] = blk.worst_bus[cols]
+    out["mismatch_mva"][idx] = blk.mismatch_mva[cols]
+    out["status"][idx] = 0
+    out["_outside"][idx] = ((vm < lo[live, None] - 1e-9) | (vm > hi[live, None] + 1e-9)).any(axis=0)
 
 
 def _record(out, j, sol, c, lo, hi):
@@ -210,10 +343,10 @@ def verify_hours(cases, factors, level_of, duration_h, *, band, banks=(), rule="
     level_factors : ndarray [L, n], optional
         Each level's own factors; the level cases are solved at them for the level-based estimate.
     where, chunk_size, progress, client
-        With the schedule rule, run the intervals as chunks of ``chunk_size`` (each warm-started
-        from the first interval's solution) through :func:`planner.sweep.engine.run_chunks`
-        (``where`` = "serial", "local" or a Dask scheduler address); every choice gives the same
-        numbers. Default: one pass in this process, each interval warm-started from the one before.
+        With the schedule rule, run the bins of intervals as tasks of about ``chunk_size``
+        intervals (whole bins) through :func:`planner.sweep.engine.run_chunks` (``where`` =
+        "serial", "local" or a Dask scheduler address); default: every bin in this process. Every
+        choice gives identical numbers (the bins and their references are fixed before the split).
         The voltage rule is sequential by nature and always runs in this process.
     """
     cases = list(cases)
@@ -230,16 +363,19 @@ def verify_hours(cases, factors, level_of, duration_h, *, band, banks=(), rule="
         out, steps = _voltage_controlled(rfs, factors, level_of, duration_h, banks, rule, lo, hi, base_sol)
     elif rule == "schedule":
         steps = np.array([[b.steps_by_level[l] for b in banks] for l in level_of], np.int64).reshape(T, len(banks))
+        setup = _schedule_setup(rfs, factors, level_of, banks, steps, base_sol)
+        tasks = _bin_tasks(setup, chunk_size)
         if where is None and client is None:
-            out = _span(rfs, factors, level_of, banks, steps, lo, hi, 0, T, base_sol)
+            parts = [_solve_bins(rfs, factors, level_of, setup, lo, hi, range(len(setup["ref_hours"])))]
         else:
             from ..sweep.engine import run_chunks
-            bounds = [(a, min(a + chunk_size, T)) for a in range(0, T, max(1, int(chunk_size)))]
-            shared = dict(cases=cases, factors=factors, level_of=level_of, banks=banks, steps=steps, lo=lo, hi=hi,
-                          base=base_sol)
-            parts = run_chunks(_hour_chunk, bounds, shared=shared, where=where or "local", progress=progress,
+            shared = dict(cases=cases, factors=factors, level_of=level_of, setup=setup, lo=lo, hi=hi)
+            parts = run_chunks(_hour_chunk, tasks, shared=shared, where=where or "local", progress=progress,
                                client=client)
-            out = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
+        out = _empty_out(T)
+        for hrs, part in parts:
+            for k in out:
+                out[k][hrs] = part[k]
     else:
         raise ValueError(f"unknown control rule {rule!r}: use 'schedule' or a VoltageRule")
     labels = list(labels) if labels is not None else [""] * T

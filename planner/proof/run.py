@@ -17,6 +17,12 @@ from ..network.compile import compile_network
 from ..network.model import make_table
 
 CURVE_POINTS = 240          # points kept on a duration curve in the report
+# Sweeps up to this many bus-flows (buses x load flows, N-1 and hourly together) run in this
+# process unless a scheduler is named: starting a local Dask cluster and sending it the network
+# costs seconds, more than the whole sweep of a network this size (the 50-bus demo, 5 cases x
+# (8,760 hours + 100 outages), is 2.2 million bus-flows: about 3 s of one core in this process,
+# measured with tests/perf/bench_study_proof.py).
+IN_PROCESS_UP_TO = 10_000_000
 
 
 def plan_network(net, plan, level: str):
@@ -85,14 +91,47 @@ def prove_study(spec, net, cases, plans, proof, progress=None, scaled=None, clie
     ``cases``: the study's level cases (``.name``, ``.network`` scaled to the level); ``plans``:
     list of ``(alternative spec, PlanResult)``; ``proof``: the study's ProofSpec. The N-1 and
     hourly sweeps run where ``[sweep]`` says (this process, this machine's cores or a Dask
-    scheduler), or on ``client`` (a ``distributed.Client``) when given; every choice gives the
-    same numbers.
+    scheduler; unset: chosen by size, :func:`sweep_place`, and recorded in ``data["sweep"]``), or on
+    ``client`` (a ``distributed.Client``) when given; every choice gives the same numbers.
     """
     if client is None and (proof.outages is not None or proof.profile is not None):
-        from ..sweep.engine import sweep_client
-        with sweep_client(proof.scheduler or "local") as cl:
-            return _prove(spec, net, cases, plans, proof, progress, cl)
+        where, work = sweep_place(net, cases, plans, proof)
+        if where == "serial":
+            data, frames = _prove(spec, net, cases, plans, proof, progress, None)
+        else:
+            from ..sweep.engine import sweep_client
+            with sweep_client(where) as cl:
+                data, frames = _prove(spec, net, cases, plans, proof, progress, cl)
+                where = where if cl is not None else "serial"
+        data["sweep"] = {"where": where, "bus_flows": work, "chosen": proof.scheduler is None,
+                         "in_process_up_to": IN_PROCESS_UP_TO}
+        return data, frames
     return _prove(spec, net, cases, plans, proof, progress, client)
+
+
+def sweep_work(net, cases, plans, proof) -> int:
+    """Bus-flows of a study's N-1 and hourly sweeps: buses x (outages x their levels + profile
+    intervals) x (base case + plans). A count, so the choice it feeds is the same on every run."""
+    n = len(net.buses)
+    flows = 0
+    if proof.outages is not None:
+        o = proof.outages
+        outs = outage_list(net, kinds=o.elements, ids=o.ids, min_kv=o.min_kv)
+        flows += len(outs) * len(o.levels or [lc.name for lc in cases])
+    if proof.profile is not None:
+        flows += len(read_profile(proof.profile.file).start_h)
+    return int(n * flows * (1 + len(plans)))
+
+
+def sweep_place(net, cases, plans, proof):
+    """Where the sweeps run and their work: ``(where, bus_flows)``. A scheduler named in the study
+    (or by ``--scheduler``) is used as named; without one, sweeps of at most
+    :data:`IN_PROCESS_UP_TO` bus-flows run in this process ("serial") and larger ones on this
+    machine's cores ("local")."""
+    work = sweep_work(net, cases, plans, proof)
+    if proof.scheduler is not None:
+        return proof.scheduler, work
+    return ("serial" if work <= IN_PROCESS_UP_TO else "local"), work
 
 
 def _prove(spec, net, cases, plans, proof, progress, client):
@@ -107,11 +146,12 @@ def _prove(spec, net, cases, plans, proof, progress, client):
         outs = outage_list(net, kinds=o.elements, ids=o.ids, min_kv=o.min_kv)
         levels = o.levels or names
         say(f"N-1: {len(outs)} outages x {len(levels)} levels x {1 + len(plans)} cases")
-        kw = dict(band=o.band, bus_bands=o.bus_bands, ratings=o.ratings, screen=o.screen)
-        if client is not None:        # chunks of outages on the cluster (serial: in this process)
-            kw.update(client=client, chunk_size=proof.chunk_size)
-            if step:                  # the bar counts finished chunks of outages
-                kw.update(progress=lambda d, t: step(d, t))
+        kw = dict(band=o.band, bus_bands=o.bus_bands, ratings=o.ratings, screen=o.screen,
+                  chunk_size=proof.chunk_size)
+        # chunks of outages on the cluster, or in this process (the same chunks, the same numbers)
+        kw.update(client=client) if client is not None else kw.update(where="serial")
+        if step:                  # the bar counts finished chunks of outages
+            kw.update(progress=lambda d, t: step(d, t))
         base_res = {n: verify_n1(level_net[n], outs, **kw) for n in levels}
         out = {"band": list(o.band), "levels": levels, "outages": len(outs), "min_kv": o.min_kv,
                "elements": list(o.elements), "cases": {}}
@@ -210,9 +250,10 @@ def _hourly(spec, net, plans, proof, names, data, frames, say, client, step):
             band = (np.min([plan.bands[n][0] for n in names], axis=0), np.max([plan.bands[n][1] for n in names], axis=0))
         say(f"hourly: {case}, {len(prof.start_h)} intervals")
         bar = (lambda d, t: step(d, t)) if step else None
+        place = dict(client=client) if client is not None else dict(where="serial")
         res = verify_hours(ccases, f, level_of, prof.duration_h, band=band, banks=banks, rule=rule,
-                           labels=prof.labels, start_h=prof.start_h,
-                           client=client if rule == "schedule" else None, chunk_size=chunk, progress=bar)
+                           labels=prof.labels, start_h=prof.start_h, chunk_size=chunk, progress=bar,
+                           **(place if rule == "schedule" else {}))
         if plan is None:
             losses = plans[0][1].losses_before_mw if plans else {}
         else:

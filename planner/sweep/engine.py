@@ -24,7 +24,9 @@ Where the work runs (``where``):
 """
 from __future__ import annotations
 
+import hashlib
 import os
+import pickle
 import sys
 import time
 
@@ -121,10 +123,55 @@ def _call_with(fn, shared, task):
     return fn(shared, task)
 
 
+WORKER_WAIT_S = 60.0    # an emergency stop only: how long a sweep waits for a cluster's first worker
+
+
+_UNPACKED: dict = {}     # (token, thread) -> shared data, per worker (the last few sweeps' data)
+
+
+def _call_packed(fn, blob, token, task):
+    """Run one task on a worker with the sweep's shared data, unpickled once per worker thread:
+    the chunk functions keep working state (factorisations, solver caches) in it, which two
+    threads of one process (a cluster of thread workers) must not share."""
+    import threading
+    key = (token, threading.get_ident())
+    shared = _UNPACKED.get(key)
+    if shared is None:
+        if len(_UNPACKED) >= 8:
+            _UNPACKED.clear()
+        shared = _UNPACKED[key] = pickle.loads(blob)
+    return fn(shared, task)
+
+
+def _wait_for_a_worker(client):
+    """A broadcast to a cluster whose workers have not yet registered once hung (a LocalCluster
+    started inside a unit test): wait for one worker first; a scheduler without any worker is a
+    clear error after :data:`WORKER_WAIT_S`, not a hang. Which worker runs what never changes
+    the numbers."""
+    if client.scheduler_info().get("workers"):
+        return
+    try:
+        client.wait_for_workers(1, timeout=WORKER_WAIT_S)
+    except TimeoutError:
+        raise RuntimeError(f"the Dask scheduler {client.scheduler.address} has no worker "
+                           f"(waited {WORKER_WAIT_S:g} s): start workers or use --scheduler serial") from None
+
+
 def _run_dask(client, fn, tasks, shared, progress):
     from distributed import as_completed
-    shared_f = client.scatter(shared, broadcast=True) if shared is not None else None
-    futures = [client.submit(_call_with, fn, shared_f, t, pure=False) for t in tasks]
+    if shared is None:
+        futures = [client.submit(_call_with, fn, None, t, pure=False) for t in tasks]
+    else:
+        # The shared data travels as one pickled bytes object. Scattering the Python objects
+        # themselves made Dask walk them with its size estimator on every worker-to-worker
+        # copy; on a loaded machine that walk outlasted the copy's own timeout and the
+        # broadcast retried without end (seen as a hang in Client.scatter). Bytes are sized in
+        # constant time; each worker unpickles them once (token-keyed cache).
+        blob = pickle.dumps(shared, protocol=pickle.HIGHEST_PROTOCOL)
+        token = hashlib.sha256(blob).hexdigest()
+        _wait_for_a_worker(client)
+        blob_f = client.scatter(blob, broadcast=True, hash=False)
+        futures = [client.submit(_call_packed, fn, blob_f, token, t, pure=False) for t in tasks]
     index = {f.key: i for i, f in enumerate(futures)}
     out = [None] * len(tasks)
     done = 0

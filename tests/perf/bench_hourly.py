@@ -2,7 +2,9 @@
 
 Run: .venv/bin/python tests/perf/bench_hourly.py
 An invented year of hourly factors (daily and seasonal shape, fixed seed); prints the time of the
-serial run, and of the voltage-controlled rule (sequential by nature).
+serial run (the schedule rule: hours solved in blocks by chord steps, planner/hourly/batch.py), of
+the voltage-controlled rule (sequential by nature: one Newton solve per hour), of the same blocks
+as chunks, and on a two-worker cluster.
 """
 from __future__ import annotations
 
@@ -38,7 +40,7 @@ def main():
         dt, cpu = time.perf_counter() - t0, time.process_time() - c0
         results[name] = res
         print(f"{name:15}: {T} flows in {dt:.2f} s wall, {cpu:.2f} s CPU of this process "
-              f"({1e3 * cpu / T:.3f} ms CPU/flow), {res.iterations / T:.2f} Newton iterations per flow")
+              f"({1e3 * cpu / T:.3f} ms CPU/flow), {res.iterations / T:.2f} iterations per flow")
         print(f"                 {res.message}; lowest {res.lowest['v_pu']:.4f} pu at bus {res.lowest['bus']} "
               f"({res.lowest['when']})")
     try:
