@@ -214,7 +214,7 @@ def build_model(spec: StepSpec):
     return m
 
 
-def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, start_at_present: bool = False):
+def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5):
     """Build and solve one step, tightening the loss cuts until they are exact enough.
 
     The tangent cuts underestimate each square between tangent points. After each solve,
@@ -233,11 +233,10 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = 1e-5, s
     sol = prev = None
     rounds = []
     timed_out = False
-    # the first solve has no start: a start at the present point changes which of the
-    # near-equal solutions inside the gap a node-limited solve returns, and on the demo study
-    # that led to plans up to 1e-4 worse (see DEVELOPERS.md); later rounds start from the
-    # previous round's solution
-    start = present_start(m, spec) if start_at_present else None
+    # the first solve has no start (one at the present point changed which of the near-equal
+    # solutions inside the gap a node-limited solve returns: plans up to 1e-4 worse on the
+    # demo, see DEVELOPERS.md); later rounds start from the previous round's solution
+    start = None
     for _ in range(max_rounds):
         sol = solve_model(m, spec, solver, start=start)
         solves += 1
@@ -281,32 +280,6 @@ def _decisions(m):
 
 def _decision_values(m) -> list:
     return [(v, float(v.value)) for v in _decisions(m) if v.value is not None]
-
-
-def present_start(m, spec: StepSpec) -> list:
-    """A MIP start at the present point (no lever change), so every solve has an incumbent
-    at least as good as standing still. Units in service at every level count as fixed, the
-    rest as switched (the cheapest split, so a budget the present plan keeps still holds)."""
-    L, S = len(spec.levels), len(spec.unit_pu)
-    if not L:
-        return []
-    units = np.array([lev.cur_units for lev in spec.levels], float).reshape(L, S)
-    start = []
-    for s in range(S):
-        lo, hi = units[:, s].min(), units[:, s].max()
-        nf = lo if spec.allow_fixed[s] else 0.0
-        if not spec.continuous[s]:
-            nf = float(round(nf))
-        ns = float(round(hi - nf))
-        if ns and not spec.allow_switched[s]:
-            return []                       # the present point is not in this model: no start
-        start += [(m.nf[s], nf), (m.ns[s], ns), (m.z[s], float(nf + ns > 1e-9)), (m.zs[s], float(ns > 0))]
-        start += [(m.k[l, s], float(round(units[l, s] - nf))) for l in range(L)]
-    start += [(var, float(spec.levels[l].cur_exist[e])) for (l, e), var in m.e.items()]
-    start += [(var, float(np.clip(spec.levels[l].v_now[g], var.lb, var.ub))) for (l, g), var in m.v.items()]
-    start += [(var, float(np.clip(0.0, var.lb if var.lb is not None else -np.inf,
-                                  var.ub if var.ub is not None else np.inf))) for var in m.d.values()]
-    return start
 
 
 def _same_solution(a, b) -> bool:
