@@ -278,3 +278,22 @@ def test_random_corruption_raises_only_input_errors(tmp_path, edits):
         assert "\n" not in str(exc) and str(exc)
     else:
         assert len(net.buses) > 0
+
+
+def test_names_with_latin1_and_line_break_like_bytes_and_blank_lines_in_sections(tmp_path):
+    # str.splitlines would end a line at \x85 or \x0c: the reader must not, and must keep them in
+    # the name; blank and whitespace-only lines inside a section are skipped, line numbers kept
+    lines = lines_of(IEEE14)
+    i1 = next(i for i, t in enumerate(lines) if t.startswith("   1 "))
+    lines[i1] = lines[i1][:5] + "Sch\xf6n\x85ee\x0cX".ljust(12) + lines[i1][17:]
+    lines.insert(i1 + 1, "")
+    lines.insert(i1 + 2, "   \t ")
+    net = read_cdf(write_variant(tmp_path, lines))
+    assert net.buses.name[0] == "Sch\xf6n\x85ee\x0cX"
+    assert net.buses.name.dtype == object and net.loads.load_id.dtype == object
+    assert len(net.buses) == 14 and net.buses.bus.tolist() == list(range(1, 15))
+    # the error for a bad field after the inserted lines still names the file's own line number
+    j = next(i for i, t in enumerate(lines) if t.startswith("   5 "))
+    lines[j] = set_field(lines[j], 41, 49, "1.2.3")
+    with pytest.raises(InputError, match=f":{j + 1}: bus section, field 'load MW'"):
+        read_cdf(write_variant(tmp_path, lines))

@@ -55,8 +55,20 @@ def bus_mismatch(c: Compiled, y, v: np.ndarray, q_fixed: np.ndarray, scale: floa
 
 def branch_flows(c: Compiled, v: np.ndarray):
     """Complex power entering each branch at its from and to ends (pu)."""
-    yff, yft, ytf, ytt = c.branch_admittances()
+    yff, yft, ytf, ytt = _branch_admittances(c)
     vf, vt = v[c.f], v[c.t]
     s_from = vf * np.conj(yff * vf + yft * vt)
     s_to = vt * np.conj(ytf * vf + ytt * vt)
     return s_from, s_to
+
+
+def _branch_admittances(c: Compiled):
+    """``c.branch_admittances()``, kept on ``c`` while the branch data it is made from holds
+    (one load flow builds the result from them twice; repeated solves of one network reuse them)."""
+    key = (c.ys, c.bc, c.ratio, c.shift, c.tap_from)
+    hit = c._cache.get("flow_branch_admittances")
+    if hit is not None and all(a.shape == b.shape and np.array_equal(a, b) for a, b in zip(hit[0], key)):
+        return hit[1]
+    out = c.branch_admittances()
+    c._cache["flow_branch_admittances"] = (tuple(a.copy() for a in key), out)
+    return out

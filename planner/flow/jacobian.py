@@ -227,7 +227,11 @@ def _topology_key(y, free):
 
 
 class _ReducedSystem:
-    """Jacobian of one PV / PQ split, filled directly in the kept ordering."""
+    """Jacobian of one PV / PQ split, filled directly in the kept ordering.
+
+    Every Newton step refills one matrix in place (its values array, its structure kept), so
+    an iteration allocates no sparse structure and SuperLU is handed a matrix it needs not
+    check or copy."""
 
     def __init__(self, sym: JacobianSymbolic, keep_mag: np.ndarray):
         self.sym = sym
@@ -240,37 +244,44 @@ class _ReducedSystem:
         self.red_index = red_index
         self.y = None
         self._y_key = None
-        self._ycd = None
+        self._ycdj = None
         self._buf = None
+        self._jac = None
         self._built = False
 
     def _natural(self):
         """Structure of this split's Jacobian in its own (unpermuted) layout."""
         p = self.sym.full
-        return _restrict(p.indices, p.indptr, p.src, self.keep_full, self.size)
+        indices, indptr, src = _restrict(p.indices, p.indptr, p.src, self.keep_full, self.size)
+        return indices, indptr, _pair_layout(src, len(p.rows))
 
     def _build(self):
         sym = self.sym
         order = sym.order
         kept_perm = self.keep_full[order]                 # kept flag at each permuted position
         p = sym._permuted
-        self.indices, self.indptr, self.src = _restrict(p.indices, p.indptr, p.src, kept_perm, self.size)
+        self.indices, self.indptr, src = _restrict(p.indices, p.indptr, p.src, kept_perm, self.size)
+        self.src = _pair_layout(src, len(p.rows))
         # reduced index of the unknown at each reduced permuted position
         self.perm = self.red_index[order[kept_perm]]
         self._built = True
 
-    def _values(self, v: np.ndarray, dload_dvm: np.ndarray | None, src: np.ndarray,
-                ibus: np.ndarray | None = None) -> np.ndarray:
-        """Jacobian values at ``v`` gathered by ``src`` from the stacked derivative array."""
-        sym = self.sym
-        full = sym.full
+    def _derivatives(self, v: np.ndarray, dload_dvm: np.ndarray | None,
+                     ibus: np.ndarray | None = None) -> np.ndarray:
+        """:func:`derivative_pairs` at ``v`` as a float view, for gathers by ``src``."""
+        full = self.sym.full
         if self._y_key is not self.y:            # admittance values changed (shunts, taps)
             self._y_key = self.y
-            self._ycd = np.conj(self.y.data)
+            self._ycdj = -1j * np.conj(self.y.data)
         if self._buf is None:
-            self._buf = np.empty(4 * len(full.rows))
-        stacked_derivatives(self.y, self._ycd, v, full.diag_pos, full.rows, dload_dvm, self._buf, ibus)
-        return self._buf[src]
+            self._buf = np.empty(2 * len(full.rows), complex)
+        derivative_pairs(self.y, self._ycdj, v, full.diag_pos, full.rows, dload_dvm, self._buf, ibus)
+        return self._buf.view(np.float64)
+
+    def _values(self, v: np.ndarray, dload_dvm: np.ndarray | None, src: np.ndarray,
+                ibus: np.ndarray | None = None) -> np.ndarray:
+        """Jacobian values at ``v`` gathered by ``src`` (pair layout) from the derivatives."""
+        return np.take(self._derivatives(v, dload_dvm, ibus), src)
 
     def matrix(self, v: np.ndarray, dload_dvm: np.ndarray | None = None) -> tuple[sp.csc_matrix, np.ndarray]:
         """This split's Jacobian at ``v`` in the kept fill-reducing order, and that order
@@ -294,45 +305,58 @@ class _ReducedSystem:
             return lu.solve(rhs)
         if not self._built:
             self._build()
-        j = sp.csc_matrix((self._values(v, dload_dvm, self.src, ibus), self.indices, self.indptr),
-                          shape=(self.size, self.size))
-        lu = spla.splu(j, **_LU_ORDERED)
+        jac = self._jac
+        if jac is None:
+            jac = sp.csc_matrix((np.empty(len(self.src)), self.indices, self.indptr),
+                                shape=(self.size, self.size))
+            jac.has_canonical_format = True        # sorted, no duplicates: built so
+            self._jac = jac
+        # mode="clip": no bounds-check buffer (every index is valid by construction)
+        np.take(self._derivatives(v, dload_dvm, ibus), self.src, out=jac.data, mode="clip")
+        lu = spla.splu(jac, **_LU_ORDERED)
         x = np.empty_like(rhs)
         x[self.perm] = lu.solve(rhs[self.perm])
         return x
 
 
-def stacked_derivatives(y: sp.csr_matrix, ycd: np.ndarray, v: np.ndarray, diag_pos: np.ndarray,
-                        rows: np.ndarray, dload_dvm: np.ndarray | None, out: np.ndarray,
-                        ibus: np.ndarray | None = None) -> np.ndarray:
-    """``[Re dS/dVa, Re dS/dVm, Im dS/dVa, Im dS/dVm]`` (each aligned with ``y.data``) into ``out``.
+def derivative_pairs(y: sp.csr_matrix, ycdj: np.ndarray, v: np.ndarray, diag_pos: np.ndarray,
+                     rows: np.ndarray, dload_dvm: np.ndarray | None, out: np.ndarray,
+                     ibus: np.ndarray | None = None) -> np.ndarray:
+    """``[dS/dVa, dS/dVm]`` (complex, each aligned with ``y.data``) into ``out`` (2 nnz).
 
-    The same values as :func:`bus_derivatives` with fewer passes over the entries: with
-    ``t = V_i conj(Y_ij V_j)``, ``dS/dVa = -j t`` and ``dS/dVm = t / |V_j|`` off the diagonal.
-    ``ycd`` is ``conj(y.data)``; ``ibus`` is ``y @ v`` if already known. Entries in the column of a dead bus (0 V) are left at 0; the
-    Jacobian never uses them.
+    The same values as :func:`bus_derivatives` in fewer passes over the entries: off the
+    diagonal ``dS/dVa = -j V_i conj(Y_ij V_j)`` and ``dS/dVm = j dS/dVa / |V_j|``. ``ycdj`` is
+    ``-1j * conj(y.data)``; ``ibus`` is ``y @ v`` if already known. Entries in the column of a
+    dead bus (0 V) are left at 0 in ``dS/dVm``; the Jacobian never uses them. A float view of
+    ``out`` holds, for entry k, Re/Im dS/dVa at 2k, 2k+1 and Re/Im dS/dVm at 2 nnz + 2k, +1
+    (:func:`_pair_layout` maps the pattern's gather indices to it).
     """
-    nnz = len(ycd)
+    nnz = len(ycdj)
     cols = y.indices
+    d_va, d_vm = out[:nnz], out[nnz:]
     vm = np.abs(v)
     inv_vm = np.divide(1.0, vm, out=np.zeros_like(vm), where=vm > 0)
-    vc = np.conj(v)
-    t = v[rows] * ycd * vc[cols]
+    np.take(v, rows, out=d_va, mode="clip")
+    d_va *= ycdj
+    np.take(np.conj(v), cols, out=d_vm, mode="clip")
+    d_va *= d_vm
+    np.take(1j * inv_vm, cols, out=d_vm, mode="clip")
+    d_vm *= d_va
     i_conj = np.conj(y @ v if ibus is None else ibus)
-    s_inj = v * i_conj
-    np.copyto(out[:nnz], t.imag)
-    np.negative(t.real, out=out[2 * nnz:3 * nnz])
-    t *= inv_vm[cols]
-    np.copyto(out[nnz:2 * nnz], t.real)
-    np.copyto(out[3 * nnz:], t.imag)
-    dvm_diag = i_conj * v * inv_vm
+    v_ic = v * i_conj
+    d_va[diag_pos] += 1j * v_ic
+    diag = v_ic * inv_vm
     if dload_dvm is not None:
-        dvm_diag = dvm_diag + dload_dvm
-    out[diag_pos] -= s_inj.imag
-    out[2 * nnz + diag_pos] += s_inj.real
-    out[nnz + diag_pos] += dvm_diag.real
-    out[3 * nnz + diag_pos] += dvm_diag.imag
+        diag += dload_dvm
+    d_vm[diag_pos] += diag
     return out
+
+
+def _pair_layout(src: np.ndarray, nnz: int) -> np.ndarray:
+    """Gather indices into ``[Re dVa, Re dVm, Im dVa, Im dVm]`` blocks (the pattern's layout)
+    mapped to the float view of :func:`derivative_pairs`' output."""
+    block, k = np.divmod(src, nnz)
+    return 2 * k + (block & 1) * (2 * nnz) + (block >> 1)
 
 
 def _restrict(indices, indptr, src, keep, size):

@@ -46,6 +46,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from ..network.compile import PQ, PV, SLACK, Compiled, compile_network
+from .runtime import keep_freed_memory, one_blas_thread
 from .equations import bus_mismatch, injection, load_derivative, load_power
 from .jacobian import SymbolicCache
 from .result import FlowResult, FlowStatus, build_result
@@ -75,6 +76,9 @@ FAR_BELOW_BAND_PU = 0.15          # a voltage this far below its band minimum is
 LOSS_FACTOR = 5.0                 # losses above this x (DC estimate + 1 % of load) are suspect
 SAME_SOLUTION_PU = 1e-4
 MAX_ITER_CAP = 100_000
+# networks from this many buses solve with BLAS held to one thread (see planner.flow.runtime); on
+# smaller ones BLAS is hardly called and the switch would cost more than it saves
+ONE_BLAS_THREAD_FROM = 1000
 GIVE_UP_ITERS = 10                # an attempt still above its first mismatch after this many ends
 
 
@@ -148,14 +152,25 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
     >>> [solve_flow(net, symbolic=cache).iterations for _ in range(2)], cache.builds
     ([3, 3], 1)
     """
+    keep_freed_memory()      # once per process: iterations reuse memory instead of page-faulting
     c = compiled if compiled is not None else compile_network(net)
     tol = _check_tolerance(tol_mva, c.base_mva)
     max_iter = _check_max_iter(max_iter)
     if symbolic is None:
         # shared by every copy of this Compiled made with compile.replace (lever changes)
         symbolic = c._cache.setdefault("shared", {}).setdefault("flow_symbolic", SymbolicCache())
+    args = (c, tol, max_iter, enforce_q_limits, start, build_tables, continuation, check_plausibility,
+            symbolic)
+    if c.n < ONE_BLAS_THREAD_FROM:
+        return _solve(*args)
+    with one_blas_thread():
+        return _solve(*args)
+
+
+def _solve(c, tol, max_iter, enforce_q_limits, start, build_tables, continuation, check_plausibility,
+           symbolic) -> FlowResult:
     t0 = time.perf_counter()
-    y = c.ybus()
+    y = _admittance(c)
     ctx = _Context(c, y, tol, enforce_q_limits, symbolic)
     with np.errstate(all="ignore"):
         v = initial_voltage(c, start)
@@ -219,6 +234,18 @@ def solve_flow(net=None, *, compiled: Compiled | None = None, tol_mva: float | N
                         continuation_steps=steps, strategy=strategy)
 
 
+def _admittance(c: Compiled) -> sp.csr_matrix:
+    """``c.ybus()``, kept on ``c`` while its branch part and bus shunts are the same (repeated
+    solves of one network build it once; never modified by the solver)."""
+    yb = c.ybranch()                    # itself kept by compile while ratios and shifts hold
+    hit = c._cache.get("flow_ybus")
+    if hit is not None and hit[0] is yb and np.array_equal(hit[1], c.ysh):
+        return hit[2]
+    y = c.ybus()
+    c._cache["flow_ybus"] = (yb, c.ysh.copy(), y)
+    return y
+
+
 def _check_tolerance(tol_mva, base_mva) -> float:
     if tol_mva is None:
         return 1e-8
@@ -256,6 +283,8 @@ class _Context:
         c = self.c
         self.free = np.flatnonzero((c.kind != SLACK) & c.alive)
         self.sym = self.cache.get(self.y, self.free)
+        # voltage-dependent load anywhere (else the load is a constant of each Newton loop)
+        self.zip_loads = bool(np.any(c.s_load_i) or np.any(c.s_load_z))
 
 
 @dataclass
@@ -373,58 +402,85 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
     if short[k] > 0:
         return (f"bus {c.bus_ids[k]} at {vm[k]:.3f} pu, far below its band minimum "
                 f"{c.v_min[k]:.2f} pu")
-    z = 1.0 / c.ys
+    limit, ok_branch = _transfer_angles(c, cache)
     ang = np.angle(v)
     on_f = np.where(c.tap_from, c.shift, 0.0)
     on_t = np.where(c.tap_from, 0.0, c.shift)
-    delta = np.angle(np.exp(1j * ((ang[c.f] - on_f) - (ang[c.t] - on_t))))
-    limit = np.arctan2(z.imag, z.real)
-    ok_branch = (z.imag > 0) & alive[c.f] & alive[c.t]
+    # angle across each branch, wrapped to [-pi, pi)
+    delta = np.remainder((ang[c.f] - on_f) - (ang[c.t] - on_t) + np.pi, 2 * np.pi) - np.pi
     over = np.where(ok_branch, np.abs(delta) - limit, -np.inf)
     if len(over) and over.max() > 0:
         j = int(np.argmax(over))
         return (f"branch {c.branch_ids[j]} carries {np.rad2deg(abs(delta[j])):.1f} deg across it, beyond "
                 f"its maximum-transfer angle {np.rad2deg(limit[j]):.1f} deg")
     losses = float((injection(y, v).real * alive).sum() - (c.ysh.real * vm ** 2 * alive).sum())
-    estimate = _dc_loss_estimate(c, cache)
     load = float(np.abs(load_power(c, vm).real[alive]).sum())
+    if losses <= LOSS_FACTOR * 0.01 * load:
+        return None           # within the bound whatever the DC estimate (it is never negative)
+    estimate = _dc_loss_estimate(c, cache)
     if estimate is not None and losses > LOSS_FACTOR * (estimate + 0.01 * load):
         return (f"losses {losses * c.base_mva:.1f} MW, over {LOSS_FACTOR:g} x a DC estimate of "
                 f"{estimate * c.base_mva:.1f} MW plus 1 % of load")
     return None
 
 
+def _same_arrays(a: tuple, b: tuple) -> bool:
+    return len(a) == len(b) and all(x.shape == y.shape and np.array_equal(x, y) for x, y in zip(a, b))
+
+
+def _transfer_angles(c: Compiled, cache: SymbolicCache | None):
+    """Maximum-transfer angle of each branch (the angle of its series impedance) and whether it
+    applies (inductive, both ends live); kept in ``cache`` while impedances and live buses hold."""
+    key = (c.ys, c.f, c.t, c.alive)
+    hit = cache.extra.get("transfer") if cache is not None else None
+    if hit is not None and _same_arrays(hit[0], key):
+        return hit[1]
+    with np.errstate(all="ignore"):
+        z = 1.0 / c.ys
+        out = (np.arctan2(z.imag, z.real), (z.imag > 0) & c.alive[c.f] & c.alive[c.t])
+    if cache is not None:
+        cache.extra["transfer"] = (tuple(a.copy() for a in key), out)
+    return out
+
+
 def _dc_loss_estimate(c: Compiled, cache: SymbolicCache | None = None):
     """sum over branches of r |P_dc|^2 (pu), from a DC load flow; None if it cannot be made.
 
     The factorised DC matrix is kept in ``cache`` (valid while the branch impedances and the
-    slack buses are the same), so the check costs one triangular solve per load flow."""
+    slack buses are the same), and the estimate itself while the injections are, so the check
+    costs at most one triangular solve per load flow."""
     free = np.flatnonzero((c.kind != SLACK) & c.alive)
     fixed = np.flatnonzero((c.kind == SLACK) & c.alive)
-    key = (c.ys.tobytes(), c.f.tobytes(), c.t.tobytes(), free.tobytes())
+    key = (c.ys, c.f, c.t, free)
     with np.errstate(all="ignore"):
         hit = cache.extra.get("dc") if cache is not None else None
-        if hit is None or hit[0] != key:
+        if hit is None or not _same_arrays(hit[0], key):
             b, bser = _dc_matrix(c)
             try:
                 lu = spla.splu(b[free][:, free].tocsc()) if len(free) else None
             except RuntimeError:
                 lu = None
-            hit = (key, lu, b[free][:, fixed], bser)
+            hit = (tuple(a.copy() for a in key), lu, b[free][:, fixed], bser, {})
             if cache is not None:
                 cache.extra["dc"] = hit
-        _, lu, b_fx, bser = hit
+        _, lu, b_fx, bser, last = hit
         if lu is None:
             return None
         n = c.n
         p_shift = np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
         p = (c.s_gen - c.s_load_p - c.s_load_i - c.s_load_z).real - c.ysh.real - p_shift
         va = np.where(c.kind == SLACK, c.va_stored, 0.0)
+        if "p" in last and np.array_equal(last["p"], p) and np.array_equal(last["va"], va) \
+                and np.array_equal(last["shift"], c.shift) and np.array_equal(last["tap_from"], c.tap_from):
+            return last["estimate"]
+        va_in = va.copy()
         va[free] = lu.solve(p[free] - b_fx @ va[fixed])
         flow = bser * (va[c.f] - va[c.t] + np.where(c.tap_from, -c.shift, c.shift))
         r = (1.0 / c.ys).real
         est = float(np.nansum(np.where(r > 0, r * flow * flow, 0.0)))
-    return est if math.isfinite(est) else None
+        est = est if math.isfinite(est) else None
+        last.update(p=p, va=va_in, shift=c.shift.copy(), tap_from=c.tap_from.copy(), estimate=est)
+    return est
 
 
 # --- one schedule: Newton with limit rounds -------------------------------------------------
@@ -492,12 +548,20 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
     q_fixed = st.q_fixed
     diverged = FlowStatus.DIVERGED
 
-    s_sched = scale * c.s_gen + 1j * q_fixed     # as in bus_mismatch, with Y v kept for the Jacobian
+    # as in bus_mismatch, with Y v kept for the Jacobian; the constant-power part of the schedule
+    # is summed once, the voltage-dependent parts (if any) at each evaluation
+    s_fixed = scale * c.s_gen + 1j * q_fixed - scale * c.s_load_p
+    zip_loads = ctx.zip_loads
+    # positions of [P at free buses, Q at PQ buses] in the float view of a complex bus vector
+    pick = np.concatenate([2 * free, 2 * pq + 1])
 
     def residual(vv, vmm):
         ib = y @ vv
-        mis = vv * np.conj(ib) - s_sched + load_power(c, vmm, scale)
-        return np.concatenate([mis.real[free], mis.imag[pq]]), ib
+        mis = vv * np.conj(ib)
+        mis -= s_fixed
+        if zip_loads:
+            mis += scale * (c.s_load_i * vmm + c.s_load_z * vmm ** 2)
+        return np.take(mis.view(np.float64), pick), ib
 
     with np.errstate(all="raise", under="ignore"):
         try:
@@ -509,7 +573,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
         tiny = 0
         start_norm, local = None, 0
         while True:
-            norm = float(np.abs(F).max()) if F.size else 0.0
+            norm = max(float(F.max()), -float(F.min())) if F.size else 0.0   # max |F|, no temporary
             history.append(norm * c.base_mva)
             start_norm = norm if start_norm is None else start_norm
             if ctx.give_up and local >= GIVE_UP_ITERS and norm > start_norm:
@@ -526,7 +590,8 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             if iters >= max_iter:
                 return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
             try:
-                dx = -system.solve(v, load_derivative(c, vm, scale), F, ibus)
+                dx = system.solve(v, load_derivative(c, vm, scale) if zip_loads else None, F, ibus)
+                np.negative(dx, out=dx)
             except RuntimeError:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
@@ -543,8 +608,8 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             def trial(alpha):
                 va_new = va.copy()
                 vm_new = vm.copy()
-                va_new[free] += alpha * dx[:na]
-                vm_new[pq] += alpha * dx[na:]
+                va_new[free] += dx[:na] if alpha == 1.0 else alpha * dx[:na]
+                vm_new[pq] += dx[na:] if alpha == 1.0 else alpha * dx[na:]
                 v_new = vm_new * np.exp(1j * va_new)
                 try:
                     F_new, ib_new = residual(v_new, vm_new)

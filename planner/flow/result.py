@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from ..network.compile import PQ, SLACK, KIND_NAMES, Compiled
-from .equations import branch_flows, bus_mismatch, load_power
+from .equations import branch_flows, load_power
 
 __all__ = ["FlowStatus", "FlowResult", "build_result", "branch_flows", "generator_table"]
 
@@ -163,7 +163,10 @@ def build_result(c: Compiled, y, v, kind, q_fixed, at_limit, *, status, message,
 def _build(c, y, v, kind, q_fixed, at_limit, *, status, message, iterations, history, seconds,
            equations_solved, **extra) -> FlowResult:
     base = c.base_mva
-    mis = bus_mismatch(c, y, v, q_fixed)
+    vm = np.abs(v)
+    s_load = load_power(c, vm)
+    s_calc = v * np.conj(y @ v)
+    mis = s_calc - (c.s_gen + 1j * q_fixed - s_load)      # bus_mismatch, with its parts kept
     # only equations that were solved count for the worst bus (P at PV/PQ, Q at PQ)
     solved_p = (kind != SLACK) & c.alive
     solved_q = (kind == PQ) & c.alive
@@ -171,9 +174,6 @@ def _build(c, y, v, kind, q_fixed, at_limit, *, status, message, iterations, his
     worst = int(np.argmax(np.abs(err))) if c.n else 0
     s_from, s_to = branch_flows(c, v)
     loss = s_from + s_to
-    vm = np.abs(v)
-    s_load = load_power(c, vm)
-    s_calc = v * np.conj(y @ v)
     s_gen_bus = s_calc + s_load            # generation that balances each bus
     # buses whose Q is not solved for keep their scheduled values
     q_gen_bus = np.where(kind == PQ, c.s_gen.imag + q_fixed, s_gen_bus.imag)

@@ -166,7 +166,8 @@ def _is_standard(df, cols: dict, defaults: dict) -> bool:
     return (isinstance(df, pd.DataFrame) and list(df.columns) == list(cols)
             and isinstance(df.index, pd.RangeIndex) and df.index.start == 0 and df.index.step == 1
             and all(df[c].dtype == np.dtype(t) for c, t in cols.items())
-            and not any(df[c].isna().any() for c in defaults))
+            # integer and boolean columns cannot hold a missing value: only the others are checked
+            and not any(df[c].isna().any() for c in defaults if cols[c] not in ("int64", "bool")))
 
 
 @dataclass
