@@ -133,6 +133,7 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
     discrete_only = not len(pb.vset_bus) and not any(s.continuous for s in pb.sites) and \
         not np.any(pb.tap_step <= 0)
     rejections = 0
+    has_continuous = any(s.continuous for s in pb.sites)
 
     for it in range(1, options.max_iterations + 1):
         spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c, seeds=list(tried.values())[-_SEEDS:])
@@ -148,10 +149,24 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
             tried.pop(p.key(), None)
             tried[p.key()] = p           # most recent last
         cand = pb.settings_from(sol, cur, ev.flows)
+        # the model's own expected gain of this proposal (losses, capital, penalised rows): when
+        # it is below the acceptance tolerance, a smaller region cannot do better by the
+        # model's own account, so this is the last step (checked by AC if it expects any gain)
+        # instead of a long tail of shrinking, rejected steps
+        expected = _model_merit(pb, spec, cur, None, ev.flows) - _model_merit(pb, spec, cur, cand, ev.flows)
+        last = expected < _tolerance(pb, ev.merit)
         pred = dict(zip(names, map(float, sol.predicted_loss_pu * pb.base)))
         rec = dict(iteration=it, predicted_mw=pred, radius_v=r_v, radius_units=r_u)
         if cand.key() == cur.key():
             stop = "converged (no further change)"
+            log.append(StepRecord(accepted=False, merit=ev.merit, ac_mw=dict(zip(names, map(float, ev.losses_mw))),
+                                  violation=ev.violation_total, worst_violation=worst(ev), **rec))
+            if progress:
+                progress(log[-1])
+            break
+        last_stop = "converged (the model expects no gain above the tolerance)"
+        if last and (expected <= 0 or cand.key() in seen):
+            stop = last_stop
             log.append(StepRecord(accepted=False, merit=ev.merit, ac_mw=dict(zip(names, map(float, ev.losses_mw))),
                                   violation=ev.violation_total, worst_violation=worst(ev), **rec))
             if progress:
@@ -171,6 +186,12 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
                                   violation=new.violation_total, worst_violation=worst(new), **rec))
         if progress:
             progress(log[-1])
+        if last:
+            if accept:
+                cur, ev = cand, new
+                predicted, note = pred, f"predicted by the MILP step of iteration {it}"
+            stop = last_stop
+            break
         rejections = 0 if accept else rejections + 1
         if discrete_only and rejections >= 1:
             # the model cannot rank the nearby plans better than its own error: the AC-checked
@@ -194,10 +215,12 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
             r_c *= 0.5
             r_u = max(1, r_u // 2) if r_u > 1 else 0
             r_t = max(1, r_t // 2) if r_t > 1 else 0
-            if r_v < options.min_voltage_radius_pu and r_u == 0 and r_t == 0 and r_c < 1e-4:
-                stop = "converged (trust region collapsed)"
-                break
-            if r_u == 0 and not len(pb.vset_bus) and not len(pb.tap_br) and r_c < 1e-4:
+            # every lever's radius below a size that means something for it: whole units and
+            # tap steps at zero, setpoints below min_voltage_radius_pu, continuous banks below
+            # 1e-4 of a unit (only where there are such levers)
+            v_done = r_v < options.min_voltage_radius_pu or not len(pb.vset_bus)
+            c_done = r_c < 1e-4 or not has_continuous
+            if r_u == 0 and r_t == 0 and v_done and c_done:
                 stop = "converged (trust region collapsed)"
                 break
     if options.polish and not failed:
@@ -218,6 +241,38 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
     bound = plan_bound(pb, cur, final) if options.bound and not failed else {}
     return _result(pb, cur, before, final, predicted or {}, note, log, milps, status, "", stop,
                    not failed, t0, bound=bound, time_limited=time_limited)
+
+
+def _tolerance(pb: PlanProblem, merit: float) -> float:
+    """The smallest gain of the merit worth a step: the acceptance test's own tolerances."""
+    options = pb.options
+    return max(options.loss_tolerance_mw * max(1.0, float(pb.loss_weights().max())),
+               options.merit_rel_tolerance * abs(float(merit)))
+
+
+def _model_merit(pb: PlanProblem, spec, cur: Settings, to: Settings | None, flows) -> float:
+    """The step model's merit of ``to`` (model built at ``cur``; None: the model's own point,
+    no lever change): quadratic losses, capital and the penalised breaches of its linear limit
+    rows, as the MILP scores them (without its cuts and tie-break)."""
+    total = pb.capital_weight() * pb.capital(cur if to is None else to)
+    for l, lev in enumerate(spec.levels):
+        du = pb.lever_changes(l, cur, cur if to is None else to, flows[l])
+        if to is None:
+            du = np.zeros_like(du)
+        s = lev.d + lev.R @ du if len(lev.d) else np.zeros(0)
+        total += lev.weight * spec.base_mva * (float(s @ s) + lev.const)
+        breach = 0.0
+        rows = [(lev.v0, lev.dv, lev.v_lo, lev.v_hi), (lev.q0, lev.dq, lev.q_lo, lev.q_hi),
+                (lev.s0, lev.ds, None, lev.s_hi)] + list(lev.extra_rows or ())
+        for x0, slopes, lo, hi in rows:
+            if x0 is None or not len(x0):
+                continue
+            x = x0 + slopes @ du
+            if lo is not None:
+                breach += float(np.maximum(lo - x, 0.0).sum())
+            breach += float(np.maximum(x - hi, 0.0).sum())
+        total += spec.penalty * breach
+    return float(total)
 
 
 def _result(pb: PlanProblem, st: Settings, before: Evaluation, final: Evaluation, predicted, note, log, milps,

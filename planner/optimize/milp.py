@@ -335,8 +335,12 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_
     sol = prev = None
     rounds = []
     timed_out = False
+    # the first solve has no start (one at the present point changed which of the near-equal
+    # solutions inside the gap a node-limited solve returns: plans up to 1e-4 worse on the
+    # demo, see DEVELOPERS.md); later rounds start from the previous round's solution
+    start = None
     for _ in range(max_rounds):
-        sol = solve_model(m, spec, solver)
+        sol = solve_model(m, spec, solver, start=start)
         solves += 1
         timed_out = timed_out or sol.time_limited
         sol.time_limited = timed_out
@@ -356,6 +360,9 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_
                     gap += excess * lev.weight      # MW x weight
                     b.cuts.add(b.w[k] >= 2.0 * sk * b.s[k] - sk * sk)
                     added = True
+        # the next round starts from this solution: still feasible after the added cuts once
+        # HiGHS completes the continuous columns (its partial-start completion)
+        start = _decision_values(m)
         same = prev is not None and _same_solution(prev, sol)
         # HiGHS holds each cut only to its feasibility tolerance (1e-7), so a tiny gap remains
         # cuts closer than half the MILP's own optimality gap cannot change what it may return
@@ -364,6 +371,17 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_
             break
         prev = sol
     return sol, solves, rounds
+
+
+def _decisions(m):
+    """The lever columns of a step model (integers and setpoints): a MIP start fixes these and
+    leaves the loss and slack columns for HiGHS to complete."""
+    for comp in (m.z, m.zs, m.nf, m.ns, m.k, m.v, m.e, m.d):
+        yield from comp.values()
+
+
+def _decision_values(m) -> list:
+    return [(v, float(v.value)) for v in _decisions(m) if v.value is not None]
 
 
 def _same_solution(a, b) -> bool:
@@ -430,11 +448,15 @@ def deterministic_options(spec) -> dict:
             "mip_heuristic_effort": 0.01}
 
 
-def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution:
+def solve_model(m, spec: StepSpec, solver=None, time_limit=None, start: list | None = None) -> StepSolution:
     """Solve with HiGHS and read the solution back as arrays (integers rounded). The node limit
-    bounds the work; the time limit is only an emergency stop, recorded in the solution."""
+    bounds the work; the time limit is only an emergency stop, recorded in the solution.
+    ``start``: values of some columns ([(Pyomo variable, value)]) handed to HiGHS as a MIP start
+    (HiGHS fixes them and completes the others; an infeasible start is ignored)."""
     _load()
     solver = solver or new_solver()
+    if start:
+        _with_start(solver, start)
     try:
         res = solver.solve(m, load_solutions=False,
                            time_limit=time_limit if time_limit is not None else spec_time_limit(spec),
@@ -478,6 +500,24 @@ def solve_model(m, spec: StepSpec, solver=None, time_limit=None) -> StepSolution
         pred.append(float(s @ s + lev.const))
     return StepSolution(True, status, fixed, switched, steps, exist, vset, tap, np.array(pred),
                         float(pyo.value(m.objective)) + offset, timed_out, float(bound) + offset)
+
+
+def _with_start(solver, start: list):
+    """Hand ``start`` to HiGHS just before its next run (after Pyomo has brought the persistent
+    model up to date, so the column numbers are current). Pyomo's HiGHS interface has no MIP
+    start option; this uses its persistent highspy model."""
+    run = type(solver)._solve
+
+    def _solve():
+        del solver._solve                     # one run only
+        h = getattr(solver, "_solver_model", None)
+        cols = getattr(solver, "_pyomo_var_to_solver_var_map", {})
+        pairs = sorted((cols[id(v)], x) for v, x in start if id(v) in cols)
+        if h is not None and pairs:
+            idx = np.array([p[0] for p in pairs], np.int32)
+            h.setSolution(len(idx), idx, np.array([p[1] for p in pairs], float))
+        return run(solver)
+    solver._solve = _solve
 
 
 def spec_time_limit(spec) -> float:

@@ -242,8 +242,10 @@ class PlanProblem:
         # but never exclude the present point where it is inside the band itself (or a step
         # that only moves back inside the margin would look better than it is)
         lo_m, hi_m = vmin + self.v_margin[l][0], vmax - self.v_margin[l][1]
-        vmin = np.where(vm >= vmin, np.minimum(lo_m, vm), lo_m)
-        vmax = np.where(vm <= vmax, np.maximum(hi_m, vm), hi_m)
+        # (inside = within the AC check's own 1e-6 pu tolerance: a bus on the band's edge that
+        # the AC check passes must not pay the model's penalty at the present point)
+        vmin = np.where(vm >= vmin - 1e-6, np.minimum(lo_m, vm), lo_m)
+        vmax = np.where(vm <= vmax + 1e-6, np.maximum(hi_m, vm), hi_m)
         near = c.alive & ((vm - reach <= vmin + 1e-3) | (vm + reach >= vmax - 1e-3))
         near[self.vset_bus] = False   # held by the setpoint bounds directly
         v_rows = np.flatnonzero(near)

@@ -22,6 +22,9 @@ Two cases compare whole processes, as a user meets them:
     The tool's process (import, build, plan) against the reduced-space SLSQP reference with
     exact adjoint gradients (``python -m reference.schedule 4``), both timed whole; the
     ratio column is tool / SLSQP (target <= 0.5) and the losses must agree to 1e-4 relative.
+    A second line times the classic full-space SLSQP (``python -m reference.full_schedule 4``:
+    angles, magnitudes and generator outputs as variables, power balance as equalities, exact
+    dense Jacobians) as a whole process too, and prints both ratios.
   * grid10k (--scale): a 10,000-bus meshed grid (planner.network.synthetic.meshed_grid 100 x
     100, seed 0, loads x 1.5 so that 49 buses sit below 0.95 pu), 200 candidate sites (the
     lowest-voltage load buses, 6 x 5 Mvar each), at most 20 new sites, voltage band
@@ -295,6 +298,17 @@ def ring120():
                     f"({'ok' if rel <= 1e-4 else 'over'} <= 1e-4)")
     print(f"{'':<38} inside the tool's process: plan {tool['secs']:.2f} s wall, {tool['cpu']:.2f} s CPU; "
           f"SLSQP process {rcpu:.2f} s CPU, {rpeak:.0f} MB; CPU ratio {cpu / rcpu:.2f}", flush=True)
+    # the classic full-space formulation (tests/reference/full_schedule.py): angles, magnitudes
+    # and generator outputs as variables, power balance as equality constraints, exact dense
+    # Jacobians; started from the Newton solution at the file setpoints
+    fout, fwall, fcpu, fpeak = reference_process(["reference.full_schedule", "4"])
+    f_losses, f_nit = float(fout.split()[0]), int(fout.split()[1])
+    frel = (tool["value"] - f_losses) / f_losses
+    print(f"{'':<38} full-space SLSQP process: {fwall:.2f} s wall, {fcpu:.2f} s CPU, {f_nit} SLSQP iterations, "
+          f"{f_losses:.6f} MW (tool {frel:+.1e} rel), {fpeak:.0f} MB", flush=True)
+    print(f"{'':<38} whole-process ratios, tool / reference: vs full-space SLSQP {wall / fwall:.2f} "
+          f"({'ok' if wall <= 0.5 * fwall else 'over'} <= 0.5), vs reduced-space SLSQP {wall / rwall:.2f}; "
+          f"CPU {cpu / fcpu:.2f} / {cpu / rcpu:.2f}", flush=True)
 
 
 def grid10k():
