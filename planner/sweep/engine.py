@@ -28,6 +28,7 @@ import hashlib
 import os
 import pickle
 import sys
+import threading
 import time
 
 _LOCAL = None          # a worker process's copy of ``shared`` (process-pool fallback)
@@ -133,7 +134,6 @@ def _call_packed(fn, blob, token, task):
     """Run one task on a worker with the sweep's shared data, unpickled once per worker thread:
     the chunk functions keep working state (factorisations, solver caches) in it, which two
     threads of one process (a cluster of thread workers) must not share."""
-    import threading
     key = (token, threading.get_ident())
     shared = _UNPACKED.get(key)
     if shared is None:
@@ -162,11 +162,12 @@ def _run_dask(client, fn, tasks, shared, progress):
     if shared is None:
         futures = [client.submit(_call_with, fn, None, t, pure=False) for t in tasks]
     else:
-        # The shared data travels as one pickled bytes object. Scattering the Python objects
-        # themselves made Dask walk them with its size estimator on every worker-to-worker
-        # copy; on a loaded machine that walk outlasted the copy's own timeout and the
-        # broadcast retried without end (seen as a hang in Client.scatter). Bytes are sized in
-        # constant time; each worker unpickles them once (token-keyed cache).
+        # The shared data travels as one pickled bytes object. The chunk functions keep working
+        # state (factorisations) inside the shared dict, and Dask hands tasks the stored object
+        # itself: scattering the dict let a later, equal sweep reuse a mutated copy that then
+        # had to be serialised to reach the other worker (seen as a hang in Client.scatter).
+        # Bytes cannot be mutated and are sized in constant time; each worker thread unpickles
+        # its own copy once (_call_packed).
         blob = pickle.dumps(shared, protocol=pickle.HIGHEST_PROTOCOL)
         token = hashlib.sha256(blob).hexdigest()
         _wait_for_a_worker(client)
