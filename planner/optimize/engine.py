@@ -136,7 +136,7 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
     has_continuous = any(s.continuous for s in pb.sites)
 
     for it in range(1, options.max_iterations + 1):
-        spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c, seeds=list(tried.values())[-_SEEDS:])
+        spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c, seeds=list(tried.values())[-_SEEDS:], local=it > 1)
         sol, solves, rounds = solve_step(spec)
         milps += solves
         time_limited = time_limited or sol.time_limited

@@ -82,6 +82,13 @@ class Options:
     max_polish_flows: int = 400           # AC load flows the final search may run
     search_checks: int = 6                # moves AC-checked per batch of the final search (best first)
     mip_gap: float = 5e-4
+    # after the first step (which places the banks from the whole range): at most this many
+    # sites opened or closed per step (None: no limit; a move of a bank is 2) ...
+    site_radius: int | None = 2
+    # ... and those steps' MILPs solved to this fraction of ``mip_gap``: they are small, and the
+    # stop rule (the model's expected gain against ``merit_rel_tolerance``) only sees gains
+    # larger than the gap
+    local_gap_ratio: float = 0.1
     max_nodes: int = 500                  # HiGHS branch-and-bound nodes per MILP solve: the work bound
     time_limit_s: float = 120.0           # emergency stop per MILP solve; when it fires the result says so
     bound: bool = True                    # compute the relaxation bound and gap of the final plan

@@ -293,7 +293,9 @@ class PlanProblem:
                                to.vset[l] - np.abs(flow.v[self.vset_bus]), to.ratio[l] - st.ratio[l]])
 
     def step_spec(self, st: Settings, flows, radius_v, radius_units, radius_tap, radius_cont=None,
-                  seeds=()) -> StepSpec:
+                  seeds=(), local=False) -> StepSpec:
+        """The MILP data of one step at ``st``. ``local``: a step after the first, which moves at
+        most ``Options.site_radius`` sites and is solved to ``Options.local_gap_ratio`` of the gap."""
         if radius_cont is None:
             radius_cont = float(radius_units)
         L = len(self.levels)
@@ -323,8 +325,13 @@ class PlanProblem:
             tap_step=step, tap_lo=tap_lo, tap_hi=tap_hi,
             unit_radius=int(radius_units), v_radius=float(radius_v), tap_radius=tap_radius,
             tangent_points=self.options.tangent_points, penalty=self.penalty(),
-            levels=levels, time_limit=self.options.time_limit_s, mip_gap=self.options.mip_gap,
+            levels=levels, time_limit=self.options.time_limit_s,
+            mip_gap=self.options.mip_gap * (self.options.local_gap_ratio if local else 1.0),
             max_nodes=self.options.max_nodes,
+            site_radius=self.options.site_radius if local else None,
+            used_sites=(st.fixed + st.switched) > 0,
+            # several levels: the refinement keeps the first round's sites (see milp.solve_step)
+            keep_sites_in_refinement=L > 1,
             seeds=[np.array([self.lever_changes(l, st, p, flows[l]) for l in range(L)]) for p in seeds
                    if p.key() != st.key()],
         )

@@ -51,6 +51,23 @@ def candidate_moves(pb: PlanProblem, st: Settings):
                     n.steps[l, s] += dlt
                     if 0 <= n.steps[l, s] <= n.switched[s]:
                         yield n
+        if L > 1 and st.fixed[s] >= 1 and "switched" in site.kinds:
+            # a fixed unit made switched and turned off at one level: alone, each half of
+            # this move only costs (more capital, or a unit off where the plan wants it on)
+            for l in range(L):
+                n = st.copy()
+                n.fixed[s] -= 1
+                n.switched[s] += 1
+                n.steps[:, s] += 1
+                n.steps[l, s] -= 1
+                yield n
+        if st.switched[s] and st.steps[:, s].min() >= 1 and "fixed" in site.kinds:
+            # a switched unit in service at every level made fixed: the same losses for less
+            n = st.copy()
+            n.fixed[s] += 1
+            n.switched[s] -= 1
+            n.steps[:, s] -= 1
+            yield n
         # the site dropped
         n = st.copy()
         n.fixed[s] = n.switched[s] = 0
