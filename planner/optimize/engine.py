@@ -122,6 +122,8 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
     r_u = max([s.max_units for s in pb.sites] + list(pb.exist_max) + [1])
     r_t = options.tap_radius_steps
     r_c = float(r_u)      # continuous bank sizes: a real-valued radius in units
+    # sites opened or closed per step after the first (the first places the banks from nothing)
+    r_s = options.site_radius
     milps = 0
     predicted, note = None, "no step changed the plan"
     seen = {cur.key(): ev.merit}
@@ -136,7 +138,8 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
     has_continuous = any(s.continuous for s in pb.sites)
 
     for it in range(1, options.max_iterations + 1):
-        spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c, seeds=list(tried.values())[-_SEEDS:], local=it > 1)
+        spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c, seeds=list(tried.values())[-_SEEDS:],
+                            local=it > 1, radius_sites=r_s if it > 1 else None)
         sol, solves, rounds = solve_step(spec)
         milps += solves
         time_limited = time_limited or sol.time_limited
@@ -201,6 +204,10 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
         if accept:
             gain = ev.merit - new.merit
             loss_change = float(np.abs(new.losses_mw - ev.losses_mw).max())
+            if it > 1 and r_s and np.array_equal(_sites(cand), _sites(cur)):
+                # a step free to move sites kept them: later steps only size and set the banks
+                # (the final search still AC-checks moves of a bank to any candidate bus)
+                r_s = 0
             cur, ev = cand, new
             predicted, note = pred, f"predicted by the MILP step of iteration {it}"
             if loss_change < options.loss_tolerance_mw and \
@@ -215,6 +222,7 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
             r_c *= 0.5
             r_u = max(1, r_u // 2) if r_u > 1 else 0
             r_t = max(1, r_t // 2) if r_t > 1 else 0
+            r_s = r_s // 2 if r_s else r_s
             # every lever's radius below a size that means something for it: whole units and
             # tap steps at zero, setpoints below min_voltage_radius_pu, continuous banks below
             # 1e-4 of a unit (only where there are such levers)
@@ -241,6 +249,11 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
     bound = plan_bound(pb, cur, final) if options.bound and not failed else {}
     return _result(pb, cur, before, final, predicted or {}, note, log, milps, status, "", stop,
                    not failed, t0, bound=bound, time_limited=time_limited)
+
+
+def _sites(st: Settings) -> np.ndarray:
+    """Which candidate sites hold units."""
+    return (st.fixed + st.switched) > 0
 
 
 def _tolerance(pb: PlanProblem, merit: float) -> float:

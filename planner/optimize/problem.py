@@ -293,9 +293,10 @@ class PlanProblem:
                                to.vset[l] - np.abs(flow.v[self.vset_bus]), to.ratio[l] - st.ratio[l]])
 
     def step_spec(self, st: Settings, flows, radius_v, radius_units, radius_tap, radius_cont=None,
-                  seeds=(), local=False) -> StepSpec:
-        """The MILP data of one step at ``st``. ``local``: a step after the first, which moves at
-        most ``Options.site_radius`` sites and is solved to ``Options.local_gap_ratio`` of the gap."""
+                  seeds=(), local=False, radius_sites=None) -> StepSpec:
+        """The MILP data of one step at ``st``. ``local``: a step after the first, solved to
+        ``Options.local_gap_ratio`` of the MILP gap; ``radius_sites``: at most this many sites
+        opened or closed (None: no limit)."""
         if radius_cont is None:
             radius_cont = float(radius_units)
         L = len(self.levels)
@@ -328,7 +329,7 @@ class PlanProblem:
             levels=levels, time_limit=self.options.time_limit_s,
             mip_gap=self.options.mip_gap * (self.options.local_gap_ratio if local else 1.0),
             max_nodes=self.options.max_nodes,
-            site_radius=self.options.site_radius if local else None,
+            site_radius=None if radius_sites is None else int(radius_sites),
             used_sites=(st.fixed + st.switched) > 0,
             # several levels: the refinement keeps the first round's sites (see milp.solve_step)
             keep_sites_in_refinement=L > 1,
