@@ -203,22 +203,24 @@ class JacobianSymbolic:
     def set_order_from(self, keep_full: np.ndarray, reduced_order: np.ndarray) -> None:
         """Adopt the ordering of the first factorised split for the full unknown set.
 
-        ``reduced_order`` lists reduced indices in elimination order. Each |V| unknown that the
-        split leaves out (a PV bus) is placed right after its bus's angle: it couples to the
-        same neighbours, so the full ordering keeps the fill of the one the LU chose.
+        ``reduced_order`` lists reduced indices in elimination order. Buses are taken in the
+        order their first unknown appears there; each bus's |V| unknown comes right after the
+        *next* bus's angle (angle 1, angle 2, |V| 1, angle 3, |V| 2, ...). The angle and |V| of a
+        bus couple to the same neighbours, so this keeps the fill of the order the LU chose
+        (measured: the same number of entries in L + U on ring-tied standard cases), but it
+        stops SuperLU from gathering the two into a two-column supernode: for each of those its
+        triangular solves call dense BLAS, whose fixed cost per call exceeds the arithmetic of a
+        2 x 2 block. Split, the transposed triangular solve took a third less time on 10,000-bus
+        ring-tied standard cases and the factorisation no more.
         """
         m = self.m
-        full_of_red = np.flatnonzero(keep_full)
-        seq = full_of_red[reduced_order]
-        pos = np.empty(len(seq), np.int64)
-        pos[:] = np.arange(len(seq)) * 2
-        missing = np.flatnonzero(~keep_full)             # full indices m + i of left-out |V|
-        angle_pos = np.empty(2 * m, np.int64)
-        angle_pos[seq] = pos
-        extra_pos = angle_pos[missing - m] + 1
-        keys = np.concatenate([pos, extra_pos])
-        items = np.concatenate([seq, missing])
-        self.order = items[np.argsort(keys, kind="stable")]
+        seq = np.flatnonzero(keep_full)[reduced_order]        # full indices in elimination order
+        bus = np.where(seq < m, seq, seq - m)
+        _, first = np.unique(bus, return_index=True)          # first position of each bus
+        rank = np.empty(m, np.int64)
+        rank[np.argsort(first, kind="stable")] = np.arange(m)
+        keys = np.concatenate([2 * rank, 2 * rank + 3])       # angles, then |V| one bus later
+        self.order = np.argsort(keys, kind="stable")
         self._permuted = self.full.permuted(self.order)
 
 
@@ -262,6 +264,9 @@ class _ReducedSystem:
         p = sym._permuted
         self.indices, self.indptr, src = _restrict(p.indices, p.indptr, p.src, kept_perm, self.size)
         self.src = _pair_layout(src, len(p.rows))
+        # the transpose's structure, for the factorisation the solver uses (see solve)
+        self.t_indices, self.t_indptr, t_src = _transposed(self.indices, self.indptr, src, self.size)
+        self.t_src = _pair_layout(t_src, len(p.rows))
         # reduced index of the unknown at each reduced permuted position
         self.perm = self.red_index[order[kept_perm]]
         self._built = True
@@ -305,17 +310,23 @@ class _ReducedSystem:
             return lu.solve(rhs)
         if not self._built:
             self._build()
-        jac = self._jac
-        if jac is None:
-            jac = sp.csc_matrix((np.empty(len(self.src)), self.indices, self.indptr),
-                                shape=(self.size, self.size))
-            jac.has_canonical_format = True        # sorted, no duplicates: built so
-            self._jac = jac
+        jac_t = self._jac
+        if jac_t is None:
+            jac_t = sp.csc_matrix((np.empty(len(self.t_src)), self.t_indices, self.t_indptr),
+                                  shape=(self.size, self.size))
+            jac_t.has_canonical_format = True      # sorted, no duplicates: built so
+            self._jac = jac_t
+        # J^T is factorised and J x = b solved as (J^T)^T x = b: the same factors transposed
+        # (the pattern is symmetric, the pivots stay on the diagonal, so the same fill and work),
+        # but SuperLU's transposed triangular solves run in its own loops, while the plain ones
+        # call dense BLAS on every supernode, which for the many tiny supernodes of a power
+        # network costs more than the arithmetic: half the solve time on 10,000-bus ring-tied
+        # standard cases (measured, scipy 1.17 with its OpenBLAS).
         # mode="clip": no bounds-check buffer (every index is valid by construction)
-        np.take(self._derivatives(v, dload_dvm, ibus), self.src, out=jac.data, mode="clip")
-        lu = spla.splu(jac, **_LU_ORDERED)
+        np.take(self._derivatives(v, dload_dvm, ibus), self.t_src, out=jac_t.data, mode="clip")
+        lu = spla.splu(jac_t, **_LU_ORDERED)
         x = np.empty_like(rhs)
-        x[self.perm] = lu.solve(rhs[self.perm])
+        x[self.perm] = lu.solve(rhs[self.perm], trans="T")
         return x
 
 
@@ -357,6 +368,13 @@ def _pair_layout(src: np.ndarray, nnz: int) -> np.ndarray:
     mapped to the float view of :func:`derivative_pairs`' output."""
     block, k = np.divmod(src, nnz)
     return 2 * k + (block & 1) * (2 * nnz) + (block >> 1)
+
+
+def _transposed(indices, indptr, src, size):
+    """CSC structure (rows sorted) and gather indices of the transpose of a CSC structure."""
+    m = sp.csc_matrix((src + 1, indices, indptr), shape=(size, size)).T.tocsc()
+    m.sort_indices()
+    return m.indices.astype(np.int32), m.indptr.astype(np.int32), m.data - 1
 
 
 def _restrict(indices, indptr, src, keep, size):
