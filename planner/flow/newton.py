@@ -197,7 +197,7 @@ def _solve(c, tol, max_iter, enforce_q_limits, start, build_tables, continuation
     ctx.give_up = False
     total = iters
     if status == FlowStatus.CONVERGED and check_plausibility:
-        reason = implausible(c, y, v1, symbolic)
+        reason = implausible(c, y, v1, symbolic, ibus=ctx.ibus_at(v1))
         if reason is not None:
             status, message = FlowStatus.SUSPECT, f"solution looks inoperable: {reason}"
     if continuation and status != FlowStatus.CONVERGED:
@@ -227,7 +227,8 @@ def _solve(c, tol, max_iter, enforce_q_limits, start, build_tables, continuation
         message += ("; generators at bus " + ", ".join(str(b) for b in c.bus_ids[st1.oscillating])
                     + " flip-flopped between PV and their limit and are held at the limit")
     seconds = time.perf_counter() - t0
-    return build_result(c, y, v1, st1.kind, st1.q_fixed, st1.at_limit, status=status, message=message,
+    return build_result(c, y, v1, st1.kind, st1.q_fixed, st1.at_limit, ibus=ctx.ibus_at(v1),
+                        status=status, message=message,
                         iterations=total, history=history, seconds=seconds, build_tables=build_tables,
                         equations_solved=status in (FlowStatus.CONVERGED, FlowStatus.SUSPECT),
                         oscillating_buses=[int(b) for b in c.bus_ids[st1.oscillating]],
@@ -278,6 +279,7 @@ class _Context:
     enforce: bool
     cache: SymbolicCache
     give_up: bool = False     # end an attempt that makes no progress (another start follows)
+    last: tuple | None = None  # (v, Y v) at the latest Newton point
 
     def __post_init__(self):
         c = self.c
@@ -285,6 +287,10 @@ class _Context:
         self.sym = self.cache.get(self.y, self.free)
         # voltage-dependent load anywhere (else the load is a constant of each Newton loop)
         self.zip_loads = bool(np.any(c.s_load_i) or np.any(c.s_load_z))
+
+    def ibus_at(self, v):
+        """``Y v`` if the latest Newton point is ``v`` (the same array), else None."""
+        return self.last[1] if self.last is not None and self.last[0] is v else None
 
 
 @dataclass
@@ -384,7 +390,8 @@ def dc_angles(c: Compiled, va_slack: np.ndarray, spread_imbalance: bool = False,
 
 # --- plausibility ---------------------------------------------------------------------------
 
-def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = None) -> str | None:
+def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = None,
+                ibus: np.ndarray | None = None) -> str | None:
     """Why a converged point looks like an inoperable (low-voltage) solution, or None.
 
     Three tests (rules of the trade, common practice): a live bus more than
@@ -392,6 +399,7 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
     impedance exceeds the impedance angle ``atan2(x, r)``, past which the power it delivers
     falls as the angle grows (the far side of the nose of its transfer curve); total losses more
     than ``LOSS_FACTOR`` times a DC estimate (``sum r P_dc^2``) plus 1 % of the load.
+    ``ibus`` is ``Y v`` if the caller has it.
     """
     alive = c.alive
     if not alive.any():
@@ -413,7 +421,8 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
         j = int(np.argmax(over))
         return (f"branch {c.branch_ids[j]} carries {np.rad2deg(abs(delta[j])):.1f} deg across it, beyond "
                 f"its maximum-transfer angle {np.rad2deg(limit[j]):.1f} deg")
-    losses = float((injection(y, v).real * alive).sum() - (c.ysh.real * vm ** 2 * alive).sum())
+    s_inj = injection(y, v) if ibus is None else v * np.conj(ibus)
+    losses = float((s_inj.real * alive).sum() - (c.ysh.real * vm ** 2 * alive).sum())
     load = float(np.abs(load_power(c, vm).real[alive]).sum())
     if losses <= LOSS_FACTOR * 0.01 * load:
         return None           # within the bound whatever the DC estimate (it is never negative)
@@ -494,8 +503,11 @@ def _solve_schedule(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, his
     iters = 0
     status, message = FlowStatus.DIVERGED, ""
 
-    def early_check(vv, margin):
-        return _update_limits(c, y, vv, st, scale, margin=margin)
+    def early_check(vv, margin, ibus):
+        changed = _update_limits(c, y, vv, st, scale, margin=margin, ibus=ibus)
+        if changed:
+            ctx.last = None                   # vv may have been changed in place
+        return changed
 
     for _ in range(MAX_LIMIT_ROUNDS + 1):
         v, iters, status, message = _newton(ctx, v, st, scale, tol, max_iter, iters, history,
@@ -504,8 +516,9 @@ def _solve_schedule(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, his
             continue
         if status != FlowStatus.CONVERGED or not ctx.enforce:
             break
-        if not _update_limits(c, y, v, st, scale):
+        if not _update_limits(c, y, v, st, scale, ibus=ctx.ibus_at(v)):
             break
+        ctx.last = None                       # v may have been changed in place
     else:
         status, message = FlowStatus.LIMITS_UNSETTLED, (
             f"reactive-limit switching did not settle in {MAX_LIMIT_ROUNDS} rounds")
@@ -563,6 +576,13 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             mis += scale * (c.s_load_i * vmm + c.s_load_z * vmm ** 2)
         return np.take(mis.view(np.float64), pick), ib
 
+    n = c.n
+    # place of each unknown in the stacked step [angle step, |V| step] over all buses; the other
+    # entries stay 0, so a trial point is two contiguous subtractions, no indexed update
+    step_pos = np.concatenate([free, n + pq])
+    step = np.zeros(2 * n)
+    step_va, step_vm = step[:n], step[n:]
+
     with np.errstate(all="raise", under="ignore"):
         try:
             vm, va = np.abs(v), np.angle(v)
@@ -572,7 +592,9 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
         recent: list[float] = []
         tiny = 0
         start_norm, local = None, 0
+        merit = None
         while True:
+            ctx.last = (v, ibus)             # Y v at the latest point, for the checks after the loop
             norm = max(float(F.max()), -float(F.min())) if F.size else 0.0   # max |F|, no temporary
             history.append(norm * c.base_mva)
             start_norm = norm if start_norm is None else start_norm
@@ -584,32 +606,34 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             if norm <= tol:
                 return v, iters, FlowStatus.CONVERGED, ""
             if early_check is not None and norm <= LIMIT_CHECK_PU:
-                if early_check(v, norm):
+                if early_check(v, norm, ibus):
                     return v, iters, _SWITCHED, ""
                 early_check = None
             if iters >= max_iter:
                 return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
             try:
                 dx = system.solve(v, load_derivative(c, vm, scale) if zip_loads else None, F, ibus)
-                np.negative(dx, out=dx)
+                finite = np.isfinite(dx).all()
             except RuntimeError:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
             except FloatingPointError:
                 return v, iters, diverged, "the iteration diverged (numerical overflow)"
-            if not np.all(np.isfinite(dx)):
+            if not finite:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
+            step[step_pos] = dx                  # the Newton step is minus this
             iters += 1
             local += 1
-            merit = float(np.sqrt(F @ F))
+            if merit is None:
+                merit = float(np.sqrt(F @ F))
             recent = (recent + [merit])[-WINDOW:]
 
             def trial(alpha):
-                va_new = va.copy()
-                vm_new = vm.copy()
-                va_new[free] += dx[:na] if alpha == 1.0 else alpha * dx[:na]
-                vm_new[pq] += dx[na:] if alpha == 1.0 else alpha * dx[na:]
+                if alpha == 1.0:
+                    va_new, vm_new = va - step_va, vm - step_vm
+                else:
+                    va_new, vm_new = va - alpha * step_va, vm - alpha * step_vm
                 v_new = vm_new * np.exp(1j * va_new)
                 try:
                     F_new, ib_new = residual(v_new, vm_new)
@@ -617,9 +641,9 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 except FloatingPointError:
                     F_new, ib_new, m = None, None, np.inf
                 positive = vm_new[pq].size == 0 or vm_new[pq].min() > 0.0
-                return v_new, vm_new, va_new, F_new, ib_new, (m if positive else np.inf)
+                return v_new, vm_new, va_new, F_new, ib_new, (m if positive else np.inf), m
 
-            v_new, vm_new, va_new, F_new, ib_new, m1 = trial(1.0)
+            v_new, vm_new, va_new, F_new, ib_new, m1, m_next = trial(1.0)
             alpha = 1.0
             if not (m1 <= GROWTH_BOUND * min(recent)):
                 # rejected: optimal multiplier from the full-step point, then halving
@@ -628,7 +652,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 else:
                     alpha = 0.5
                 for _ in range(LINE_SEARCH_STEPS):
-                    v_new, vm_new, va_new, F_new, ib_new, m = trial(alpha)
+                    v_new, vm_new, va_new, F_new, ib_new, m, m_next = trial(alpha)
                     if m <= (1.0 - 1e-4 * alpha) * merit:
                         break
                     alpha *= 0.5
@@ -639,17 +663,20 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             if tiny >= STALL_STEPS:
                 return v, iters, diverged, "the iteration diverged (stalled: only tiny steps lower the mismatch)"
             v, vm, va, F, ibus = v_new, vm_new, va_new, F_new, ib_new
+            merit = m_next if np.isfinite(m_next) else None
 
 
-def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0) -> bool:
+def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0, ibus=None) -> bool:
     """Switch PV buses at a reactive limit to PQ and back; True if anything changed.
 
     ``margin`` (pu of Mvar and of voltage) widens both tests, for a point not yet converged.
+    ``ibus`` is ``Y v`` if the caller has it.
     A bus that has gone back to PV ``FLIP_LIMIT`` times is not let back again.
     """
     kind, q_fixed, at_limit = st.kind, st.q_fixed, st.at_limit
     vm = np.abs(v)
-    q_gen = injection(y, v).imag + load_power(c, vm, scale).imag - scale * c.s_gen.imag
+    s_inj = injection(y, v) if ibus is None else v * np.conj(ibus)
+    q_gen = s_inj.imag + load_power(c, vm, scale).imag - scale * c.s_gen.imag
     tol_q = 1e-9 + margin
     pv_now = (kind == PV) & c.alive
     over = pv_now & (q_gen > c.q_max + tol_q)
