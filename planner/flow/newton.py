@@ -410,7 +410,13 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
     if short[k] > 0:
         return (f"bus {c.bus_ids[k]} at {vm[k]:.3f} pu, far below its band minimum "
                 f"{c.v_min[k]:.2f} pu")
-    limit, ok_branch = _transfer_angles(c, cache)
+    limit, ok_branch, cos_limit, turn = _transfer_angles(c, cache)
+    # screen without angles: |angle of z| > limit exactly when Re z < cos(limit) |z|, where
+    # z = V_f conj(V_t) turned back by the phase shifts (no arctan, no wrapping for every branch)
+    z = v[c.f] * np.conj(v[c.t])
+    z *= turn
+    if not (ok_branch & (z.real < cos_limit * np.abs(z))).any():
+        return _loss_check(c, y, v, vm, cache, ibus)
     ang = np.angle(v)
     on_f = np.where(c.tap_from, c.shift, 0.0)
     on_t = np.where(c.tap_from, 0.0, c.shift)
@@ -421,6 +427,12 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
         j = int(np.argmax(over))
         return (f"branch {c.branch_ids[j]} carries {np.rad2deg(abs(delta[j])):.1f} deg across it, beyond "
                 f"its maximum-transfer angle {np.rad2deg(limit[j]):.1f} deg")
+    return _loss_check(c, y, v, vm, cache, ibus)
+
+
+def _loss_check(c, y, v, vm, cache, ibus) -> str | None:
+    """The losses test of :func:`implausible`."""
+    alive = c.alive
     s_inj = injection(y, v) if ibus is None else v * np.conj(ibus)
     losses = float((s_inj.real * alive).sum() - (c.ysh.real * vm ** 2 * alive).sum())
     load = float(np.abs(load_power(c, vm).real[alive]).sum())
@@ -438,15 +450,18 @@ def _same_arrays(a: tuple, b: tuple) -> bool:
 
 
 def _transfer_angles(c: Compiled, cache: SymbolicCache | None):
-    """Maximum-transfer angle of each branch (the angle of its series impedance) and whether it
-    applies (inductive, both ends live); kept in ``cache`` while impedances and live buses hold."""
-    key = (c.ys, c.f, c.t, c.alive)
+    """Maximum-transfer angle of each branch (the angle of its series impedance), whether it
+    applies (inductive, both ends live), its cosine, and ``exp(-j (shift at from - shift at to))``;
+    kept in ``cache`` while impedances, live buses and phase shifts hold."""
+    key = (c.ys, c.f, c.t, c.alive, c.shift, c.tap_from)
     hit = cache.extra.get("transfer") if cache is not None else None
     if hit is not None and _same_arrays(hit[0], key):
         return hit[1]
     with np.errstate(all="ignore"):
         z = 1.0 / c.ys
-        out = (np.arctan2(z.imag, z.real), (z.imag > 0) & c.alive[c.f] & c.alive[c.t])
+        limit = np.arctan2(z.imag, z.real)
+        out = (limit, (z.imag > 0) & c.alive[c.f] & c.alive[c.t], np.cos(limit),
+               np.exp(-1j * np.where(c.tap_from, c.shift, -c.shift)))
     if cache is not None:
         cache.extra["transfer"] = (tuple(a.copy() for a in key), out)
     return out
