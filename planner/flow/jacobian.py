@@ -96,41 +96,6 @@ class JacobianPattern:
         self.indices, self.indptr, self.src = _csc_structure(
             np.concatenate(pieces_r), np.concatenate(pieces_c), np.concatenate(pieces_src), self.size)
 
-    def _scaled_derivatives(self, v: np.ndarray, dload_dvm: np.ndarray | None,
-                            ibus: np.ndarray | None) -> np.ndarray:
-        """Derivatives with respect to the angles and to ln |V|, as a float view for gathers by
-        ``t_src`` (:func:`_scaled_layout`).
-
-        Off the diagonal both are made of one number per admittance entry,
-        ``w = V_i conj(Y_ij V_j)``: ``dS_i/dVa_j = -j w`` and ``dS_i/dln|V_j| = w``. So the
-        Jacobian in the unknowns ``[angle, ln |V|]`` (the usual one with each |V| column scaled
-        by that |V|) needs ``w``, ``-w`` and the two diagonals: fewer passes over the entries
-        than the derivatives by |V|. The step for ln |V| times |V| is the step for |V|.
-        """
-        full = self.sym.full
-        y = self.y
-        if self._yconj_key is not y:              # admittance values changed (shunts, taps)
-            self._yconj_key = y
-            self._yconj = np.conj(y.data)
-        nnz, n = len(y.data), len(v)
-        if self._sbuf is None:
-            self._sbuf = np.empty(2 * nnz + 2 * n, complex)
-        buf = self._sbuf
-        w, neg_w = buf[:nnz], buf[nnz:2 * nnz]
-        np.take(v, full.rows, out=w, mode="clip")
-        w *= self._yconj
-        np.take(np.conj(v), y.indices, out=neg_w, mode="clip")
-        w *= neg_w
-        np.negative(w, out=neg_w)
-        s_bus = v * np.conj(y @ v if ibus is None else ibus)
-        w_diag = w[full.diag_pos]
-        d_ang = np.subtract(s_bus, w_diag, out=buf[2 * nnz:2 * nnz + n])
-        d_ang *= 1j
-        d_mag = np.add(s_bus, w_diag, out=buf[2 * nnz + n:])
-        if dload_dvm is not None:
-            d_mag += np.abs(v) * dload_dvm
-        return buf.view(np.float64)
-
     def matrix(self, v: np.ndarray, dload_dvm: np.ndarray | None = None) -> sp.csc_matrix:
         """The Jacobian at voltage ``v`` (complex, all buses)."""
         d_va, d_vm = bus_derivatives(self.y, v, self.diag_pos, self.rows, dload_dvm)
@@ -213,6 +178,7 @@ class JacobianSymbolic:
         self.m = len(free)
         self.full = JacobianPattern(y, free, free)
         self.y_indices = y.indices
+        self.cols = y.indices.astype(np.intp)  # for gathers: numpy converts int32 indices per call
         self.key = _topology_key(y, free)
         self.order = None                       # full index at each permuted position
         self._permuted = None
@@ -352,9 +318,9 @@ class _ReducedSystem:
         w, neg_w = buf[:nnz], buf[nnz:2 * nnz]
         np.take(v, full.rows, out=w, mode="clip")
         w *= self._yconj
-        np.take(np.conj(v), y.indices, out=neg_w, mode="clip")
+        np.take(np.conj(v), self.sym.cols, out=neg_w, mode="clip")
         w *= neg_w
-        np.negative(w, out=neg_w)
+        np.negative(w.view(np.float64), out=neg_w.view(np.float64))   # as floats: vectorised
         s_bus = v * np.conj(y @ v if ibus is None else ibus)
         w_diag = w[full.diag_pos]
         d_ang = np.subtract(s_bus, w_diag, out=buf[2 * nnz:2 * nnz + n])
@@ -386,6 +352,26 @@ class _ReducedSystem:
             return lu.solve(rhs)
         if not self._built:
             self._build()
+        x = np.empty_like(rhs)
+        x[self.perm] = self.solve_ordered(v, dload_dvm, rhs[self.perm], ibus)
+        x[self.n_angle:] *= np.abs(v[self.mag_buses])      # ln |V| step to |V| step
+        return x
+
+    @property
+    def ordered(self) -> bool:
+        """Whether :meth:`solve_ordered` can be used (the topology's ordering is known)."""
+        if self.sym.order is None:
+            return False
+        if not self._built:
+            self._build()
+        return True
+
+    def solve_ordered(self, v: np.ndarray, dload_dvm: np.ndarray | None, rhs: np.ndarray,
+                      ibus: np.ndarray | None = None) -> np.ndarray:
+        """Solve ``J(v) x = rhs`` with ``rhs`` and ``x`` in the kept order (position ``k`` holds
+        the unknown / equation ``perm[k]`` of the reduced layout) and the |V| unknowns as steps of
+        ln |V| (times |V| they are steps of |V|); only when :attr:`ordered`. The Newton loop works
+        in this order throughout, so no permutation is applied per iteration."""
         jac_t = self._jac
         if jac_t is None:
             jac_t = sp.csc_matrix((np.empty(len(self.t_src)), self.t_indices, self.t_indptr),
@@ -401,10 +387,7 @@ class _ReducedSystem:
         # mode="clip": no bounds-check buffer (every index is valid by construction)
         np.take(self._scaled_derivatives(v, dload_dvm, ibus), self.t_src, out=jac_t.data, mode="clip")
         lu = spla.splu(jac_t, **_LU_ORDERED)
-        x = np.empty_like(rhs)
-        x[self.perm] = lu.solve(rhs[self.perm], trans="T")
-        x[self.n_angle:] *= np.abs(v[self.mag_buses])      # ln |V| step to |V| step
-        return x
+        return lu.solve(rhs, trans="T")
 
 
 def derivative_pairs(y: sp.csr_matrix, ycdj: np.ndarray, v: np.ndarray, diag_pos: np.ndarray,

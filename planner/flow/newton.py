@@ -597,11 +597,13 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
     step_pos = np.concatenate([free, n + pq])
     step = np.zeros(2 * n)
     step_va, step_vm = step[:n], step[n:]
+    ordered = False
 
     with np.errstate(all="raise", under="ignore"):
         try:
             vm, va = np.abs(v), np.angle(v)
-            unit = np.exp(1j * va)           # e^(j angle); times |V| it is V (0 V at a dead bus)
+            # e^(j angle) (1 at a dead bus); times |V| it is V
+            unit = np.divide(v, vm, out=np.ones(n, complex), where=vm > 0)
             F, ibus = residual(v, vm)
         except FloatingPointError:
             return v, iters, diverged, "the iteration diverged (numerical overflow)"
@@ -627,8 +629,17 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 early_check = None
             if iters >= max_iter:
                 return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
+            if not ordered and system.ordered:
+                # the topology's ordering is known (after the first LU of a cold solve): from now
+                # on equations and unknowns are kept in it, as the linear solver takes them
+                ordered = True
+                pick, step_pos, F = pick[system.perm], step_pos[system.perm], F[system.perm]
             try:
-                dx = system.solve(v, load_derivative(c, vm, scale) if zip_loads else None, F, ibus)
+                dload = load_derivative(c, vm, scale) if zip_loads else None
+                if ordered:
+                    dx = system.solve_ordered(v, dload, F, ibus)
+                else:
+                    dx = system.solve(v, dload, F, ibus)
                 finite = np.isfinite(dx).all()
             except RuntimeError:
                 return v, iters, FlowStatus.SINGULAR, \
@@ -639,6 +650,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
             step[step_pos] = dx                  # the Newton step is minus this
+            d_vm = step_vm * vm if ordered else step_vm      # ln |V| steps to |V| steps
             iters += 1
             local += 1
             if merit is None:
@@ -647,7 +659,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
 
             def trial(alpha):
                 d_va = step_va if alpha == 1.0 else alpha * step_va
-                va_new, vm_new = va - d_va, vm - (step_vm if alpha == 1.0 else alpha * step_vm)
+                va_new, vm_new = va - d_va, vm - (d_vm if alpha == 1.0 else alpha * d_vm)
                 unit_new = unit * _rotation(d_va) if _small_angles(d_va) else np.exp(1j * va_new)
                 v_new = vm_new * unit_new
                 try:
