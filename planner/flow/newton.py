@@ -660,7 +660,8 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             def trial(alpha):
                 d_va = step_va if alpha == 1.0 else alpha * step_va
                 va_new, vm_new = va - d_va, vm - (d_vm if alpha == 1.0 else alpha * d_vm)
-                unit_new = unit * _rotation(d_va) if _small_angles(d_va) else np.exp(1j * va_new)
+                halvings = _halvings(d_va)
+                unit_new = unit * _rotation(d_va, halvings) if halvings is not None else np.exp(1j * va_new)
                 v_new = vm_new * unit_new
                 try:
                     F_new, ib_new = residual(v_new, vm_new)
@@ -695,19 +696,33 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
 
 # Angle steps up to this (rad) turn the voltage phasors by a short series instead of a complex
 # exponential of the new angles (numpy's takes ~14 ns a bus, the series ~5): the terms to d^11
-# leave out less than 0.2^12 / 12! ~ 1e-17, below double rounding.
+# leave out less than 0.2^12 / 12! ~ 1e-17, below double rounding. Larger steps (the first ones
+# from a flat start), up to 2^MAX_HALVINGS times this, are halved that many times and the
+# rotation squared as often (each squaring at most doubles the relative rounding error).
 SMALL_ANGLE = 0.2
+MAX_HALVINGS = 4
 _COS = (1 / 3628800, -1 / 40320, 1 / 720, -1 / 24, 1 / 2)      # 1 - cos d = t/2 - t^2/24 + ..., t = d^2
 _SIN = (1 / 39916800, -1 / 362880, 1 / 5040, -1 / 120, 1 / 6)  # 1 - sin(d)/d = t/6 - t^2/120 + ...
 
 
-def _small_angles(d: np.ndarray) -> bool:
-    return d.size == 0 or max(float(d.max()), -float(d.min())) <= SMALL_ANGLE
+def _halvings(d: np.ndarray) -> int | None:
+    """How often ``d`` must be halved to be within ``SMALL_ANGLE``; None beyond ``MAX_HALVINGS``
+    (or for a non-finite step)."""
+    big = max(float(d.max()), -float(d.min())) if d.size else 0.0
+    k = 0
+    while not big <= SMALL_ANGLE:             # also ends for NaN: k passes MAX_HALVINGS
+        big *= 0.5
+        k += 1
+        if k > MAX_HALVINGS:
+            return None
+    return k
 
 
-def _rotation(d: np.ndarray) -> np.ndarray:
-    """``exp(-j d)`` for angles ``|d| <= SMALL_ANGLE`` by Horner sums of the cosine and sine
-    series (to double precision)."""
+def _rotation(d: np.ndarray, halvings: int = 0) -> np.ndarray:
+    """``exp(-j d)`` for angles ``|d| <= SMALL_ANGLE * 2**halvings`` by Horner sums of the cosine
+    and sine series of ``d / 2**halvings`` (to double precision), squared ``halvings`` times."""
+    if halvings:
+        d = d * 0.5 ** halvings
     t = d * d
     out = np.empty(len(d), complex)
     parts = out.view(np.float64)
@@ -721,6 +736,8 @@ def _rotation(d: np.ndarray) -> np.ndarray:
     np.subtract(1.0, parts[0::2], out=parts[0::2])
     parts[1::2] *= d
     parts[1::2] -= d
+    for _ in range(halvings):
+        out *= out
     return out
 
 
