@@ -601,7 +601,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
 
     with np.errstate(all="raise", under="ignore"):
         try:
-            vm, va = np.abs(v), np.angle(v)
+            vm = np.abs(v)
             # e^(j angle) (1 at a dead bus); times |V| it is V
             unit = np.divide(v, vm, out=np.ones(n, complex), where=vm > 0)
             F, ibus = residual(v, vm)
@@ -659,9 +659,12 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
 
             def trial(alpha):
                 d_va = step_va if alpha == 1.0 else alpha * step_va
-                va_new, vm_new = va - d_va, vm - (d_vm if alpha == 1.0 else alpha * d_vm)
+                vm_new = vm - (d_vm if alpha == 1.0 else alpha * d_vm)
                 halvings = _halvings(d_va)
-                unit_new = unit * _rotation(d_va, halvings) if halvings is not None else np.exp(1j * va_new)
+                if halvings is not None:
+                    unit_new = unit * _rotation(d_va, halvings)
+                else:
+                    unit_new = np.exp(1j * (np.angle(unit) - d_va))
                 v_new = vm_new * unit_new
                 try:
                     F_new, ib_new = residual(v_new, vm_new)
@@ -669,9 +672,9 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 except FloatingPointError:
                     F_new, ib_new, m = None, None, np.inf
                 positive = vm_new[pq].size == 0 or vm_new[pq].min() > 0.0
-                return v_new, vm_new, va_new, unit_new, F_new, ib_new, (m if positive else np.inf), m
+                return v_new, vm_new, unit_new, F_new, ib_new, (m if positive else np.inf), m
 
-            v_new, vm_new, va_new, unit_new, F_new, ib_new, m1, m_next = trial(1.0)
+            v_new, vm_new, unit_new, F_new, ib_new, m1, m_next = trial(1.0)
             alpha = 1.0
             if not (m1 <= GROWTH_BOUND * min(recent)):
                 # rejected: optimal multiplier from the full-step point, then halving
@@ -680,7 +683,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 else:
                     alpha = 0.5
                 for _ in range(LINE_SEARCH_STEPS):
-                    v_new, vm_new, va_new, unit_new, F_new, ib_new, m, m_next = trial(alpha)
+                    v_new, vm_new, unit_new, F_new, ib_new, m, m_next = trial(alpha)
                     if m <= (1.0 - 1e-4 * alpha) * merit:
                         break
                     alpha *= 0.5
@@ -690,7 +693,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             tiny = tiny + 1 if alpha < TINY_STEP else 0
             if tiny >= STALL_STEPS:
                 return v, iters, diverged, "the iteration diverged (stalled: only tiny steps lower the mismatch)"
-            v, vm, va, unit, F, ibus = v_new, vm_new, va_new, unit_new, F_new, ib_new
+            v, vm, unit, F, ibus = v_new, vm_new, unit_new, F_new, ib_new
             merit = m_next if np.isfinite(m_next) else None
 
 
