@@ -341,7 +341,11 @@ def initial_voltage(c: Compiled, start) -> np.ndarray:
         va = np.where(c.kind == SLACK, c.va_stored, 0.0)
         if start == "dc":
             va = dc_angles(c, va)
-        v = vm * np.exp(1j * va)
+            v = vm * np.exp(1j * va)
+        else:                         # only slack buses have an angle: no exponential for the rest
+            v = vm.astype(complex)
+            turned = va != 0.0
+            v[turned] *= np.exp(1j * va[turned])
     else:
         raise ValueError(f"unknown start {start!r}: use 'flat', 'dc', 'stored' or a FlowResult")
     return np.where(c.alive, v, 0.0)
