@@ -576,7 +576,6 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
     pq_mask = np.zeros(c.n, bool)
     pq_mask[pq] = True
     system = ctx.sym.system(y, pq_mask)
-    na = len(free)
     q_fixed = st.q_fixed
     diverged = FlowStatus.DIVERGED
 
