@@ -445,8 +445,8 @@ def _scaled_layout(src: np.ndarray, rows: np.ndarray, cols: np.ndarray, n: int) 
     block, k = np.divmod(src, nnz)
     bus = rows[k]
     # off the diagonal: Re dVa = Im w, Re dlnV = Re w, Im dVa = -Re w, Im dlnV = Im w
-    off = np.choose(block, [2 * k + 1, 2 * k, 2 * nnz + 2 * k, 2 * k + 1])
-    on = 4 * nnz + np.choose(block, [2 * bus, 2 * n + 2 * bus, 2 * bus + 1, 2 * n + 2 * bus + 1])
+    off = 2 * k + np.array([1, 0, 2 * nnz, 1])[block]
+    on = 4 * nnz + 2 * bus + np.array([0, 2 * n, 1, 2 * n + 1])[block]
     return np.where(bus == cols[k], on, off)
 
 
