@@ -233,9 +233,9 @@ def _topology_key(y, free):
 class _ReducedSystem:
     """Jacobian of one PV / PQ split, filled directly in the kept ordering.
 
-    Every Newton step refills one matrix in place (its values array, its structure kept), so
-    an iteration allocates no sparse structure and SuperLU is handed a matrix it needs not
-    check or copy."""
+    Every Newton step refills one matrix (J^T, see :meth:`solve_ordered`) in place (its values
+    array, its structure kept), so an iteration allocates no sparse structure and SuperLU is
+    handed a matrix it needs not check or copy."""
 
     def __init__(self, sym: JacobianSymbolic, keep_mag: np.ndarray):
         self.sym = sym
@@ -341,7 +341,8 @@ class _ReducedSystem:
 
     def solve(self, v: np.ndarray, dload_dvm: np.ndarray | None, rhs: np.ndarray,
               ibus: np.ndarray | None = None) -> np.ndarray:
-        """Solve ``J(v) x = rhs``; ``ibus`` (``Y v``, if the caller has it) saves one product."""
+        """Solve ``J(v) x = rhs`` in the reduced layout (``x``: angle steps, then |V| steps);
+        ``ibus`` (``Y v``, if the caller has it) saves one product."""
         sym = self.sym
         if sym.order is None:
             # first factorisation of this topology: let SuperLU choose the ordering, keep it
