@@ -331,7 +331,8 @@ class PlanProblem:
             max_nodes=self.options.max_nodes,
             site_radius=None if radius_sites is None else int(radius_sites),
             used_sites=(st.fixed + st.switched) > 0,
-            # several levels: the refinement keeps the first round's sites (see milp.solve_step)
+            # several levels: the refinement keeps the first round's sites (see milp.solve_step);
+            # at one level the switched units are left out, rounds are cheap and stay as they were
             keep_sites_in_refinement=L > 1,
             seeds=[np.array([self.lever_changes(l, st, p, flows[l]) for l in range(L)]) for p in seeds
                    if p.key() != st.key()],
