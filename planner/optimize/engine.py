@@ -139,7 +139,7 @@ def _run(pb: PlanProblem, progress) -> PlanResult:
 
     for it in range(1, options.max_iterations + 1):
         spec = pb.step_spec(cur, ev.flows, r_v, r_u, r_t, r_c, seeds=list(tried.values())[-_SEEDS:],
-                            local=it > 1, radius_sites=r_s if it > 1 else None)
+                            radius_sites=r_s if it > 1 else None)
         sol, solves, rounds = solve_step(spec)
         milps += solves
         time_limited = time_limited or sol.time_limited

@@ -83,12 +83,9 @@ class Options:
     search_checks: int = 6                # moves AC-checked per batch of the final search (best first)
     mip_gap: float = 5e-4
     # after the first step (which places the banks from the whole range): at most this many
-    # sites opened or closed per step (None: no limit; a move of a bank is 2) ...
+    # sites opened or closed per step (None: no limit; a move of one bank is 2); none once a
+    # step free to move sites kept them; halved when a step is rejected
     site_radius: int | None = 2
-    # ... and those steps' MILPs solved to this fraction of ``mip_gap``: they are small, and the
-    # stop rule (the model's expected gain against ``merit_rel_tolerance``) only sees gains
-    # larger than the gap
-    local_gap_ratio: float = 0.1
     max_nodes: int = 500                  # HiGHS branch-and-bound nodes per MILP solve: the work bound
     time_limit_s: float = 120.0           # emergency stop per MILP solve; when it fires the result says so
     bound: bool = True                    # compute the relaxation bound and gap of the final plan

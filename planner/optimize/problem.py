@@ -293,10 +293,9 @@ class PlanProblem:
                                to.vset[l] - np.abs(flow.v[self.vset_bus]), to.ratio[l] - st.ratio[l]])
 
     def step_spec(self, st: Settings, flows, radius_v, radius_units, radius_tap, radius_cont=None,
-                  seeds=(), local=False, radius_sites=None) -> StepSpec:
-        """The MILP data of one step at ``st``. ``local``: a step after the first, solved to
-        ``Options.local_gap_ratio`` of the MILP gap; ``radius_sites``: at most this many sites
-        opened or closed (None: no limit)."""
+                  seeds=(), radius_sites=None) -> StepSpec:
+        """The MILP data of one step at ``st``; ``radius_sites``: at most this many sites opened
+        or closed (None: no limit)."""
         if radius_cont is None:
             radius_cont = float(radius_units)
         L = len(self.levels)
@@ -326,8 +325,7 @@ class PlanProblem:
             tap_step=step, tap_lo=tap_lo, tap_hi=tap_hi,
             unit_radius=int(radius_units), v_radius=float(radius_v), tap_radius=tap_radius,
             tangent_points=self.options.tangent_points, penalty=self.penalty(),
-            levels=levels, time_limit=self.options.time_limit_s,
-            mip_gap=self.options.mip_gap * (self.options.local_gap_ratio if local else 1.0),
+            levels=levels, time_limit=self.options.time_limit_s, mip_gap=self.options.mip_gap,
             max_nodes=self.options.max_nodes,
             site_radius=None if radius_sites is None else int(radius_sites),
             used_sites=(st.fixed + st.switched) > 0,
