@@ -247,9 +247,10 @@ class PlanProblem:
         return got[1]
 
     def linearization(self, l: int, fr: FlowResult):
-        """(sensitivity, loss model ``(R, d, const)``) at ``fr``, computed once per point."""
+        """(sensitivity, loss model ``(R, d, const)``) at ``fr``, computed once per point (the
+        same settings solved again, e.g. the final plan's check with tables, reuse it)."""
         got = self._linear.get(l)
-        if got is None or got[0] is not fr:
+        if got is None or not (got[0] is fr or same_point(got[0], fr)):
             sens = self.sensitivity(fr, lu=self.point_factor(l, fr))
             # |c + M du|^2 = |d + R du|^2 + const exactly (sensitivity.Sensitivity.loss_model: an
             # R-only QR on small networks, a Gram matrix from sparse products on large ones)
@@ -414,3 +415,15 @@ class PlanProblem:
         return new
 
 
+def same_point(a: FlowResult, b: FlowResult, tol: float = 1e-9) -> bool:
+    """Two converged load flows of the same network data (every array equal) whose voltages
+    agree to ``tol`` pu: one operating point solved twice (to the load flow's tolerance)."""
+    if not (a.converged and b.converged) or a.v.shape != b.v.shape:
+        return False
+    ca, cb = a.compiled, b.compiled
+    if ca is not cb:
+        for f in dataclasses.fields(ca):
+            x, y = getattr(ca, f.name), getattr(cb, f.name)
+            if isinstance(x, np.ndarray) and not np.array_equal(x, y):
+                return False
+    return bool(np.max(np.abs(a.v - b.v), initial=0.0) <= tol) and np.array_equal(a.kind, b.kind)
