@@ -260,7 +260,7 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, lu=No
     dS_dVm = sp.csr_matrix((d_vm, y.indices, y.indptr), shape=(n, n))
     blocks = [sp.csc_matrix((-1j * vm[shunt_buses] ** 2, (shunt_buses, np.arange(ms))), shape=(n, ms))]
     blocks.append(dS_dVm[:, vset_buses].tocsc() if mv else sp.csc_matrix((n, 0), dtype=complex))
-    blocks.append(sp.csc_matrix(ratio_injection_derivative(c, v, xfmr_branches)) if mt
+    blocks.append(ratio_injection_sparse(c, v, xfmr_branches) if mt
                   else sp.csc_matrix((n, 0), dtype=complex))
     ds_direct = sp.hstack(blocks).tocsr()
 
@@ -381,9 +381,14 @@ def _tap_factor_derivative(c, br):
 
 
 def ratio_injection_derivative(c, v, br):
-    """(n, len(br)) change of bus injections per unit change of each lever ratio."""
+    """(n, len(br)) change of bus injections per unit change of each lever ratio (dense)."""
+    return ratio_injection_sparse(c, v, br).toarray()
+
+
+def ratio_injection_sparse(c, v, br):
+    """:func:`ratio_injection_derivative` as a sparse CSC matrix (each column touches the two
+    end buses of its branch), without any (buses x levers) array."""
     n = c.n
-    out = np.zeros((n, len(br)), complex)
     t = c.ratio[br]
     a = t * np.exp(1j * c.shift[br])
     inner = c.ys[br] + 0.5j * c.bc[br]
@@ -398,9 +403,10 @@ def ratio_injection_derivative(c, v, br):
     dytf = np.where(tf, d_cross_2, d_cross_1)
     vf, vt = v[c.f[br]], v[c.t[br]]
     cols = np.arange(len(br))
-    np.add.at(out, (c.f[br], cols), vf * np.conj(dyff * vf + dyft * vt))
-    np.add.at(out, (c.t[br], cols), vt * np.conj(dytf * vf + dytt * vt))
-    return out
+    vals = np.concatenate([vf * np.conj(dyff * vf + dyft * vt), vt * np.conj(dytf * vf + dytt * vt)])
+    # duplicates (a branch's two ends on one bus) are summed by the conversion
+    return sp.csc_matrix((vals, (np.concatenate([c.f[br], c.t[br]]), np.concatenate([cols, cols]))),
+                         shape=(n, len(br)))
 
 
 def loss_gradient(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, lu=None) -> np.ndarray:
@@ -436,7 +442,7 @@ def loss_gradient(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, l
         d_va_l, d_vm_l = bus_derivatives(y, v, pat.diag_pos, pat.rows, dload)
         blocks.append(sp.csr_matrix((d_vm_l, y.indices, y.indptr), shape=(n, n))[:, vset_buses].tocsc())
     if len(xfmr_branches):
-        blocks.append(sp.csc_matrix(ratio_injection_derivative(c, v, xfmr_branches)))
+        blocks.append(ratio_injection_sparse(c, v, xfmr_branches))
     ds = sp.hstack(blocks).tocsr() if m else sp.csr_matrix((n, 0), dtype=complex)
     na = len(pvpq)
     direct = np.asarray(ds.real.sum(axis=0)).ravel()
