@@ -20,7 +20,6 @@ from ..flow.newton import solve_flow
 from ..flow.result import FlowResult, FlowStatus, build_result
 from ..network.compile import PQ, PV, SLACK
 from .problem import Evaluation, PlanProblem, Settings
-from .sensitivity import lifted_kinds
 from .results import Violation
 
 _MARGIN_STEP = 5e-5   # pu added to a voltage row's margin beyond the breach that AC showed
@@ -98,8 +97,8 @@ class _ChordBase:
     Built for the point's own PV / PQ split (generators held at a reactive limit stay PQ), so a
     move that keeps every limit state converges to the full Newton solution of the moved
     settings; one sparse LU serves every move checked from this point. ``lu``: that LU if
-    already made (:func:`planner.optimize.sensitivity.jacobian_factor` of the point, valid when
-    no generator is held at a limit: the linearisation's kinds are then the point's own).
+    already made (:func:`planner.optimize.sensitivity.jacobian_factor` of the point with its own
+    bus kinds, e.g. :meth:`PlanProblem.point_factor` with ``own_kinds``).
     """
 
     def __init__(self, fr: FlowResult, lu=None):
@@ -170,9 +169,7 @@ def _chord_base_or_none(pb, l, fr):
     if fr is None or not fr.converged:
         return None
     try:
-        c = fr.compiled
-        same = np.array_equal(fr.kind[c.alive], lifted_kinds(c)[c.alive])
-        return _ChordBase(fr, pb.point_factor(l, fr) if same else None)
+        return _ChordBase(fr, pb.point_factor(l, fr, own_kinds=True))
     except (RuntimeError, ValueError):
         return None
 

@@ -15,7 +15,8 @@ from ..flow.result import FlowResult
 from ..network.compile import PQ, compile_network, replace
 from .levers import Levers, Limits, Objective, Options
 from .milp import LevelData, StepSpec
-from .sensitivity import flow_magnitude_slopes, jacobian_factor, linearize, loss_gradient, point_values
+from .sensitivity import (flow_magnitude_slopes, jacobian_factor, lifted_kinds, linearize, loss_gradient,
+                          point_values)
 
 # Above this many (Jacobian rows x lever columns) the final search's screen does not relinearize
 # at every point it reaches (one solve per lever column): it keeps the slopes of the last full
@@ -237,13 +238,17 @@ class PlanProblem:
         return self.objective.capital_factor if self.objective.kind == "cost" else 0.0
 
     # ---- linear model ---------------------------------------------------------------------
-    def point_factor(self, l: int, fr: FlowResult):
-        """Sparse LU of the Jacobian at ``fr`` (level ``l``, generator limits lifted), kept while
-        ``fr`` is the level's latest point."""
-        got = self._factor.get(l)
+    def point_factor(self, l: int, fr: FlowResult, own_kinds: bool = False):
+        """Sparse LU of the Jacobian at ``fr`` (level ``l``) with generator limits lifted, or
+        (``own_kinds``) with ``fr``'s own bus kinds (generators held at a limit as PQ: the chord
+        checks' Jacobian); one LU where the two agree. Kept while ``fr`` is the level's latest
+        point."""
+        c = fr.compiled
+        own = own_kinds and not np.array_equal(fr.kind[c.alive], lifted_kinds(c)[c.alive])
+        got = self._factor.get((l, own))
         if got is None or got[0] is not fr:
-            got = (fr, jacobian_factor(fr))
-            self._factor[l] = got
+            got = (fr, jacobian_factor(fr, fr.kind if own else None))
+            self._factor[(l, own)] = got
         return got[1]
 
     def linearization(self, l: int, fr: FlowResult):
@@ -333,16 +338,18 @@ class PlanProblem:
         if not np.array_equal(gen_buses, sens_b.gen_buses):
             return self.level_data(l, st, fr, 1.0, radius_units)
         sens = dataclasses.replace(sens_b, vm0=vm, v=fr.v, q0=q0, losses0=losses)
-        grad = self.loss_gradient(l, fr)
+        grad = self.loss_gradient(l, fr, own_kinds=not len(self.vset_bus))
         lev = self.level_data(l, st, fr, 1.0, radius_units, model=(sens, (R, d, losses - float(d @ d))))
         lev.loss_linear = grad - 2.0 * (R.T @ d)
         return lev
 
-    def loss_gradient(self, l: int, fr: FlowResult) -> np.ndarray:
-        """Exact gradient of the series losses (pu) per lever column at ``fr``: one adjoint solve."""
+    def loss_gradient(self, l: int, fr: FlowResult, own_kinds: bool = False) -> np.ndarray:
+        """Exact gradient of the series losses (pu) per lever column at ``fr``: one adjoint solve.
+        ``own_kinds``: with generators held at a reactive limit kept there (``fr``'s own bus
+        kinds, as the AC checks have them; the chord checks' LU serves), not lifted."""
         shunt_buses = np.concatenate([self.site_bus, self.exist_bus]).astype(np.int64)
         g = loss_gradient(fr, shunt_buses=shunt_buses, vset_buses=self.vset_bus, xfmr_branches=self.tap_all,
-                          lu=self.point_factor(l, fr))
+                          lu=self.point_factor(l, fr, own_kinds), kind=fr.kind if own_kinds else None)
         if len(self.tap_all) and self.tap_sum.shape[0] != self.tap_sum.shape[1]:
             k = len(shunt_buses) + len(self.vset_bus)
             g = np.concatenate([g[:k], g[k:] @ self.tap_sum])

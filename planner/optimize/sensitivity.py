@@ -215,10 +215,11 @@ def lifted_kinds(c):
     return np.where(c.kind == SLACK, SLACK, np.where(c.kind == PV, PV, PQ))
 
 
-def jacobian_factor(flow: FlowResult):
-    """Sparse LU of the load-flow Jacobian at ``flow`` with the kinds :func:`linearize` uses."""
+def jacobian_factor(flow: FlowResult, kind=None):
+    """Sparse LU of the load-flow Jacobian at ``flow`` with the kinds :func:`linearize` uses
+    (or the given bus kinds, e.g. the flow's own with generators held at a limit as PQ)."""
     c = flow.compiled
-    return factorize(_jacobian_at(c, flow.v, lifted_kinds(c))[1])
+    return factorize(_jacobian_at(c, flow.v, lifted_kinds(c) if kind is None else kind)[1])
 
 
 def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, lu=None) -> Sensitivity:
@@ -409,20 +410,22 @@ def ratio_injection_sparse(c, v, br):
                          shape=(n, len(br)))
 
 
-def loss_gradient(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, lu=None) -> np.ndarray:
+def loss_gradient(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, lu=None, kind=None) -> np.ndarray:
     """Gradient of total series losses (pu) with respect to the levers, by one adjoint solve.
 
     Losses are ``L = sum_i Re(S_i) - sum_i g_i V_i^2`` (bus injections less shunt
     conductance). With lambda solving ``J^T lambda = dL/dx``, ``dL/du = dL/du|direct -
-    lambda . dg/du``. ``lu``: :func:`jacobian_factor` of ``flow`` if already computed (the
-    bus kinds of ``flow.compiled`` with limits lifted, as :func:`linearize` has them).
+    lambda . dg/du``. ``kind``: the bus kinds of the Jacobian (default: ``flow.compiled``'s
+    with limits lifted, as :func:`linearize` has them; ``flow.kind`` gives the gradient with
+    generators held at a reactive limit kept there, valid without setpoint levers). ``lu``:
+    :func:`jacobian_factor` of ``flow`` with those kinds, if already computed.
     """
     c = flow.compiled
     v = flow.v
     n = c.n
     vm = np.abs(v)
     y = c.ybus()
-    pat, J, pvpq, pq, dload = _jacobian_at(c, v, lifted_kinds(c))
+    pat, J, pvpq, pq, dload = _jacobian_at(c, v, lifted_kinds(c) if kind is None else kind)
     # dL/dx: column sums of Re(dS) (the load derivative must not count: use plain dS)
     d_va, d_vm = bus_derivatives(y, v, pat.diag_pos, pat.rows, None)
     cols = y.indices
