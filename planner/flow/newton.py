@@ -197,7 +197,7 @@ def _solve(c, tol, max_iter, enforce_q_limits, start, build_tables, continuation
     ctx.give_up = False
     total = iters
     if status == FlowStatus.CONVERGED and check_plausibility:
-        reason = implausible(c, y, v1, symbolic)
+        reason = implausible(c, y, v1, symbolic, ibus=ctx.ibus_at(v1))
         if reason is not None:
             status, message = FlowStatus.SUSPECT, f"solution looks inoperable: {reason}"
     if continuation and status != FlowStatus.CONVERGED:
@@ -227,7 +227,8 @@ def _solve(c, tol, max_iter, enforce_q_limits, start, build_tables, continuation
         message += ("; generators at bus " + ", ".join(str(b) for b in c.bus_ids[st1.oscillating])
                     + " flip-flopped between PV and their limit and are held at the limit")
     seconds = time.perf_counter() - t0
-    return build_result(c, y, v1, st1.kind, st1.q_fixed, st1.at_limit, status=status, message=message,
+    return build_result(c, y, v1, st1.kind, st1.q_fixed, st1.at_limit, ibus=ctx.ibus_at(v1),
+                        status=status, message=message,
                         iterations=total, history=history, seconds=seconds, build_tables=build_tables,
                         equations_solved=status in (FlowStatus.CONVERGED, FlowStatus.SUSPECT),
                         oscillating_buses=[int(b) for b in c.bus_ids[st1.oscillating]],
@@ -278,6 +279,7 @@ class _Context:
     enforce: bool
     cache: SymbolicCache
     give_up: bool = False     # end an attempt that makes no progress (another start follows)
+    last: tuple | None = None  # (v, Y v) at the latest Newton point
 
     def __post_init__(self):
         c = self.c
@@ -285,6 +287,10 @@ class _Context:
         self.sym = self.cache.get(self.y, self.free)
         # voltage-dependent load anywhere (else the load is a constant of each Newton loop)
         self.zip_loads = bool(np.any(c.s_load_i) or np.any(c.s_load_z))
+
+    def ibus_at(self, v):
+        """``Y v`` if the latest Newton point is ``v`` (the same array), else None."""
+        return self.last[1] if self.last is not None and self.last[0] is v else None
 
 
 @dataclass
@@ -335,7 +341,11 @@ def initial_voltage(c: Compiled, start) -> np.ndarray:
         va = np.where(c.kind == SLACK, c.va_stored, 0.0)
         if start == "dc":
             va = dc_angles(c, va)
-        v = vm * np.exp(1j * va)
+            v = vm * np.exp(1j * va)
+        else:                         # only slack buses have an angle: no exponential for the rest
+            v = vm.astype(complex)
+            turned = va != 0.0
+            v[turned] *= np.exp(1j * va[turned])
     else:
         raise ValueError(f"unknown start {start!r}: use 'flat', 'dc', 'stored' or a FlowResult")
     return np.where(c.alive, v, 0.0)
@@ -384,7 +394,8 @@ def dc_angles(c: Compiled, va_slack: np.ndarray, spread_imbalance: bool = False,
 
 # --- plausibility ---------------------------------------------------------------------------
 
-def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = None) -> str | None:
+def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = None,
+                ibus: np.ndarray | None = None) -> str | None:
     """Why a converged point looks like an inoperable (low-voltage) solution, or None.
 
     Three tests (rules of the trade, common practice): a live bus more than
@@ -392,6 +403,7 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
     impedance exceeds the impedance angle ``atan2(x, r)``, past which the power it delivers
     falls as the angle grows (the far side of the nose of its transfer curve); total losses more
     than ``LOSS_FACTOR`` times a DC estimate (``sum r P_dc^2``) plus 1 % of the load.
+    ``ibus`` is ``Y v`` if the caller has it.
     """
     alive = c.alive
     if not alive.any():
@@ -402,7 +414,13 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
     if short[k] > 0:
         return (f"bus {c.bus_ids[k]} at {vm[k]:.3f} pu, far below its band minimum "
                 f"{c.v_min[k]:.2f} pu")
-    limit, ok_branch = _transfer_angles(c, cache)
+    limit, ok_branch, cos_limit, turn = _transfer_angles(c, cache)
+    # screen without angles: |angle of z| > limit exactly when Re z < cos(limit) |z|, where
+    # z = V_f conj(V_t) turned back by the phase shifts (no arctan, no wrapping for every branch)
+    z = v[c.f] * np.conj(v[c.t])
+    z *= turn
+    if not (ok_branch & (z.real < cos_limit * np.abs(z))).any():
+        return _loss_check(c, y, v, vm, cache, ibus)
     ang = np.angle(v)
     on_f = np.where(c.tap_from, c.shift, 0.0)
     on_t = np.where(c.tap_from, 0.0, c.shift)
@@ -413,7 +431,14 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
         j = int(np.argmax(over))
         return (f"branch {c.branch_ids[j]} carries {np.rad2deg(abs(delta[j])):.1f} deg across it, beyond "
                 f"its maximum-transfer angle {np.rad2deg(limit[j]):.1f} deg")
-    losses = float((injection(y, v).real * alive).sum() - (c.ysh.real * vm ** 2 * alive).sum())
+    return _loss_check(c, y, v, vm, cache, ibus)
+
+
+def _loss_check(c, y, v, vm, cache, ibus) -> str | None:
+    """The losses test of :func:`implausible`."""
+    alive = c.alive
+    s_inj = injection(y, v) if ibus is None else v * np.conj(ibus)
+    losses = float((s_inj.real * alive).sum() - (c.ysh.real * vm ** 2 * alive).sum())
     load = float(np.abs(load_power(c, vm).real[alive]).sum())
     if losses <= LOSS_FACTOR * 0.01 * load:
         return None           # within the bound whatever the DC estimate (it is never negative)
@@ -429,15 +454,18 @@ def _same_arrays(a: tuple, b: tuple) -> bool:
 
 
 def _transfer_angles(c: Compiled, cache: SymbolicCache | None):
-    """Maximum-transfer angle of each branch (the angle of its series impedance) and whether it
-    applies (inductive, both ends live); kept in ``cache`` while impedances and live buses hold."""
-    key = (c.ys, c.f, c.t, c.alive)
+    """Maximum-transfer angle of each branch (the angle of its series impedance), whether it
+    applies (inductive, both ends live), its cosine, and ``exp(-j (shift at from - shift at to))``;
+    kept in ``cache`` while impedances, live buses and phase shifts hold."""
+    key = (c.ys, c.f, c.t, c.alive, c.shift, c.tap_from)
     hit = cache.extra.get("transfer") if cache is not None else None
     if hit is not None and _same_arrays(hit[0], key):
         return hit[1]
     with np.errstate(all="ignore"):
         z = 1.0 / c.ys
-        out = (np.arctan2(z.imag, z.real), (z.imag > 0) & c.alive[c.f] & c.alive[c.t])
+        limit = np.arctan2(z.imag, z.real)
+        out = (limit, (z.imag > 0) & c.alive[c.f] & c.alive[c.t], np.cos(limit),
+               np.exp(-1j * np.where(c.tap_from, c.shift, -c.shift)))
     if cache is not None:
         cache.extra["transfer"] = (tuple(a.copy() for a in key), out)
     return out
@@ -494,8 +522,11 @@ def _solve_schedule(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, his
     iters = 0
     status, message = FlowStatus.DIVERGED, ""
 
-    def early_check(vv, margin):
-        return _update_limits(c, y, vv, st, scale, margin=margin)
+    def early_check(vv, margin, ibus):
+        changed = _update_limits(c, y, vv, st, scale, margin=margin, ibus=ibus)
+        if changed:
+            ctx.last = None                   # vv may have been changed in place
+        return changed
 
     for _ in range(MAX_LIMIT_ROUNDS + 1):
         v, iters, status, message = _newton(ctx, v, st, scale, tol, max_iter, iters, history,
@@ -504,8 +535,9 @@ def _solve_schedule(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, his
             continue
         if status != FlowStatus.CONVERGED or not ctx.enforce:
             break
-        if not _update_limits(c, y, v, st, scale):
+        if not _update_limits(c, y, v, st, scale, ibus=ctx.ibus_at(v)):
             break
+        ctx.last = None                       # v may have been changed in place
     else:
         status, message = FlowStatus.LIMITS_UNSETTLED, (
             f"reactive-limit switching did not settle in {MAX_LIMIT_ROUNDS} rounds")
@@ -544,7 +576,6 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
     pq_mask = np.zeros(c.n, bool)
     pq_mask[pq] = True
     system = ctx.sym.system(y, pq_mask)
-    na = len(free)
     q_fixed = st.q_fixed
     diverged = FlowStatus.DIVERGED
 
@@ -563,16 +594,28 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             mis += scale * (c.s_load_i * vmm + c.s_load_z * vmm ** 2)
         return np.take(mis.view(np.float64), pick), ib
 
+    n = c.n
+    # place of each unknown in the stacked step [angle step, |V| step] over all buses; the other
+    # entries stay 0, so a trial point is two contiguous subtractions, no indexed update
+    step_pos = np.concatenate([free, n + pq])
+    step = np.zeros(2 * n)
+    step_va, step_vm = step[:n], step[n:]
+    ordered = False
+
     with np.errstate(all="raise", under="ignore"):
         try:
-            vm, va = np.abs(v), np.angle(v)
+            vm = np.abs(v)
+            # e^(j angle) (1 at a dead bus); times |V| it is V
+            unit = np.divide(v, vm, out=np.ones(n, complex), where=vm > 0)
             F, ibus = residual(v, vm)
         except FloatingPointError:
             return v, iters, diverged, "the iteration diverged (numerical overflow)"
         recent: list[float] = []
         tiny = 0
         start_norm, local = None, 0
+        merit = None
         while True:
+            ctx.last = (v, ibus)             # Y v at the latest point, for the checks after the loop
             norm = max(float(F.max()), -float(F.min())) if F.size else 0.0   # max |F|, no temporary
             history.append(norm * c.base_mva)
             start_norm = norm if start_norm is None else start_norm
@@ -584,42 +627,57 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             if norm <= tol:
                 return v, iters, FlowStatus.CONVERGED, ""
             if early_check is not None and norm <= LIMIT_CHECK_PU:
-                if early_check(v, norm):
+                if early_check(v, norm, ibus):
                     return v, iters, _SWITCHED, ""
                 early_check = None
             if iters >= max_iter:
                 return v, iters, FlowStatus.ITERATION_LIMIT, f"no convergence within {max_iter} iterations"
+            if not ordered and system.ordered:
+                # the topology's ordering is known (after the first LU of a cold solve): from now
+                # on equations and unknowns are kept in it, as the linear solver takes them
+                ordered = True
+                pick, step_pos, F = pick[system.perm], step_pos[system.perm], F[system.perm]
             try:
-                dx = system.solve(v, load_derivative(c, vm, scale) if zip_loads else None, F, ibus)
-                np.negative(dx, out=dx)
+                dload = load_derivative(c, vm, scale) if zip_loads else None
+                if ordered:
+                    dx = system.solve_ordered(v, dload, F, ibus)
+                else:
+                    dx = system.solve(v, dload, F, ibus)
+                finite = np.isfinite(dx).all()
             except RuntimeError:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
             except FloatingPointError:
                 return v, iters, diverged, "the iteration diverged (numerical overflow)"
-            if not np.all(np.isfinite(dx)):
+            if not finite:
                 return v, iters, FlowStatus.SINGULAR, \
                     "the Jacobian is singular (voltage collapse or an unsupported island)"
+            step[step_pos] = dx                  # the Newton step is minus this
+            d_vm = step_vm * vm if ordered else step_vm      # ln |V| steps to |V| steps
             iters += 1
             local += 1
-            merit = float(np.sqrt(F @ F))
+            if merit is None:
+                merit = float(np.sqrt(F @ F))
             recent = (recent + [merit])[-WINDOW:]
 
             def trial(alpha):
-                va_new = va.copy()
-                vm_new = vm.copy()
-                va_new[free] += dx[:na] if alpha == 1.0 else alpha * dx[:na]
-                vm_new[pq] += dx[na:] if alpha == 1.0 else alpha * dx[na:]
-                v_new = vm_new * np.exp(1j * va_new)
+                d_va = step_va if alpha == 1.0 else alpha * step_va
+                vm_new = vm - (d_vm if alpha == 1.0 else alpha * d_vm)
+                halvings = _halvings(d_va)
+                if halvings is not None:
+                    unit_new = unit * _rotation(d_va, halvings)
+                else:
+                    unit_new = np.exp(1j * (np.angle(unit) - d_va))
+                v_new = vm_new * unit_new
                 try:
                     F_new, ib_new = residual(v_new, vm_new)
                     m = float(np.sqrt(F_new @ F_new))
                 except FloatingPointError:
                     F_new, ib_new, m = None, None, np.inf
                 positive = vm_new[pq].size == 0 or vm_new[pq].min() > 0.0
-                return v_new, vm_new, va_new, F_new, ib_new, (m if positive else np.inf)
+                return v_new, vm_new, unit_new, F_new, ib_new, (m if positive else np.inf), m
 
-            v_new, vm_new, va_new, F_new, ib_new, m1 = trial(1.0)
+            v_new, vm_new, unit_new, F_new, ib_new, m1, m_next = trial(1.0)
             alpha = 1.0
             if not (m1 <= GROWTH_BOUND * min(recent)):
                 # rejected: optimal multiplier from the full-step point, then halving
@@ -628,7 +686,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 else:
                     alpha = 0.5
                 for _ in range(LINE_SEARCH_STEPS):
-                    v_new, vm_new, va_new, F_new, ib_new, m = trial(alpha)
+                    v_new, vm_new, unit_new, F_new, ib_new, m, m_next = trial(alpha)
                     if m <= (1.0 - 1e-4 * alpha) * merit:
                         break
                     alpha *= 0.5
@@ -638,18 +696,68 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             tiny = tiny + 1 if alpha < TINY_STEP else 0
             if tiny >= STALL_STEPS:
                 return v, iters, diverged, "the iteration diverged (stalled: only tiny steps lower the mismatch)"
-            v, vm, va, F, ibus = v_new, vm_new, va_new, F_new, ib_new
+            v, vm, unit, F, ibus = v_new, vm_new, unit_new, F_new, ib_new
+            merit = m_next if np.isfinite(m_next) else None
 
 
-def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0) -> bool:
+# Angle steps up to this (rad) turn the voltage phasors by a short series instead of a complex
+# exponential of the new angles (numpy's takes ~14 ns a bus, the series ~5): the terms to d^11
+# leave out less than 0.2^12 / 12! ~ 1e-17, below double rounding. Larger steps (the first ones
+# from a flat start), up to 2^MAX_HALVINGS times this, are halved that many times and the
+# rotation squared as often (each squaring at most doubles the relative rounding error).
+SMALL_ANGLE = 0.2
+MAX_HALVINGS = 4
+_COS = (1 / 3628800, -1 / 40320, 1 / 720, -1 / 24, 1 / 2)      # 1 - cos d = t/2 - t^2/24 + ..., t = d^2
+_SIN = (1 / 39916800, -1 / 362880, 1 / 5040, -1 / 120, 1 / 6)  # 1 - sin(d)/d = t/6 - t^2/120 + ...
+
+
+def _halvings(d: np.ndarray) -> int | None:
+    """How often ``d`` must be halved to be within ``SMALL_ANGLE``; None beyond ``MAX_HALVINGS``
+    (or for a non-finite step)."""
+    big = max(float(d.max()), -float(d.min())) if d.size else 0.0
+    k = 0
+    while not big <= SMALL_ANGLE:             # also ends for NaN: k passes MAX_HALVINGS
+        big *= 0.5
+        k += 1
+        if k > MAX_HALVINGS:
+            return None
+    return k
+
+
+def _rotation(d: np.ndarray, halvings: int = 0) -> np.ndarray:
+    """``exp(-j d)`` for angles ``|d| <= SMALL_ANGLE * 2**halvings`` by Horner sums of the cosine
+    and sine series of ``d / 2**halvings`` (to double precision), squared ``halvings`` times."""
+    if halvings:
+        d = d * 0.5 ** halvings
+    t = d * d
+    out = np.empty(len(d), complex)
+    parts = out.view(np.float64)
+    for coef, into in ((_COS, parts[0::2]), (_SIN, parts[1::2])):
+        acc = t * coef[0]
+        for a in coef[1:]:
+            acc += a
+            acc *= t
+        into[...] = acc
+    # cos d = 1 - (t/2 - ...), -sin d = -(d - d (t/6 - ...)) = d * (t/6 - ...) - d
+    np.subtract(1.0, parts[0::2], out=parts[0::2])
+    parts[1::2] *= d
+    parts[1::2] -= d
+    for _ in range(halvings):
+        out *= out
+    return out
+
+
+def _update_limits(c, y, v, st: _LimitState, scale=1.0, margin: float = 0.0, ibus=None) -> bool:
     """Switch PV buses at a reactive limit to PQ and back; True if anything changed.
 
     ``margin`` (pu of Mvar and of voltage) widens both tests, for a point not yet converged.
+    ``ibus`` is ``Y v`` if the caller has it.
     A bus that has gone back to PV ``FLIP_LIMIT`` times is not let back again.
     """
     kind, q_fixed, at_limit = st.kind, st.q_fixed, st.at_limit
     vm = np.abs(v)
-    q_gen = injection(y, v).imag + load_power(c, vm, scale).imag - scale * c.s_gen.imag
+    s_inj = injection(y, v) if ibus is None else v * np.conj(ibus)
+    q_gen = s_inj.imag + load_power(c, vm, scale).imag - scale * c.s_gen.imag
     tol_q = 1e-9 + margin
     pv_now = (kind == PV) & c.alive
     over = pv_now & (q_gen > c.q_max + tol_q)

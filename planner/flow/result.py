@@ -149,10 +149,12 @@ class FlowResult:
 
 
 def build_result(c: Compiled, y, v, kind, q_fixed, at_limit, *, status, message, iterations, history,
-                 seconds, build_tables=True, equations_solved=None, **extra) -> FlowResult:
-    """Assemble a :class:`FlowResult` from the solver's final state (no printing, no raising)."""
+                 seconds, build_tables=True, equations_solved=None, ibus=None, **extra) -> FlowResult:
+    """Assemble a :class:`FlowResult` from the solver's final state (no printing, no raising).
+
+    ``ibus`` is ``Y v`` if the caller has it."""
     with np.errstate(all="ignore"):     # a diverged iterate may hold huge values: report, never warn
-        res = _build(c, y, v, kind, q_fixed, at_limit, status=FlowStatus(status), message=message,
+        res = _build(c, y, v, kind, q_fixed, at_limit, ibus, status=FlowStatus(status), message=message,
                      iterations=iterations, history=history, seconds=seconds,
                      equations_solved=equations_solved, **extra)
         if build_tables:
@@ -160,12 +162,12 @@ def build_result(c: Compiled, y, v, kind, q_fixed, at_limit, *, status, message,
     return res
 
 
-def _build(c, y, v, kind, q_fixed, at_limit, *, status, message, iterations, history, seconds,
+def _build(c, y, v, kind, q_fixed, at_limit, ibus, *, status, message, iterations, history, seconds,
            equations_solved, **extra) -> FlowResult:
     base = c.base_mva
     vm = np.abs(v)
     s_load = load_power(c, vm)
-    s_calc = v * np.conj(y @ v)
+    s_calc = v * np.conj(y @ v if ibus is None else ibus)
     mis = s_calc - (c.s_gen + 1j * q_fixed - s_load)      # bus_mismatch, with its parts kept
     # only equations that were solved count for the worst bus (P at PV/PQ, Q at PQ)
     solved_p = (kind != SLACK) & c.alive

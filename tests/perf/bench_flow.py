@@ -31,9 +31,12 @@ and Newton get as many samples under the same load; the best of them): ``LU std`
 MMD on J+J^T with diagonal pivots preferred, with SuperLU's default options; ``LU best`` is the
 fastest LU found: those two orderings and the one the solver keeps (factorised with no further
 ordering work), each with the default options and with the solver's (smaller panels, diagonal pivot threshold
-0.1). ratio =
+0.1), and the kept one transposed as the solver factorises it (J^T, solved transposed). ratio =
 warm Newton time / (iterations x LU best), target <= 1.5 (against LU std it would be lower);
-``cold ratio`` is the same for the first solve.
+``ratio med`` = median warm Newton time / (iterations x the smallest median of any LU way), steadier
+than the ratio of best samples on a loaded machine, where the best of many LU samples falls further
+below the typical LU than the best of a few solves, each made of several LUs, can;
+``cold ratio`` is the same as ``ratio`` for the first solve.
 
 Reading: the 10,000-bus cases written as IEEE CDF files (buses renumbered 1..N, since the format
 holds four-digit bus numbers), read time (best of 3) plus result-table building time against the
@@ -131,20 +134,30 @@ def cpu_best(fn, repeat=5):
     return best
 
 
-def lu_seconds(j, j_cached, repeat=5):
-    """CPU seconds of one LU: (best of the standard orderings with SuperLU's default options,
-    best of every ordering -- the two standard ones and the solver's kept one -- with the default
-    options and with the solver's options: smaller panels, diagonal pivot threshold)."""
+def lu_variants(j, j_cached):
+    """One LU each way, by name: the standard orderings (COLAMD, MMD on J+J^T with diagonal
+    pivots preferred) with SuperLU's default options ("std ...") and with the solver's options
+    (smaller panels, diagonal pivot threshold), and the solver's kept ordering (no ordering
+    work) with both option sets and transposed as the solver factorises it (J^T, solved
+    transposed)."""
     tuned = dict(panel_size=LU_PANEL, diag_pivot_thresh=LU_PIVOT_THRESHOLD)
-    std = min(cpu_best(lambda: spla.splu(j, permc_spec="MMD_AT_PLUS_A", options=dict(SymmetricMode=True)), repeat),
-              cpu_best(lambda: spla.splu(j, permc_spec="COLAMD"), repeat))
-    best = min(cpu_best(lambda: spla.splu(j, permc_spec="MMD_AT_PLUS_A", options=dict(SymmetricMode=True),
-                                          **tuned), repeat),
-               cpu_best(lambda: spla.splu(j, permc_spec="COLAMD", **tuned), repeat),
-               cpu_best(lambda: spla.splu(j_cached, permc_spec="NATURAL", options=dict(SymmetricMode=True)), repeat),
-               cpu_best(lambda: spla.splu(j_cached, permc_spec="NATURAL", options=dict(SymmetricMode=True),
-                                          **tuned), repeat))
-    return std, min(std, best)
+    sym = dict(options=dict(SymmetricMode=True))
+    j_cached_t = j_cached.T.tocsc()
+    j_cached_t.sort_indices()
+    return {"std MMD": lambda: spla.splu(j, permc_spec="MMD_AT_PLUS_A", **sym),
+            "std COLAMD": lambda: spla.splu(j, permc_spec="COLAMD"),
+            "MMD": lambda: spla.splu(j, permc_spec="MMD_AT_PLUS_A", **sym, **tuned),
+            "COLAMD": lambda: spla.splu(j, permc_spec="COLAMD", **tuned),
+            "kept default": lambda: spla.splu(j_cached, permc_spec="NATURAL", **sym),
+            "kept": lambda: spla.splu(j_cached, permc_spec="NATURAL", **sym, **tuned),
+            "kept J^T": lambda: spla.splu(j_cached_t, permc_spec="NATURAL", **sym, **tuned)}
+
+
+def lu_summary(samples: dict) -> tuple[float, float, float]:
+    """(LU std: best sample of the standard ways, LU best: best sample of every way, LU median:
+    the smallest median of any way) from lists of CPU seconds by way."""
+    std = min(min(samples[k]) for k in samples if k.startswith("std"))
+    return std, min(min(v) for v in samples.values()), min(float(np.median(v)) for v in samples.values())
 
 
 def timed_solve(c, limits, cache):
@@ -155,8 +168,8 @@ def timed_solve(c, limits, cache):
 
 def solve_cases(quick, repeat, only=None, limit_choice="both"):
     table_head(f"{'case':<20}{'buses':>7} {'limits':<7}{'status':<11}{'iters':>6}{'cont':>5}{'Newton s':>10}"
-               f"{'cold s':>8}{'LU std s':>10}{'LU best s':>10}{'ratio':>7}{'cold ratio':>11}{'min V':>7}"
-               f"{'dev pu':>12}", gap=False)
+               f"{'cold s':>8}{'LU std s':>10}{'LU best s':>10}{'ratio':>7}{'ratio med':>10}{'cold ratio':>11}"
+               f"{'min V':>7}{'dev pu':>12}", gap=False)
     newton_time = {}
     settings = {"both": (True, False), "on": (True,), "off": (False,)}[limit_choice]
     for label, make in cases(quick):
@@ -169,15 +182,19 @@ def solve_cases(quick, repeat, only=None, limit_choice="both"):
             first, t_cold = timed_solve(c, limits, cache)
             j_final, j_kept = final_jacobian(first), cached_order_jacobian(first, cache)
             res, t_warm = first, np.inf
-            t_std = t_lu = np.inf
+            ways = lu_variants(j_final, j_kept)
+            lu_samples = {k: [] for k in ways}
+            warm = []
             for _ in range(repeat):
                 r, t = timed_solve(c, limits, cache)
+                warm.append(t)
                 if t < t_warm:
                     res, t_warm = r, t
-                # the LUs are timed between the solves, as many samples of each as of the solve,
-                # so both see the same machine load (the best of each is compared)
-                s, b = lu_seconds(j_final, j_kept, repeat=1)
-                t_std, t_lu = min(t_std, s), min(t_lu, b)
+                # the LUs are timed between the solves, as many samples of each way as of the
+                # solve, so both see the same machine load (the best of each is compared)
+                for k, fn in ways.items():
+                    lu_samples[k].append(cpu_best(fn, 1))
+            t_std, t_lu, t_lu_med = lu_summary(lu_samples)
             # the cold solve's first LU uses SuperLU's own ordering, later ones the kept one: the
             # same iterations, voltages equal to rounding
             assert res.iterations == first.iterations and np.abs(res.v - first.v).max() < 1e-9
@@ -188,7 +205,8 @@ def solve_cases(quick, repeat, only=None, limit_choice="both"):
                 dev = f"{d:.1e}" + (" ok" if d < 1e-6 else " NO")
             print(f"{label:<20}{c.n:>7} {'on' if limits else 'off':<7}{res.status.name:<11}{res.iterations:>6}"
                   f"{res.continuation_steps:>5}{t_warm:>10.3f}{t_cold:>8.3f}{t_std:>10.4f}{t_lu:>10.4f}"
-                  f"{t_warm / (iters * t_lu):>7.2f}{t_cold / (iters * t_lu):>11.2f}"
+                  f"{t_warm / (iters * t_lu):>7.2f}{float(np.median(warm)) / (iters * t_lu_med):>10.2f}"
+                  f"{t_cold / (iters * t_lu):>11.2f}"
                   f"{res.vm[c.alive].min():>7.3f}{dev:>12}", flush=True)
             newton_time[(label, limits)] = (t_warm, net)
     return newton_time
