@@ -96,20 +96,25 @@ class _ChordBase:
 
     Built for the point's own PV / PQ split (generators held at a reactive limit stay PQ), so a
     move that keeps every limit state converges to the full Newton solution of the moved
-    settings; one sparse LU serves every move checked from this point.
+    settings; one sparse LU serves every move checked from this point. ``lu``: that LU if
+    already made (:func:`planner.optimize.sensitivity.jacobian_factor` of the point with its own
+    bus kinds, e.g. :meth:`PlanProblem.point_factor` with ``own_kinds``).
     """
 
-    def __init__(self, fr: FlowResult):
+    def __init__(self, fr: FlowResult, lu=None):
         c = fr.compiled
         self.flow = fr
         kind = fr.kind
-        self.pvpq = np.flatnonzero((kind != SLACK) & c.alive)
+        # unknowns ordered as the linearisation has them (PV angles, PQ angles, PQ magnitudes)
+        self.pvpq = np.concatenate([np.flatnonzero((kind == PV) & c.alive), np.flatnonzero((kind == PQ) & c.alive)])
         self.pq = np.flatnonzero((kind == PQ) & c.alive)
         self.held = fr.limit_state != 0
         self.q_fixed = np.where(fr.limit_state > 0, c.q_max, np.where(fr.limit_state < 0, c.q_min, 0.0))
-        pat = JacobianPattern(c.ybus(), self.pvpq, self.pq)
-        dload = c.s_load_i + 2.0 * c.s_load_z * np.abs(fr.v)
-        self.lu = factorize(pat.matrix(fr.v, dload))
+        if lu is None:
+            pat = JacobianPattern(c.ybus(), self.pvpq, self.pq)
+            dload = c.s_load_i + 2.0 * c.s_load_z * np.abs(fr.v)
+            lu = factorize(pat.matrix(fr.v, dload))
+        self.lu = lu
 
 
 def chord_flow(base: _ChordBase, c, tol: float = 1e-8 * CHORD_TIGHTER) -> FlowResult | None:
@@ -158,23 +163,24 @@ def chord_flow(base: _ChordBase, c, tol: float = 1e-8 * CHORD_TIGHTER) -> FlowRe
                         continuation_steps=0, strategy="chord")
 
 
-def _chord_base_or_none(fr):
+def _chord_base_or_none(pb, l, fr):
     """A chord base for a converged flow; None (full Newton for every move) when there is no
     converged flow or its Jacobian cannot be factorised."""
     if fr is None or not fr.converged:
         return None
     try:
-        return _ChordBase(fr)
+        return _ChordBase(fr, pb.point_factor(l, fr, own_kinds=True))
     except (RuntimeError, ValueError):
         return None
 
 
 def chord_bases(pb: PlanProblem, flows) -> list:
     """The chord factorisations of the present point's flows, kept on ``pb`` while they are the
-    present point (one LU per level, rebuilt only when the point moves)."""
+    present point (one LU per level, rebuilt only when the point moves; the same LU as the
+    point's linearisation where the bus kinds agree)."""
     cache = getattr(pb, "_chord", None)
-    if cache is None or len(cache) != len(flows) or any(b.flow is not f for b, f in zip(cache, flows)):
-        cache = [_chord_base_or_none(f) for f in flows]
+    if cache is None or len(cache) != len(flows) or any((b.flow if b is not None else None) is not f for b, f in zip(cache, flows)):
+        cache = [_chord_base_or_none(pb, l, f) for l, f in enumerate(flows)]
         pb._chord = cache
     return cache
 

@@ -6,6 +6,7 @@ flows and :mod:`planner.optimize.engine` the loop.
 """
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -14,7 +15,14 @@ from ..flow.result import FlowResult
 from ..network.compile import PQ, compile_network, replace
 from .levers import Levers, Limits, Objective, Options
 from .milp import LevelData, StepSpec
-from .sensitivity import flow_magnitude_slopes, linearize
+from .sensitivity import (flow_magnitude_slopes, jacobian_factor, lifted_kinds, linearize, loss_gradient,
+                          point_values)
+
+# Above this many (Jacobian rows x lever columns) the final search's screen does not relinearize
+# at every point it reaches (one solve per lever column): it keeps the slopes of the last full
+# linearisation and takes the new point's own values and exact loss gradient (one adjoint
+# solve). Below it every screen uses the exact model of its point. See PlanProblem.screen_data.
+SCREEN_REFRESH_LIMIT = 1_000_000
 
 
 @dataclass
@@ -144,6 +152,11 @@ class PlanProblem:
         # side constraints (e.g. planner.contingency.secure.PostOutageRows): each gives linear
         # rows per level (``rows``) and its AC breaches for the merit (``violations``)
         self.side_constraints = []
+        # per level: the latest AC point's Jacobian factor, and the latest full linearisation
+        # (flow, sensitivity, loss model), so that a step, the final search and the chord checks
+        # at one point share one LU and one set of slopes
+        self._factor = {}
+        self._linear = {}
 
     def _adjacent_sites(self, c):
         by_bus = {}
@@ -225,12 +238,37 @@ class PlanProblem:
         return self.objective.capital_factor if self.objective.kind == "cost" else 0.0
 
     # ---- linear model ---------------------------------------------------------------------
-    def level_data(self, l: int, st: Settings, fr: FlowResult, radius_v: float, radius_units: int) -> LevelData:
+    def point_factor(self, l: int, fr: FlowResult, own_kinds: bool = False):
+        """Sparse LU of the Jacobian at ``fr`` (level ``l``) with generator limits lifted, or
+        (``own_kinds``) with ``fr``'s own bus kinds (generators held at a limit as PQ: the chord
+        checks' Jacobian); one LU where the two agree. Kept while ``fr`` is the level's latest
+        point."""
         c = fr.compiled
-        sens = self.sensitivity(fr)
-        # |c + M du|^2 = |d + R du|^2 + const exactly (sensitivity.Sensitivity.loss_model: an
-        # R-only QR on small networks, a Gram matrix from sparse products on large ones)
-        R, d, const = sens.loss_model()
+        own = own_kinds and not np.array_equal(fr.kind[c.alive], lifted_kinds(c)[c.alive])
+        got = self._factor.get((l, own))
+        if got is None or got[0] is not fr:
+            got = (fr, jacobian_factor(fr, fr.kind if own else None))
+            self._factor[(l, own)] = got
+        return got[1]
+
+    def linearization(self, l: int, fr: FlowResult):
+        """(sensitivity, loss model ``(R, d, const)``) at ``fr``, computed once per point (the
+        same settings solved again, e.g. the final plan's check with tables, reuse it)."""
+        got = self._linear.get(l)
+        if got is None or not (got[0] is fr or same_point(got[0], fr)):
+            sens = self.sensitivity(fr, lu=self.point_factor(l, fr))
+            # |c + M du|^2 = |d + R du|^2 + const exactly (sensitivity.Sensitivity.loss_model: an
+            # R-only QR on small networks, a Gram matrix from sparse products on large ones)
+            got = (fr, sens, sens.loss_model())
+            self._linear[l] = got
+        return got[1], got[2]
+
+    def level_data(self, l: int, st: Settings, fr: FlowResult, radius_v: float, radius_units: int,
+                   model=None) -> LevelData:
+        """The linear model of level ``l`` at ``fr`` for a step of the given radii. ``model``
+        (sensitivity, loss model): use these instead of the exact ones of ``fr``."""
+        c = fr.compiled
+        sens, (R, d, const) = model if model is not None else self.linearization(l, fr)
         # rows that can bind inside this trust region (others are dropped to keep the MILP small)
         span_units = np.concatenate([self.unit_pu() * radius_units, self.exist_step * radius_units,
                                      np.full(len(self.vset_bus), radius_v),
@@ -276,11 +314,53 @@ class PlanProblem:
             extra_rows=[r for side in self.side_constraints for r in side.rows(self, l, st, fr)],
         )
 
-    def sensitivity(self, fr: FlowResult):
-        """Sensitivities at a solved point, one column per lever (a parallel group's members
-        summed: they move together)."""
+    def screen_exact(self, l: int, fr: FlowResult) -> bool:
+        """Whether :meth:`screen_data` at ``fr`` gives the exact model of ``fr``."""
+        last = self._linear.get(l)
+        n_cols = len(self.site_bus) + len(self.exist_bus) + len(self.vset_bus) + len(self.tap_all)
+        return last is None or last[0] is fr or 2 * fr.compiled.n * n_cols <= SCREEN_REFRESH_LIMIT
+
+    def screen_data(self, l: int, st: Settings, fr: FlowResult, radius_units: int, exact=False) -> LevelData:
+        """The model the final search ranks its moves with at ``fr`` (level ``l``).
+
+        The exact model of ``fr`` where it is cheap (``SCREEN_REFRESH_LIMIT``) or already built.
+        Otherwise the slopes of the level's last full linearisation with ``fr``'s own values
+        (voltages, reactive outputs, losses) and ``fr``'s exact loss gradient: the losses are
+        ``L(fr) + g du + |R du|^2`` with the old curvature ``R``, exact to first order at ``fr``.
+        The field ``loss_linear`` of the result (absent on an exact model) holds the part of
+        the gradient that ``|d + R du|^2`` lacks. Moves are only ranked by it: every move taken
+        is AC-checked. ``exact``: the exact model of ``fr`` in any case.
+        """
+        if exact or self.screen_exact(l, fr):
+            return self.level_data(l, st, fr, 1.0, radius_units)
+        _, sens_b, (R, d, _) = self._linear[l]
+        vm, gen_buses, q0, losses = point_values(fr)
+        if not np.array_equal(gen_buses, sens_b.gen_buses):
+            return self.level_data(l, st, fr, 1.0, radius_units)
+        sens = dataclasses.replace(sens_b, vm0=vm, v=fr.v, q0=q0, losses0=losses)
+        grad = self.loss_gradient(l, fr, own_kinds=not len(self.vset_bus))
+        lev = self.level_data(l, st, fr, 1.0, radius_units, model=(sens, (R, d, losses - float(d @ d))))
+        lev.loss_linear = grad - 2.0 * (R.T @ d)
+        return lev
+
+    def loss_gradient(self, l: int, fr: FlowResult, own_kinds: bool = False) -> np.ndarray:
+        """Exact gradient of the series losses (pu) per lever column at ``fr``: one adjoint solve.
+        ``own_kinds``: with generators held at a reactive limit kept there (``fr``'s own bus
+        kinds, as the AC checks have them; the chord checks' LU serves), not lifted."""
         shunt_buses = np.concatenate([self.site_bus, self.exist_bus]).astype(np.int64)
-        sens = linearize(fr, shunt_buses=shunt_buses, vset_buses=self.vset_bus, xfmr_branches=self.tap_all)
+        g = loss_gradient(fr, shunt_buses=shunt_buses, vset_buses=self.vset_bus, xfmr_branches=self.tap_all,
+                          lu=self.point_factor(l, fr, own_kinds), kind=fr.kind if own_kinds else None)
+        if len(self.tap_all) and self.tap_sum.shape[0] != self.tap_sum.shape[1]:
+            k = len(shunt_buses) + len(self.vset_bus)
+            g = np.concatenate([g[:k], g[k:] @ self.tap_sum])
+        return g
+
+    def sensitivity(self, fr: FlowResult, lu=None):
+        """Sensitivities at a solved point, one column per lever (a parallel group's members
+        summed: they move together). ``lu``: the point's Jacobian factor, if already made."""
+        shunt_buses = np.concatenate([self.site_bus, self.exist_bus]).astype(np.int64)
+        sens = linearize(fr, shunt_buses=shunt_buses, vset_buses=self.vset_bus, xfmr_branches=self.tap_all,
+                         lu=lu)
         if len(self.tap_all) and self.tap_sum.shape[0] != self.tap_sum.shape[1]:
             sens.fold(len(shunt_buses) + len(self.vset_bus), self.tap_sum)
         return sens
@@ -349,3 +429,15 @@ class PlanProblem:
         return new
 
 
+def same_point(a: FlowResult, b: FlowResult, tol: float = 1e-9) -> bool:
+    """Two converged load flows of the same network data (every array equal) whose voltages
+    agree to ``tol`` pu: one operating point solved twice (to the load flow's tolerance)."""
+    if not (a.converged and b.converged) or a.v.shape != b.v.shape:
+        return False
+    ca, cb = a.compiled, b.compiled
+    if ca is not cb:
+        for f in dataclasses.fields(ca):
+            x, y = getattr(ca, f.name), getattr(cb, f.name)
+            if isinstance(x, np.ndarray) and not np.array_equal(x, y):
+                return False
+    return bool(np.max(np.abs(a.v - b.v), initial=0.0) <= tol) and np.array_equal(a.kind, b.kind)
