@@ -66,16 +66,50 @@ def _apply() -> bool:
     if any(k in os.environ for k in ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_",
                                      "PLANNER_DEFAULT_ALLOCATOR")):
         return False
-    try:
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
-        libc.gnu_get_libc_version     # glibc only: musl and others have no mallopt to speak of
-        mallopt = libc.mallopt
-    except (OSError, AttributeError):
+    libc = _glibc()
+    if libc is None:
         return False
+    mallopt = libc.mallopt
     mallopt.argtypes, mallopt.restype = (ctypes.c_int, ctypes.c_int), ctypes.c_int
     ok = mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD) == 1
     ok &= mallopt(_M_TRIM_THRESHOLD, TRIM_THRESHOLD) == 1
     return bool(ok)
+
+
+def _glibc():
+    """The GNU C library loaded through ctypes, once per process (None elsewhere: musl and
+    others have no mallopt / malloc_trim to speak of)."""
+    if not _libc:
+        try:
+            lib = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+            lib.gnu_get_libc_version
+            lib.mallopt, lib.malloc_trim
+            _libc.append(lib)
+        except (OSError, AttributeError):
+            _libc.append(None)
+    return _libc[0]
+
+
+_libc: list = []
+
+
+def release_free_memory() -> bool:
+    """Hand freed heap pages back to the system (glibc ``malloc_trim``); True if it ran.
+
+    The optimiser's final search frees a Jacobian LU (SuperLU's many allocations) and move
+    arrays of several MB every round; with the thresholds above such blocks stay in the heap, so
+    the resident set grew by 20-60 MB a round on the 10,000-bus grid (830 MB over 11 rounds
+    against 700 MB for the rest of the plan). Trimming after each round keeps it at the plan's
+    other peaks. It changes no result.
+
+    >>> release_free_memory() == (_glibc() is not None)
+    True
+    """
+    libc = _glibc()
+    if libc is None:
+        return False
+    libc.malloc_trim(0)
+    return True
 
 
 _controller: list = []

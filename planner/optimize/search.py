@@ -18,6 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..flow.runtime import release_free_memory
 from .ac_check import evaluate
 from .problem import Evaluation, PlanProblem, Settings
 from .results import StepRecord
@@ -358,32 +359,6 @@ def local_search(pb: PlanProblem, cur: Settings, ev: Evaluation, options, log: l
             progress(log[-1])
         release_free_memory()
     return cur, ev, predicted
-
-
-def release_free_memory():
-    """Hand freed heap pages back to the system (glibc ``malloc_trim``; elsewhere nothing).
-
-    Every search round frees a Jacobian LU (SuperLU's many allocations) and move arrays of
-    several MB; glibc keeps such freed blocks in the process heap once its mmap threshold has
-    risen, so the resident set grew by 20-60 MB a round on the 10,000-bus grid (to 830 MB over
-    11 rounds against 700 MB for the rest of the plan). Trimming each round keeps it at the
-    plan's other peaks. It changes no result."""
-    global _trim
-    if _trim is None:
-        _trim = False
-        try:
-            import ctypes
-            import ctypes.util
-            name = ctypes.util.find_library("c")
-            lib = ctypes.CDLL(name) if name else None
-            _trim = getattr(lib, "malloc_trim", False) or False
-        except (OSError, AttributeError):
-            _trim = False
-    if _trim:
-        _trim(0)
-
-
-_trim = None
 
 
 def worst(ev: Evaluation):

@@ -42,28 +42,6 @@ from ..network.compile import PQ, PV, SLACK
 # model is formed from the state-space Gram matrix instead (see Sensitivity.loss_model).
 EXPLICIT_LIMIT = 2_000_000
 
-# Right-hand sides per SuperLU triangular solve (None: all in one call). SuperLU sweeps every
-# right-hand side through each supernode in turn, so a block of a few hundred columns (tens of
-# MB) streams through memory once per supernode, where blocks of 16 stay in cache: measured on
-# the 10,000-bus meshed grid with 200 bank columns (scipy 1.17, one thread), one block 0.57 s,
-# blocks of 16 0.20-0.23 s. But the block size changes the last bits of the slopes (the dense
-# kernels inside the solve group the sums by block width), and the node-limited MILP step
-# then lands on another incumbent: on that grid the plan came out 0.5 MW worse (4,547.06-
-# 4,547.14 vs 4,546.588 MW). One call keeps the model, hence every plan, as it was.
-SOLVE_BLOCK = None
-
-
-def solve_columns(lu, rhs: np.ndarray, trans: str = "N") -> np.ndarray:
-    """``lu.solve`` of a (rows, k) right-hand side, ``SOLVE_BLOCK`` columns per call."""
-    k = rhs.shape[1]
-    if SOLVE_BLOCK is None or k <= SOLVE_BLOCK:
-        return lu.solve(rhs, trans=trans)
-    out = np.empty(rhs.shape, order="F")
-    for a in range(0, k, SOLVE_BLOCK):
-        out[:, a:a + SOLVE_BLOCK] = lu.solve(np.asfortranarray(rhs[:, a:a + SOLVE_BLOCK]), trans=trans)
-    return out
-
-
 @dataclass
 class Sensitivity:
     """Linear model of one operating point: value at the point and slope per lever.
@@ -226,8 +204,8 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, lu=No
     """Sensitivities at a solved point.
 
     One sparse LU of the Jacobian and one solve with a right-hand side per lever column (real
-    arrays only, see ``SOLVE_BLOCK``); everything else is formed from those
-    slopes on request.
+    arrays only, all columns in one call: blocked calls change the slopes' last bits, see
+    DEVELOPERS.md); everything else is formed from those slopes on request.
 
     Parameters
     ----------
@@ -269,7 +247,7 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, lu=No
     if m:
         rhs[:na] = ds_direct[pvpq].real.toarray()
         rhs[na:] = ds_direct[pq].imag.toarray()
-    dx = -solve_columns(lu, rhs) if rhs.size else np.zeros((pat.size, m))
+    dx = -lu.solve(rhs) if rhs.size else np.zeros((pat.size, m))
     del rhs
 
     dva = np.zeros((n, m))
