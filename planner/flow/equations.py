@@ -15,7 +15,12 @@ from ..network.compile import Compiled
 
 
 def load_power(c: Compiled, vm: np.ndarray, scale: float = 1.0) -> np.ndarray:
-    """Complex load per bus at voltage magnitudes ``vm`` (ZIP model), times ``scale``."""
+    """Complex load per bus at voltage magnitudes ``vm`` (ZIP model), times ``scale``.
+
+    Without voltage-dependent parts (the common case) this is ``c.s_load_p`` itself, not a
+    copy: callers never modify the array returned."""
+    if not (c.s_load_i.any() or c.s_load_z.any()):     # two cheap tests instead of five passes
+        return c.s_load_p if scale == 1.0 else scale * c.s_load_p
     s = c.s_load_p + c.s_load_i * vm + c.s_load_z * vm ** 2
     return s if scale == 1.0 else scale * s
 
