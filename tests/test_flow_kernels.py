@@ -43,6 +43,16 @@ def test_rotation_series_matches_the_complex_exponential(span, halvings, atol):
     assert np.abs(np.abs(got) - 1.0).max() < 2e-15        # scaled back to unit length after many
 
 
+@pytest.mark.parametrize("span", [1e-5, 1.3e-4, 1e-3, 4.6e-3, 0.01, 2.9e-2, 0.05, 9.3e-2, 0.15, 0.2])
+def test_rotation_with_fewer_series_terms_for_small_steps_stays_exact(span):
+    d = np.random.default_rng(11).uniform(-span, span, 20_000)
+    d[0] = span                                            # the bound itself
+    terms = nm._series_terms(span)
+    got = nm._rotation(d, 0, terms)
+    np.testing.assert_allclose(got, np.exp(-1j * d), rtol=0, atol=2.5e-16)
+    np.testing.assert_allclose(got, nm._rotation(d, 0), rtol=0, atol=2.5e-16)
+
+
 def test_rotation_falls_back_beyond_its_range_and_for_non_finite_steps():
     assert nm._halvings(np.array([204.8])) == 10
     assert nm._halvings(np.array([205.0])) is None         # 0.2 * 2**10 = 204.8 is the last in range

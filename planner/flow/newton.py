@@ -671,9 +671,10 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             def trial(alpha):
                 d_va = step_va if alpha == 1.0 else alpha * step_va
                 vm_new = vm - (d_vm if alpha == 1.0 else alpha * d_vm)
-                halvings = _halvings(d_va)
+                big = max(float(d_va.max()), -float(d_va.min()))
+                halvings = _halvings_of(big)
                 if halvings is not None:
-                    unit_new = unit * _rotation(d_va, halvings)
+                    unit_new = unit * _rotation(d_va, halvings, _series_terms(big * 0.5 ** halvings))
                 else:
                     unit_new = np.exp(1j * (np.angle(unit) - d_va))
                 v_new = vm_new * unit_new
@@ -727,7 +728,11 @@ _SIN = (1 / 39916800, -1 / 362880, 1 / 5040, -1 / 120, 1 / 6)  # 1 - sin(d)/d = 
 def _halvings(d: np.ndarray) -> int | None:
     """How often ``d`` must be halved to be within ``SMALL_ANGLE``; None beyond ``MAX_HALVINGS``
     (or for a non-finite step)."""
-    big = max(float(d.max()), -float(d.min())) if d.size else 0.0
+    return _halvings_of(max(float(d.max()), -float(d.min())) if d.size else 0.0)
+
+
+def _halvings_of(big: float) -> int | None:
+    """:func:`_halvings` for a step whose largest magnitude is ``big``."""
     k = 0
     while not big <= SMALL_ANGLE:             # also ends for NaN: k passes MAX_HALVINGS
         big *= 0.5
@@ -737,15 +742,31 @@ def _halvings(d: np.ndarray) -> int | None:
     return k
 
 
-def _rotation(d: np.ndarray, halvings: int = 0) -> np.ndarray:
+# Terms of the series needed for angles up to each bound: the first term left out, d^(2K+2) /
+# (2K+2)! for K terms of the cosine (the sine's is smaller still), is below 2^-56 there. Near
+# convergence the angle steps are 1e-3 rad and less, and two or three terms do.
+_TERM_BOUNDS = ((1.3e-4, 1), (4.6e-3, 2), (2.9e-2, 3), (9.3e-2, 4))
+
+
+def _series_terms(big: float) -> int:
+    """Terms of the cosine and sine series for angles within ``big`` (at most 5, for 0.2 rad)."""
+    for bound, terms in _TERM_BOUNDS:
+        if big <= bound:
+            return terms
+    return len(_COS)
+
+
+def _rotation(d: np.ndarray, halvings: int = 0, terms: int | None = None) -> np.ndarray:
     """``exp(-j d)`` for angles ``|d| <= SMALL_ANGLE * 2**halvings`` by Horner sums of the cosine
-    and sine series of ``d / 2**halvings`` (to double precision), squared ``halvings`` times."""
+    and sine series of ``d / 2**halvings`` (to double precision), squared ``halvings`` times.
+    ``terms`` (from :func:`_series_terms` of the halved step; all by default) of each series."""
     if halvings:
         d = d * 0.5 ** halvings
+    k = len(_COS) if terms is None else terms
     t = d * d
     out = np.empty(len(d), complex)
     parts = out.view(np.float64)
-    for coef, into in ((_COS, parts[0::2]), (_SIN, parts[1::2])):
+    for coef, into in ((_COS[-k:], parts[0::2]), (_SIN[-k:], parts[1::2])):
         acc = t * coef[0]
         for a in coef[1:]:
             acc += a
