@@ -438,7 +438,8 @@ def implausible(c: Compiled, y, v: np.ndarray, cache: SymbolicCache | None = Non
     # screen without angles: |angle of z| > limit exactly when Re z < cos(limit) |z|, where
     # z = V_f conj(V_t) turned back by the phase shifts (no arctan, no wrapping for every branch)
     z = v[c.f] * np.conj(v[c.t])
-    z *= turn
+    if c.shift.any():
+        z *= turn
     if not (ok_branch & (z.real < cos_limit * np.abs(z))).any():
         return _loss_check(c, y, v, vm, cache, ibus)
     ang = np.angle(v)
@@ -503,8 +504,13 @@ def _dc_loss_estimate(c: Compiled, cache: SymbolicCache | None = None):
         if lu is None:
             return None
         n = c.n
-        p_shift = np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
-        p = (c.s_gen - c.s_load_p - c.s_load_i - c.s_load_z).real - c.ysh.real - p_shift
+        # on the real parts (float passes, no complex temporaries); phase shifts are rare
+        p = c.s_gen.real - c.s_load_p.real
+        p -= c.s_load_i.real
+        p -= c.s_load_z.real
+        p -= c.ysh.real
+        if c.shift.any():
+            p -= np.bincount(c.f, -bser * c.shift, n) + np.bincount(c.t, bser * c.shift, n)
         va = np.where(c.kind == SLACK, c.va_stored, 0.0)
         if "p" in last and np.array_equal(last["p"], p) and np.array_equal(last["va"], va) \
                 and np.array_equal(last["shift"], c.shift) and np.array_equal(last["tap_from"], c.tap_from):
