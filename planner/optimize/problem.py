@@ -295,11 +295,6 @@ class PlanProblem:
             q_sel = np.flatnonzero(q_near)
         else:
             q_sel = np.zeros(0, np.int64)
-        # a generator held at a reactive limit sits on it to the load flow's tolerance: like a
-        # bus on its band's edge it must not pay the model's penalty at the present point
-        q0, q_lo, q_hi = sens.q0[q_sel], c.q_min[gb][q_sel], c.q_max[gb][q_sel]
-        q_lo = np.where(q0 >= q_lo - 1e-6, np.minimum(q_lo, q0), q_lo)
-        q_hi = np.where(q0 <= q_hi + 1e-6, np.maximum(q_hi, q0), q_hi)
         cur_units = st.fixed + st.steps[l]
         s_rows = s0 = ds = s_hi = None
         if self.limits.ratings:
@@ -313,7 +308,7 @@ class PlanProblem:
         return LevelData(
             s_rows=s_rows, s0=s0, ds=ds, s_hi=s_hi,            weight=float(self.loss_weights()[l]), d=d, R=R, const=const,
             v_rows=v_rows, v0=vm[v_rows], dv=sens.dvm[v_rows], v_lo=vmin[v_rows], v_hi=vmax[v_rows],
-            q_rows=gb[q_sel], q0=q0, dq=sens.dq[q_sel], q_lo=q_lo, q_hi=q_hi,
+            q_rows=gb[q_sel], q0=sens.q0[q_sel], dq=sens.dq[q_sel], q_lo=c.q_min[gb][q_sel], q_hi=c.q_max[gb][q_sel],
             cur_units=cur_units.astype(float), cur_exist=st.exist[l].astype(int),
             v_now=np.abs(fr.v[self.vset_bus]),
             extra_rows=[r for side in self.side_constraints for r in side.rows(self, l, st, fr)],
