@@ -602,11 +602,11 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
 
     def residual(vv, vmm):
         ib = y @ vv
-        mis = vv * np.conj(ib)
-        mis -= s_fixed
+        s_bus = vv * np.conj(ib)             # kept: the next Jacobian needs it too
+        mis = s_bus - s_fixed
         if zip_loads:
             mis += scale * (c.s_load_i * vmm + c.s_load_z * vmm ** 2)
-        return np.take(mis.view(np.float64), pick), ib
+        return np.take(mis.view(np.float64), pick), ib, s_bus
 
     n = c.n
     # place of each unknown in the stacked step [angle step, |V| step] over all buses; the other
@@ -621,7 +621,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             vm = np.abs(v)
             # e^(j angle) (1 at a dead bus); times |V| it is V
             unit = np.divide(v, vm, out=np.ones(n, complex), where=vm > 0)
-            F, ibus = residual(v, vm)
+            F, ibus, s_bus = residual(v, vm)
         except FloatingPointError:
             return v, iters, diverged, "the iteration diverged (numerical overflow)"
         recent: list[float] = []
@@ -654,7 +654,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             try:
                 dload = load_derivative(c, vm, scale) if zip_loads else None
                 if ordered:
-                    dx = system.solve_ordered(v, dload, F, ibus)
+                    dx = system.solve_ordered(v, dload, F, ibus, s_bus)
                 else:
                     dx = system.solve(v, dload, F, ibus)
                 finite = np.isfinite(dx).all()
@@ -685,14 +685,14 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                     unit_new = np.exp(1j * (np.angle(unit) - d_va))
                 v_new = vm_new * unit_new
                 try:
-                    F_new, ib_new = residual(v_new, vm_new)
+                    F_new, ib_new, s_new = residual(v_new, vm_new)
                     m = float(np.sqrt(F_new @ F_new))
                 except FloatingPointError:
-                    F_new, ib_new, m = None, None, np.inf
-                positive = vm_new[pq].size == 0 or vm_new[pq].min() > 0.0
-                return v_new, vm_new, unit_new, F_new, ib_new, (m if positive else np.inf), m
+                    F_new, ib_new, s_new, m = None, None, None, np.inf
+                positive = pq.size == 0 or vm_new[pq].min() > 0.0
+                return v_new, vm_new, unit_new, F_new, ib_new, s_new, (m if positive else np.inf), m
 
-            v_new, vm_new, unit_new, F_new, ib_new, m1, m_next = trial(1.0)
+            v_new, vm_new, unit_new, F_new, ib_new, s_new, m1, m_next = trial(1.0)
             alpha = 1.0
             if not (m1 <= GROWTH_BOUND * min(recent)):
                 # rejected: optimal multiplier from the full-step point, then halving
@@ -701,7 +701,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
                 else:
                     alpha = 0.5
                 for _ in range(LINE_SEARCH_STEPS):
-                    v_new, vm_new, unit_new, F_new, ib_new, m, m_next = trial(alpha)
+                    v_new, vm_new, unit_new, F_new, ib_new, s_new, m, m_next = trial(alpha)
                     if m <= (1.0 - 1e-4 * alpha) * merit:
                         break
                     alpha *= 0.5
@@ -711,7 +711,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             tiny = tiny + 1 if alpha < TINY_STEP else 0
             if tiny >= STALL_STEPS:
                 return v, iters, diverged, "the iteration diverged (stalled: only tiny steps lower the mismatch)"
-            v, vm, unit, F, ibus = v_new, vm_new, unit_new, F_new, ib_new
+            v, vm, unit, F, ibus, s_bus = v_new, vm_new, unit_new, F_new, ib_new, s_new
             merit = m_next if np.isfinite(m_next) else None
 
 
