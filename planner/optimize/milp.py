@@ -20,10 +20,13 @@ pyo = None   # pyomo.environ, imported on first use: importing Pyomo costs secon
 
 def _load():
     """Import Pyomo when a model is first built, so reading or solving a network never pays
-    for it."""
+    for it. Only its modelling core, the relaxation transformation (planner.optimize.bound)
+    and the HiGHS interface are imported, not ``pyomo.environ`` with every plugin package:
+    0.7-0.9 s instead of 1.1-1.4 s on the development machine."""
     global pyo
     if pyo is None:
-        import pyomo.environ as _pyo
+        import pyomo.core as _pyo
+        import pyomo.core.plugins.transform.discrete_vars  # noqa: F401  (registers core.relax_integer_vars)
         pyo = _pyo
     return pyo
 
@@ -518,9 +521,9 @@ class StepSolution:
 
 def new_solver():
     """A persistent HiGHS interface: re-solves after added cuts update the model in place."""
-    from pyomo.contrib.solver.common.factory import SolverFactory
+    from pyomo.contrib.solver.solvers.highs import Highs
 
-    return SolverFactory("highs")
+    return Highs()
 
 
 def deterministic_options(spec) -> dict:
