@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-pyo = None   # pyomo.environ, imported on first use: importing Pyomo costs seconds (see _load)
+pyo = None   # pyomo.core, imported on first use: importing Pyomo costs seconds (see _load)
 
 
 def _load():
@@ -25,10 +25,40 @@ def _load():
     0.7-0.9 s instead of 1.1-1.4 s on the development machine."""
     global pyo
     if pyo is None:
+        keep_scipy_deferred()
         import pyomo.core as _pyo
         import pyomo.core.plugins.transform.discrete_vars  # noqa: F401  (registers core.relax_integer_vars)
         pyo = _pyo
     return pyo
+
+
+def keep_scipy_deferred():
+    """Let Pyomo register SciPy as a deferred import, as it does when SciPy is not loaded yet.
+
+    Pyomo's dependency table imports an optional package at once when it is already in
+    ``sys.modules``, and for SciPy that means ``scipy.stats``, ``scipy.integrate`` and
+    ``scipy.spatial`` as well (about 0.8 s on a quiet machine; the tool uses none of them).
+    The planner has always loaded SciPy first, so every plan paid for it. Hiding the top-level
+    module while that one table is built keeps SciPy deferred; it is put back before any other
+    code runs, and the modules Pyomo later asks for resolve to the very same SciPy. Skipped
+    when other threads run (one could import SciPy inside the window) or the table is built;
+    the commands that make plans call it before they start a progress bar's thread.
+
+    >>> keep_scipy_deferred()     # returns at once once Pyomo's table exists
+    >>> import sys; "pyomo.common.dependencies" in sys.modules
+    True
+    """
+    import sys
+    import threading
+
+    if "pyomo.common.dependencies" in sys.modules or "scipy" not in sys.modules \
+            or threading.active_count() > 1:
+        return
+    scipy = sys.modules.pop("scipy")
+    try:
+        import pyomo.common.dependencies  # noqa: F401  (builds the deferred-import table)
+    finally:
+        sys.modules["scipy"] = scipy
 
 
 @dataclass
@@ -126,6 +156,10 @@ def build_model(spec: StepSpec):
 
     m = pyo.ConcreteModel(name="loss_step")
     nS, nL = len(spec.unit_pu), len(spec.levels)
+    # With continuous levers only (setpoints, continuous taps) the step is a convex QP: HiGHS
+    # solves the exact quadratic loss model, with no tangent cuts and no refinement rounds.
+    # Any integer lever needs the cuts: HiGHS solves no mixed-integer QP.
+    m.exact_quadratic = is_continuous_step(spec)
     S, E, G, T, L = range(nS), range(len(spec.exist_step_pu)), range(len(spec.v_lo)), range(len(spec.tap_step)), range(nL)
     nmax = np.asarray(spec.max_units, int)
     cur = np.array([lev.cur_units for lev in spec.levels], float).reshape(nL, nS)
@@ -274,13 +308,15 @@ def build_model(spec: StepSpec):
             float(root * lev.d[k] + const[k]), linear([1.0] + [-c for c in terms[k][0]], [b.s[k]] + terms[k][1]),
             float(root * lev.d[k] + const[k])))
         b.cuts = pyo.ConstraintList()
+        if m.exact_quadratic:
+            b.w.fix(0.0)     # unused: the objective holds the squares themselves (below)
         count = _cut_counts(spec, s_hi - s_lo, loss_now)
-        for k in K:
+        for k in ([] if m.exact_quadratic else K):
             pts = np.linspace(s_lo[k], s_hi[k], count[k]) if s_hi[k] > s_lo[k] else np.array([s_lo[k]])
             pts = np.unique(np.concatenate([pts, [root * lev.d[k]]]))
             for p in pts[pts != 0.0]:     # the cut at 0 is w >= 0, the variable's own bound
                 b.cuts.add((None, linear([2.0 * p, -1.0], [b.s[k], b.w[k]]), p * p))
-        for seed in spec.seeds:
+        for seed in ([] if m.exact_quadratic else spec.seeds):
             for k, p in enumerate(root * (lev.d + lev.R @ seed[l])):
                 if p != 0.0:
                     b.cuts.add((None, linear([2.0 * p, -1.0], [b.s[k], b.w[k]]), p * p))
@@ -303,13 +339,24 @@ def build_model(spec: StepSpec):
         obj_vars += [m.k[l, s] for s in S]
     obj_coef += [spec.tie_break] * nS + [2.0 * spec.tie_break] * nS
     obj_vars += [m.nf[s] for s in S] + [m.ns[s] for s in S]
-    m.objective = pyo.Objective(expr=linear(obj_coef, obj_vars, obj_const), sense=pyo.minimize)
+    expr = linear(obj_coef, obj_vars, obj_const)
+    if m.exact_quadratic:
+        expr = expr + pyo.quicksum(spec.levels[l].weight / scale * m.levels[l].s[k] ** 2
+                                   for l in L for k in range(len(spec.levels[l].d)))
+    m.objective = pyo.Objective(expr=expr, sense=pyo.minimize)
     # objective value = the solver's objective + this constant (solve_model adds it back)
     m.objective_offset = float(offset)
     # per level: the lever columns (variables, scale, offset; du = scale * var - offset), read
     # by reduce_candidates to evaluate the loss model at a relaxed solution
     m.level_columns = level_columns
     return m
+
+
+def is_continuous_step(spec: StepSpec) -> bool:
+    """True when no lever of the step is an integer: no bank sites, no existing banks, no
+    stepped taps (the step model is then a convex QP, solved exactly)."""
+    return (len(spec.unit_pu) == 0 and len(spec.exist_step_pu) == 0
+            and not np.any(np.asarray(spec.tap_step, float) > 0))
 
 
 def _cut_counts(spec: StepSpec, width: np.ndarray, loss_mw: float) -> np.ndarray:
@@ -374,6 +421,8 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_
         gap = 0.0
         total = 0.0
         added = False
+        if m.exact_quadratic:
+            break        # the exact quadratic: nothing to refine
         for l, lev in enumerate(spec.levels):
             b = m.levels[l]
             total += lev.weight * float(sol.predicted_loss_pu[l]) * spec.base_mva
