@@ -79,3 +79,35 @@ def test_later_steps_with_a_site_trust_region_are_not_reduced(first_step, monkey
     spec = pb.step_spec(here, evaluate(pb, here).flows, 0.05, 10, 4, radius_sites=2)
     m = milp.build_model(spec)
     assert milp.reduce_candidates(m, spec, milp.new_solver()) is None
+
+
+def test_later_steps_of_a_large_placement_start_at_the_present_point(first_step, monkeypatch):
+    pb, st, _, spec0 = first_step
+    here = st.copy()
+    here.fixed[[11, 22, 28]] = [3, 4, 8]             # buses 13, 24, 30
+    spec = pb.step_spec(here, evaluate(pb, here).flows, 0.05, 10, 4, radius_sites=2)
+    # 32 candidates: below the threshold no start is made
+    assert milp.present_point_start(milp.build_model(spec), spec) is None
+    assert milp.present_point_start(milp.build_model(spec0), spec0) is None
+    monkeypatch.setattr(milp, "REDUCE_ABOVE", 5)
+    m = milp.build_model(spec)
+    start = milp.present_point_start(m, spec)
+    values = {id(v): x for v, x in start}
+    assert [values[id(m.z[s])] for s in range(32)] == [1.0 if s in (11, 22, 28) else 0.0 for s in range(32)]
+    assert [values[id(m.nf[s])] for s in range(32)] == list(here.fixed.astype(float))
+    # the first step (no sites in use) gets none
+    assert milp.present_point_start(milp.build_model(spec0), spec0) is None
+    with_start, _, _ = milp.solve_step(spec)
+    monkeypatch.setattr(milp, "REDUCE_ABOVE", 100)
+    without, _, _ = milp.solve_step(spec)
+    assert with_start.ok and without.ok
+    # both solves end within the MILP gap of each other, and no worse than staying put: the
+    # present point's own model objective, every decision fixed at the start
+    assert with_start.objective == pytest.approx(without.objective, rel=spec.mip_gap)
+    assert with_start.objective <= without.bound * (1.0 + spec.mip_gap) + 1e-12
+    fixed = milp.build_model(spec)
+    for v, x in milp.present_point_start(fixed, spec):
+        v.fix(x)
+    stay = milp.solve_model(fixed, spec)
+    assert stay.ok and np.array_equal(stay.fixed, here.fixed)
+    assert with_start.objective <= stay.objective + 1e-12
