@@ -105,6 +105,7 @@ def test_later_steps_of_a_large_placement_start_at_the_present_point(first_step,
     # present point's own model objective, every decision fixed at the start
     assert with_start.objective == pytest.approx(without.objective, rel=spec.mip_gap)
     assert with_start.objective <= without.bound * (1.0 + spec.mip_gap) + 1e-12
+    monkeypatch.setattr(milp, "REDUCE_ABOVE", 5)
     fixed = milp.build_model(spec)
     for v, x in milp.present_point_start(fixed, spec):
         v.fix(x)
