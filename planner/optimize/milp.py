@@ -404,6 +404,7 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_
     # many candidate sites: the MILP runs on those its relaxation ranks best (reduce_candidates);
     # the relaxation's optimum stays the step's lower bound, valid for every candidate
     relaxed_bound = reduce_candidates(m, spec, solver)
+    timed_out = bool(getattr(m, "reduction_time_limited", False))
     # the first solve has no start (one at the present point changed which of the near-equal
     # solutions inside the gap a node-limited solve returns: plans up to 1e-4 worse on the
     # demo, see DEVELOPERS.md), except in the later steps of a large placement
@@ -470,11 +471,13 @@ KEEP_MIN, KEEP_MAX = 2, 3
 def reduce_candidates(m, spec: StepSpec, solver) -> float | None:
     """Restrict a large first-step site choice to the candidates its relaxation ranks best.
 
-    Applies when a site limit is given, no site trust region is active (the first step) and
-    more than ``REDUCE_ABOVE`` (and ``KEEP_MAX`` x the limit) new sites are free. Solves the LP
-    relaxation of ``m`` on ``solver``, fixes the site binaries of the dropped candidates at
-    zero and returns the relaxation's objective (model units): a lower bound of the step
-    model over every candidate. Returns None where nothing was reduced.
+    Applies when a site limit is given, no site trust region is active (the first step; every
+    step when ``Options.site_radius`` is None) and more than ``REDUCE_ABOVE`` (and ``KEEP_MAX``
+    x the limit) new sites are free. Solves the LP relaxation of ``m`` on ``solver``, fixes the
+    site binaries of the dropped candidates at zero and returns the relaxation's objective
+    (model units): a lower bound of the step model over every candidate. Returns None where
+    nothing was reduced. Sets ``m.reduction_time_limited`` when the emergency time limit
+    stopped the relaxation (the full MILP then runs, and the step records the stop).
     """
     cap = spec.max_new_sites
     nS = len(spec.unit_pu)
@@ -488,6 +491,8 @@ def reduce_candidates(m, spec: StepSpec, solver) -> float | None:
     try:
         res = solver.solve(m, load_solutions=False, time_limit=spec_time_limit(spec),
                            raise_exception_on_nonoptimal_result=False, solver_options=opts)
+        if "TimeLimit" in str(res.termination_condition):
+            m.reduction_time_limited = True
         if str(res.solution_status).split(".")[-1] != "optimal":
             return None
         res.solution_loader.load_vars()
