@@ -46,6 +46,9 @@ def test_reduced_step_keeps_the_relaxations_best_sites_and_a_valid_bound(first_s
     full, _, _ = milp.solve_step(spec)
     assert full.ok
     monkeypatch.setattr(milp, "REDUCE_ABOVE", 5)
+    # the reduced choice is kept however far from the bound (the feeder's relaxation gap is
+    # 2 %: with the default acceptance the full MILP would run, see the test below)
+    monkeypatch.setattr(milp, "REDUCE_ACCEPT", float("inf"))
     m = milp.build_model(spec)
     bound = milp.reduce_candidates(m, spec, milp.new_solver())
     assert bound is not None
@@ -112,3 +115,19 @@ def test_later_steps_of_a_large_placement_start_at_the_present_point(first_step,
     stay = milp.solve_model(fixed, spec)
     assert stay.ok and np.array_equal(stay.fixed, here.fixed)
     assert with_start.objective <= stay.objective + 1e-12
+
+
+def test_a_reduced_choice_far_from_the_bound_falls_back_to_the_full_milp(first_step, monkeypatch):
+    _, _, _, spec = first_step
+    monkeypatch.setattr(milp, "REDUCE_ABOVE", 5)
+    monkeypatch.setattr(milp, "REDUCE_ACCEPT", float("inf"))
+    reduced, solves_reduced, _ = milp.solve_step(spec)
+    # acceptance 0: every reduced choice counts as far, the full MILP runs from it
+    monkeypatch.setattr(milp, "REDUCE_ACCEPT", 0)
+    fell_back, solves_full, _ = milp.solve_step(spec)
+    assert reduced.ok and fell_back.ok
+    assert solves_full >= 2 and solves_full >= solves_reduced
+    # started at the reduced choice, the full MILP returns one at least as good (within the
+    # cut refinement's tolerance), and the bound stays the relaxation's
+    assert fell_back.objective <= reduced.objective * (1.0 + 1e-5)
+    assert fell_back.bound <= reduced.bound + 1e-12

@@ -413,6 +413,16 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_
     for _ in range(max_rounds):
         sol = solve_model(m, spec, solver, start=start)
         solves += 1
+        if relaxed_bound is not None and not rounds and sol.ok and \
+                sol.objective - relaxed_bound > REDUCE_ACCEPT * spec_mip_gap(spec) * abs(sol.objective):
+            # the reduced choice is far from the relaxation's bound: the dropped sites may be the
+            # ones the step needs, so the full MILP runs, started at the reduced choice
+            timed_out = timed_out or sol.time_limited
+            for s in m.reduced_away:
+                m.z[s].unfix()
+                m.zs[s].unfix()
+            sol = solve_model(m, spec, solver, start=_decision_values(m))
+            solves += 1
         timed_out = timed_out or sol.time_limited
         sol.time_limited = timed_out
         if relaxed_bound is not None and sol.ok:
@@ -463,9 +473,13 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_
 # opens at all, at least KEEP_MIN and at most KEEP_MAX times the site limit. Ranked by relaxed
 # opening (z) first, then by the loss model's slope at the relaxed point (the most loss saved
 # per unit first), then by index. Sites holding units now are always kept. Later steps and the
-# final search see every candidate again.
+# final search see every candidate again. The reduced choice is kept only when its objective is
+# within REDUCE_ACCEPT x the MILP gap of the relaxation's bound; otherwise (a relaxation that
+# serves breached limits fractionally from many sites ranks the sites poorly) the full MILP
+# runs, started at the reduced choice.
 REDUCE_ABOVE = 100
 KEEP_MIN, KEEP_MAX = 2, 3
+REDUCE_ACCEPT = 10
 
 
 def reduce_candidates(m, spec: StepSpec, solver) -> float | None:
@@ -510,7 +524,8 @@ def reduce_candidates(m, spec: StepSpec, solver) -> float | None:
     rank = free[np.lexsort((free, slope[free], -np.round(opened[free], 9)))]
     support = int(np.count_nonzero(opened[free] > 1e-6))
     keep = int(np.clip(support, KEEP_MIN * int(cap), KEEP_MAX * int(cap)))
-    for s in rank[keep:].tolist():
+    m.reduced_away = rank[keep:].tolist()
+    for s in m.reduced_away:
         m.z[s].fix(0)
         m.zs[s].fix(0)
     return float(pyo.value(m.objective)) + float(getattr(m, "objective_offset", 0.0))
