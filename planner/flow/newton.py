@@ -677,8 +677,7 @@ def _newton(ctx: _Context, v, st: _LimitState, scale, tol, max_iter, iters, hist
             def trial(alpha):
                 d_va = step_va if alpha == 1.0 else alpha * step_va
                 vm_new = vm - (d_vm if alpha == 1.0 else alpha * d_vm)
-                unit_new = _turn_phasors(d_va, max(float(d_va.max()), -float(d_va.min())))
-                unit_new *= unit
+                unit_new = unit * _turn_phasors(d_va, max(float(d_va.max()), -float(d_va.min())))
                 v_new = vm_new * unit_new
                 try:
                     F_new, ib_new, s_new = residual(v_new, vm_new)
