@@ -211,7 +211,13 @@ class PlanProblem:
         ratio = c.ratio.copy()
         for g, br in enumerate(self.tap_members):
             ratio[br] = st.ratio[l, g]
-        return replace(c, ysh=ysh, v_set=v_set, ratio=ratio)
+        out = replace(c, ysh=ysh, v_set=v_set, ratio=ratio)
+        if np.array_equal(ratio, c.ratio):
+            # the same branches at the same ratios: the branch admittance matrix is the level's
+            # own (its cache entry is keyed by the ratios, so a later change rebuilds it)
+            c.ybranch()
+            out._cache["ybranch"] = c._cache["ybranch"]
+        return out
 
     def capital(self, st: Settings) -> float:
         total = 0.0
