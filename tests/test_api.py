@@ -72,3 +72,20 @@ def test_pyomo_not_imported_by_the_package_or_the_flow(code):
                        cwd=ROOT, capture_output=True, text=True, timeout=120)
     assert p.returncode == 0, p.stderr
     assert p.stdout.strip().splitlines()[-1] == "False"
+
+
+def test_a_plan_does_not_load_the_scipy_parts_pyomo_would_import_eagerly():
+    # Pyomo imports scipy.stats, scipy.integrate and scipy.spatial at once when SciPy is already
+    # loaded (about 0.8 s); planner.optimize.milp.keep_scipy_deferred keeps them deferred. The
+    # plan must still come out right and SciPy must stay one module object.
+    code = ("import sys, scipy, planner\n"
+            "from planner.optimize import LevelCase, Levers, Limits\n"
+            "net = planner.read_network('tests/data/ieee30cdf.txt')\n"
+            "p = planner.plan([LevelCase('base', net)], Levers(gen_v_range={'*': (0.95, 1.10)}),\n"
+            "                 Limits(v_min=0.95, v_max=1.05))\n"
+            "print(sys.modules['scipy'] is scipy, 'scipy.stats' in sys.modules, 'pyomo' in sys.modules,\n"
+            "      p.status.name, round(p.losses_after_mw['base'], 4))\n")
+    p = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert p.returncode == 0, p.stderr
+    # the optimum equals the SLSQP reference of tests/test_optimize.py (16.5959 MW)
+    assert p.stdout.split() == ["True", "False", "True", "VERIFIED", "16.5959"]

@@ -467,6 +467,34 @@ def test_serial_and_two_jobs_give_byte_identical_plans(two_level):
     assert plans[0][1].verified and plans[0][1].banks
 
 
+def test_workers_import_this_package_not_a_planner_folder_in_the_current_folder(tmp_path):
+    # A `planner` folder in the current folder (another checkout, a data folder of that name)
+    # must not be what the worker processes import: the fork server is a `python -c` process,
+    # which puts the current folder first on its path. Here the decoy's study module lacks the
+    # worker function, so a worker that imported it could not run any plan.
+    decoy = tmp_path / "planner"
+    (decoy / "study").mkdir(parents=True)
+    (decoy / "__init__.py").write_text("")
+    (decoy / "study" / "__init__.py").write_text("")
+    (decoy / "study" / "run.py").write_text("DECOY = True\n")
+    code = ("import sys; sys.path[:] = [p for p in sys.path if p not in ('', '.')]\n"
+            "from planner.study.run import plan_alternatives\n"
+            "from planner.study.spec import read_study\n"
+            "if __name__ == '__main__':\n"
+            f"    out = plan_alternatives(read_study({str(TWO_LEVELS)!r}), jobs=2)\n"
+            "    print([round(p.losses_after_mw['peak'], 6) for _, p in out])\n")
+    import os
+    import subprocess
+    import sys
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(Path(__file__).resolve().parents[1]),
+                                                       os.environ.get("PYTHONPATH", "")]))
+    p = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, env=env,
+                       timeout=300)
+    assert p.returncode == 0, p.stderr[-2000:]
+    serial = plan_alternatives(read_study(TWO_LEVELS), jobs=1)
+    assert p.stdout.strip() == str([round(pl.losses_after_mw["peak"], 6) for _, pl in serial])
+
+
 def test_plan_alternatives_builds_no_report_data():
     spec = read_study(STUDIES / "feeder33_plan.toml")
     out = plan_alternatives(spec, jobs=1)

@@ -61,6 +61,8 @@ def run_plan_file(path, json_path=None, quiet=False, level=None, jobs=None) -> i
     spec.levels = chosen
     spec.peak_level = chosen[0].name
     spec.alternatives = [AlternativeSpec(name="plan", description="every lever the study file enables")]
+    from ..optimize.milp import keep_scipy_deferred
+    keep_scipy_deferred()   # before the progress bar's thread starts (see its docstring)
     progress = Progress(quiet)
     try:
         plans = plan_alternatives(spec, progress=progress, jobs=jobs)

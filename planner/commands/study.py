@@ -57,6 +57,8 @@ def run_study_file(path, out_dir=None, quiet=False, jobs=None, scheduler=None) -
     target = report_folder(spec, out_dir)
     check_folder_target(target, option, marker=MARKER)
     warn_about_model(con, spec.network_path)
+    from ..optimize.milp import keep_scipy_deferred
+    keep_scipy_deferred()   # before the progress bar's thread starts (see its docstring)
     progress = Progress(quiet, iterations=spec.max_iterations)
     try:
         result = run_study(spec, progress=progress, jobs=jobs)

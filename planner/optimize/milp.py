@@ -23,9 +23,39 @@ def _load():
     for it."""
     global pyo
     if pyo is None:
+        keep_scipy_deferred()
         import pyomo.environ as _pyo
         pyo = _pyo
     return pyo
+
+
+def keep_scipy_deferred():
+    """Let Pyomo register SciPy as a deferred import, as it does when SciPy is not loaded yet.
+
+    Pyomo's dependency table imports an optional package at once when it is already in
+    ``sys.modules``, and for SciPy that means ``scipy.stats``, ``scipy.integrate`` and
+    ``scipy.spatial`` as well (about 0.8 s on a quiet machine; the tool uses none of them).
+    The planner has always loaded SciPy first, so every plan paid for it. Hiding the top-level
+    module while that one table is built keeps SciPy deferred; it is put back before any other
+    code runs, and the modules Pyomo later asks for resolve to the very same SciPy. Skipped
+    when other threads run (one could import SciPy inside the window) or the table is built;
+    the commands that make plans call it before they start a progress bar's thread.
+
+    >>> keep_scipy_deferred()     # returns at once once Pyomo's table exists
+    >>> import sys; "pyomo.common.dependencies" in sys.modules
+    True
+    """
+    import sys
+    import threading
+
+    if "pyomo.common.dependencies" in sys.modules or "scipy" not in sys.modules \
+            or threading.active_count() > 1:
+        return
+    scipy = sys.modules.pop("scipy")
+    try:
+        import pyomo.common.dependencies  # noqa: F401  (builds the deferred-import table)
+    finally:
+        sys.modules["scipy"] = scipy
 
 
 @dataclass

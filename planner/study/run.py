@@ -12,6 +12,7 @@ from __future__ import annotations
 import datetime as _dt
 import os
 import re
+import sys
 import signal
 from pathlib import Path
 
@@ -283,15 +284,27 @@ def _size(levers: Levers) -> int:
 _BLAS_VARS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 
-class _one_blas_thread:
-    """One BLAS thread in the worker processes started inside (their environment is set before
-    they import numpy); this process's environment is given back afterwards. The plans also cap
-    BLAS threads themselves (threadpoolctl), so a fork server started earlier is covered too."""
+class _worker_environment:
+    """The environment of the worker processes started inside; this process's own is given back
+    afterwards.
+
+    * One BLAS thread (set before the workers import numpy). The plans also cap BLAS threads
+      themselves (threadpoolctl), so a fork server started earlier is covered too.
+    * ``PYTHONSAFEPATH=1`` when the current folder is not on this process's import path (the
+      ``planner`` command): the fork server is a ``python -c`` process, which would put the
+      current folder first on its path and import ``planner.study.run`` from a ``planner``
+      folder there (another checkout, or a user's data folder of that name) instead of the
+      package this process runs. Measured: a study run from another checkout's folder made its
+      plans with that checkout's code.
+    """
+    _VARS = _BLAS_VARS + ("PYTHONSAFEPATH",)
 
     def __enter__(self):
-        self.saved = {k: os.environ.get(k) for k in _BLAS_VARS}
+        self.saved = {k: os.environ.get(k) for k in self._VARS}
         for k in _BLAS_VARS:
             os.environ.setdefault(k, "1")
+        if not {"", os.getcwd()} & {os.path.abspath(p) if p else p for p in sys.path}:
+            os.environ["PYTHONSAFEPATH"] = "1"
         return self
 
     def __exit__(self, *exc):
@@ -323,7 +336,7 @@ def _run_parallel(spec, alts, cases, sites, limits, objective, options, jobs, sa
         # every worker is known before an interrupt can stop them: a signal that arrives while
         # they start is delivered on leaving this block, inside the try, so the clean-up below
         # stops them all (and waits for them) before this process lets go of the shared queue
-        with _signals_deferred(), _one_blas_thread():
+        with _signals_deferred(), _worker_environment():
             q = ctx.Queue()
             pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx, initializer=_worker_init, initargs=(q,))
             levers = [_levers(spec, alt, sites) for alt in alts]
