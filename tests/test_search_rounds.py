@@ -7,6 +7,7 @@ one move at a time); settings added up by hand.
 """
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 
 import numpy as np
@@ -21,7 +22,7 @@ from planner.optimize.ac_check import evaluate
 from planner.optimize.engine import LevelCase
 from planner.optimize.levers import BankSite, Levers, Limits, Objective, Options
 from planner.optimize.problem import PlanProblem
-from planner.optimize.search import candidate_moves, combine, screen
+from planner.optimize.search import MoveSet, _joined, candidate_moves, combine, screen
 from planner.optimize.sensitivity import OrderedFactor, _jacobian_at, lifted_kinds
 
 DATA = Path(__file__).resolve().parent / "data"
@@ -112,3 +113,36 @@ def test_combined_moves_add_up_on_separate_sites_and_skip_a_site_already_moved(f
     assert got.key() == want.key()
     assert combine(cur, [a, same_site]) is None      # only one move combines
     assert cur.fixed[10 - 2] == 4 and a.fixed[12 - 2] == 4 and b.fixed[30 - 2] == 6   # inputs untouched
+
+
+def test_a_move_joins_only_when_its_gain_outweighs_the_models_interaction(f33):
+    # two banks dropped on the 33-bus feeder with a 0.95-1.05 band: the model sees their
+    # effects compound (losses and voltage rows), so the second joins the first only if its own
+    # AC gain is larger than that interaction (written out here by the dense model)
+    pb = PlanProblem([LevelCase("base", f33)], Levers(sites=[BankSite(b, 0.15, 10) for b in range(2, 34)]),
+                     Limits(v_min=0.95, v_max=1.05), Objective(), Options())
+    cur = pb.initial_settings()
+    cur.fixed[18 - 2], cur.fixed[30 - 2] = 3, 5
+    ev = evaluate(pb, cur)
+    drop_18, drop_30 = cur.copy(), cur.copy()
+    drop_18.fixed[18 - 2] = 0
+    drop_30.fixed[30 - 2] = 0
+    both = combine(cur, [drop_18, drop_30])
+    fr = ev.flows[0]
+    lev = pb.screen_data(0, cur, fr, 10, exact=True)
+    m = {k: _dense_model_merit(pb, cur, fr, lev, st)[0] for k, st in
+         (("here", cur), ("18", drop_18), ("30", drop_30), ("both", both))}
+    interaction = (m["both"] - m["18"]) - (m["30"] - m["here"])
+    assert interaction > 1e-6
+    moves = MoveSet.of([drop_18, drop_30])
+    merit, _ = screen(pb, cur, ev.flows, moves, exact=True, with_present=True)
+    here, merit = merit[-1], merit[:-1]
+
+    def fake(gain):
+        return dataclasses.replace(ev, merit=ev.merit - gain)
+    joined = _joined(pb, cur, ev, moves, [(0, fake(3.0 * interaction)), (1, fake(2.0 * interaction))],
+                     merit, here, True)
+    assert joined is not None and joined.key() == both.key()
+    alone = _joined(pb, cur, ev, moves, [(0, fake(3.0 * interaction)), (1, fake(0.5 * interaction))],
+                    merit, here, True)
+    assert alone is None

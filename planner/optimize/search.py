@@ -347,6 +347,33 @@ def combine(cur: Settings, moves: list) -> Settings | None:
     return out if count >= 2 else None
 
 
+def _joined(pb: PlanProblem, cur: Settings, ev: Evaluation, moves, better: list, merit, here: float, exact: bool):
+    """The improving moves of a batch (``better``: (index, evaluation), best AC merit first) that
+    are worth making together, combined (:func:`combine`), or None.
+
+    A move joins when it touches no lever an earlier one did and its own AC gain outweighs its
+    interaction with them as the model of the point sees it: ``model(joined + move) -
+    model(joined) - (model(move) - model(here))``. Two banks taken out of one area, each an
+    improvement alone, can together pull its voltages below the band; the model's limit rows
+    see that, and the pair is not checked."""
+    first = moves[better[0][0]]
+    taken = [first]
+    touched = _changed(cur, first)
+    for j, new in better[1:]:
+        move = moves[j]
+        mask = _changed(cur, move)
+        if np.any(mask & touched):
+            continue
+        joined = taken[0] if len(taken) == 1 else combine(cur, taken)
+        both = combine(cur, taken + [move])
+        m, _ = screen(pb, cur, ev.flows, [both, joined], exact=exact)
+        interaction = (m[0] - m[1]) - (merit[j] - here)
+        if (new.merit - ev.merit) + interaction < 0.0:
+            taken.append(move)
+            touched |= mask
+    return combine(cur, taken) if len(taken) > 1 else None
+
+
 def local_search(pb: PlanProblem, cur: Settings, ev: Evaluation, options, log: list, progress=None,
                  seen: dict | None = None):
     """Improve ``cur`` by model-screened, AC-checked moves. Returns (settings, evaluation,
@@ -396,7 +423,7 @@ def local_search(pb: PlanProblem, cur: Settings, ev: Evaluation, options, log: l
                 # combination, best first, is checked too and taken when it beats the best single
                 # move, so one round (one new point, one screen) harvests several of them
                 better.sort(key=lambda x: x[1].merit)      # stable: ties keep the list order
-                comb = combine(cur, [moves[j] for j, _ in better]) if len(better) > 1 else None
+                comb = _joined(pb, cur, ev, moves, better, merit, here, exact) if len(better) > 1 else None
                 if comb is not None and comb.key() not in seen and within_budget(pb, comb) and used < budget:
                     new = evaluate(pb, comb, warm=ev.flows, chord=True)
                     used += len(pb.levels)

@@ -25,6 +25,7 @@ which cross-checks the quadratic model's slope.
 """
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass
 
 import numpy as np
@@ -171,9 +172,26 @@ def _jacobian_at(c, v, kind):
     pv = np.flatnonzero((kind == PV) & c.alive)
     pq = np.flatnonzero((kind == PQ) & c.alive)
     pvpq = np.concatenate([pv, pq])
-    pat = JacobianPattern(c.ybus(), pvpq, pq)
+    pat = _pattern(c, c.ybus(), pvpq, pq)
     dload = c.s_load_i + 2.0 * c.s_load_z * np.abs(v)
     return pat, pat.matrix(v, dload), pvpq, pq, dload
+
+
+def _pattern(c, y, pvpq, pq):
+    """:class:`JacobianPattern` of ``y`` for this PV / PQ split, its structure kept in the compiled
+    network's shared cache (copies with other shunts, setpoints or taps have the same admittance
+    pattern); the returned pattern carries ``y``'s own values."""
+    kept = c._cache.setdefault("shared", {}).setdefault("optimizer_patterns", {})
+    key = (pvpq.tobytes(), pq.tobytes())
+    pat = kept.get(key)
+    if pat is None or not (np.array_equal(pat.y.indptr, y.indptr) and np.array_equal(pat.y.indices, y.indices)):
+        pat = JacobianPattern(y, pvpq, pq)
+        if len(kept) > 8:
+            kept.clear()
+        kept[key] = pat
+    out = copy.copy(pat)
+    out.y = y
+    return out
 
 
 def series_current_parts(c):
@@ -301,7 +319,10 @@ def linearize(flow: FlowResult, *, shunt_buses, vset_buses, xfmr_branches, lu=No
     y = c.ybus()
     pat, J, pvpq, pq, dload = _jacobian_at(c, v, kind)
     if lu is None:
-        lu = OrderedFactor(J, factor_orders(c))
+        # SuperLU's own ordering and plain solves, all columns in one call: the step model's
+        # last bits, and so the node-limited MILP's path, stay those of the plain factor (see
+        # DEVELOPERS.md); the kept-order factor serves the search's checks and gradients
+        lu = factorize(J)
     na = len(pvpq)
 
     # direct change of the computed bus injection S = V conj(Y V) per lever, holding the state
