@@ -27,6 +27,7 @@ from .levers import Levers, Limits, Objective, Options
 from .milp import solve_step
 from .problem import Evaluation, LevelCase, PlanProblem, Settings
 from .results import PlanResult, PlanStatus, StepRecord, Violation
+from .rows import ROW_TOL
 from .search import local_search, worst
 
 __all__ = ["plan", "LevelCase", "PlanResult", "PlanStatus", "Violation", "StepRecord",
@@ -266,7 +267,11 @@ def _tolerance(pb: PlanProblem, merit: float) -> float:
 def _model_merit(pb: PlanProblem, spec, cur: Settings, to: Settings | None, flows) -> float:
     """The step model's merit of ``to`` (model built at ``cur``; None: the model's own point,
     no lever change): quadratic losses, capital and the penalised breaches of its linear limit
-    rows, as the MILP scores them (without its cuts and tie-break)."""
+    rows, as the MILP scores them (without its cuts and tie-break). A row counts as breached only
+    beyond the AC check's own tolerance on a limit (``rows.ROW_TOL``): a generator held on its
+    reactive limit sits a hair outside its model bound at the present point (to the load flow's
+    tolerance), and removing that phantom breach is no gain to expect (on a setpoint-only case
+    it kept eight more steps running, each rejected by the AC check)."""
     total = pb.capital_weight() * pb.capital(cur if to is None else to)
     for l, lev in enumerate(spec.levels):
         du = pb.lever_changes(l, cur, cur if to is None else to, flows[l])
@@ -282,8 +287,8 @@ def _model_merit(pb: PlanProblem, spec, cur: Settings, to: Settings | None, flow
                 continue
             x = x0 + slopes @ du
             if lo is not None:
-                breach += float(np.maximum(lo - x, 0.0).sum())
-            breach += float(np.maximum(x - hi, 0.0).sum())
+                breach += float(np.maximum(lo - ROW_TOL - x, 0.0).sum())
+            breach += float(np.maximum(x - hi - ROW_TOL, 0.0).sum())
         total += spec.penalty * breach
     return float(total)
 

@@ -153,6 +153,10 @@ def build_model(spec: StepSpec):
 
     m = pyo.ConcreteModel(name="loss_step")
     nS, nL = len(spec.unit_pu), len(spec.levels)
+    # With continuous levers only (setpoints, continuous taps) the step is a convex QP: HiGHS
+    # solves the exact quadratic loss model, with no tangent cuts and no refinement rounds.
+    # Any integer lever needs the cuts: HiGHS solves no mixed-integer QP.
+    m.exact_quadratic = is_continuous_step(spec)
     S, E, G, T, L = range(nS), range(len(spec.exist_step_pu)), range(len(spec.v_lo)), range(len(spec.tap_step)), range(nL)
     nmax = np.asarray(spec.max_units, int)
     cur = np.array([lev.cur_units for lev in spec.levels], float).reshape(nL, nS)
@@ -299,13 +303,15 @@ def build_model(spec: StepSpec):
             float(root * lev.d[k] + const[k]), linear([1.0] + [-c for c in terms[k][0]], [b.s[k]] + terms[k][1]),
             float(root * lev.d[k] + const[k])))
         b.cuts = pyo.ConstraintList()
+        if m.exact_quadratic:
+            b.w.fix(0.0)     # unused: the objective holds the squares themselves (below)
         count = _cut_counts(spec, s_hi - s_lo, loss_now)
-        for k in K:
+        for k in ([] if m.exact_quadratic else K):
             pts = np.linspace(s_lo[k], s_hi[k], count[k]) if s_hi[k] > s_lo[k] else np.array([s_lo[k]])
             pts = np.unique(np.concatenate([pts, [root * lev.d[k]]]))
             for p in pts[pts != 0.0]:     # the cut at 0 is w >= 0, the variable's own bound
                 b.cuts.add((None, linear([2.0 * p, -1.0], [b.s[k], b.w[k]]), p * p))
-        for seed in spec.seeds:
+        for seed in ([] if m.exact_quadratic else spec.seeds):
             for k, p in enumerate(root * (lev.d + lev.R @ seed[l])):
                 if p != 0.0:
                     b.cuts.add((None, linear([2.0 * p, -1.0], [b.s[k], b.w[k]]), p * p))
@@ -328,10 +334,21 @@ def build_model(spec: StepSpec):
         obj_vars += [m.k[l, s] for s in S]
     obj_coef += [spec.tie_break] * nS + [2.0 * spec.tie_break] * nS
     obj_vars += [m.nf[s] for s in S] + [m.ns[s] for s in S]
-    m.objective = pyo.Objective(expr=linear(obj_coef, obj_vars, obj_const), sense=pyo.minimize)
+    expr = linear(obj_coef, obj_vars, obj_const)
+    if m.exact_quadratic:
+        expr = expr + pyo.quicksum(spec.levels[l].weight / scale * m.levels[l].s[k] ** 2
+                                   for l in L for k in range(len(spec.levels[l].d)))
+    m.objective = pyo.Objective(expr=expr, sense=pyo.minimize)
     # objective value = the solver's objective + this constant (solve_model adds it back)
     m.objective_offset = float(offset)
     return m
+
+
+def is_continuous_step(spec: StepSpec) -> bool:
+    """True when no lever of the step is an integer: no bank sites, no existing banks, no
+    stepped taps (the step model is then a convex QP, solved exactly)."""
+    return (len(spec.unit_pu) == 0 and len(spec.exist_step_pu) == 0
+            and not np.any(np.asarray(spec.tap_step, float) > 0))
 
 
 def _cut_counts(spec: StepSpec, width: np.ndarray, loss_mw: float) -> np.ndarray:
@@ -391,6 +408,8 @@ def solve_step(spec: StepSpec, *, max_rounds: int = 12, rel_tol: float = REFINE_
         gap = 0.0
         total = 0.0
         added = False
+        if m.exact_quadratic:
+            break        # the exact quadratic: nothing to refine
         for l, lev in enumerate(spec.levels):
             b = m.levels[l]
             total += lev.weight * float(sol.predicted_loss_pu[l]) * spec.base_mva
