@@ -14,7 +14,6 @@ import numpy as np
 import pytest
 import scipy.sparse.linalg as spla
 
-import planner.optimize.sensitivity as sensitivity_module
 from planner.flow.newton import solve_flow
 from planner.network.cdf import read_cdf
 from planner.network.io import read_network
@@ -35,7 +34,7 @@ def f33():
 
 def test_ordered_factor_solves_as_superlu_with_its_own_ordering():
     # IEEE 30-bus case (tests/data/ieee30cdf.txt): the Jacobian at the solved point and at a
-    # second point (same pattern, other values); one, and more than SOLVE_BLOCK, right-hand sides
+    # second point (same pattern, other values); one and several right-hand sides
     fr = solve_flow(read_cdf(DATA / "ieee30cdf.txt"), build_tables=False)
     c = fr.compiled
     orders = {}
@@ -45,7 +44,7 @@ def test_ordered_factor_solves_as_superlu_with_its_own_ordering():
         ref = spla.splu(jac.tocsc())
         got = OrderedFactor(jac, orders)
         b = rng.standard_normal(jac.shape[0])
-        B = rng.standard_normal((jac.shape[0], 3 * sensitivity_module.SOLVE_BLOCK + 5))
+        B = rng.standard_normal((jac.shape[0], 7))
         for trans in ("N", "T"):
             np.testing.assert_allclose(got.solve(b, trans), ref.solve(b, trans=trans), rtol=1e-9, atol=1e-12)
             np.testing.assert_allclose(got.solve(B, trans), ref.solve(B, trans=trans), rtol=1e-9, atol=1e-12)

@@ -223,7 +223,7 @@ def within_budget(pb: PlanProblem, st: Settings) -> bool:
     return True
 
 
-_SCREEN_CHUNK = 2048  # moves screened at a time: bounds the (moves x rows) arrays whatever the case size
+_SCREEN_CHUNK = 512   # moves screened at a time: bounds the (moves x rows) arrays whatever the case size
 
 
 def capital_of(pb: PlanProblem, fixed: np.ndarray, switched: np.ndarray) -> np.ndarray:

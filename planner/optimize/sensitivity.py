@@ -212,11 +212,6 @@ def lifted_kinds(c):
     return np.where(c.kind == SLACK, SLACK, np.where(c.kind == PV, PV, PQ))
 
 
-# right-hand sides per call of the triangular solves when many are solved at once (the
-# linearisation's lever columns); see OrderedFactor._solve_blocks
-SOLVE_BLOCK = 16
-
-
 class OrderedFactor:
     """Sparse LU of a Jacobian ``J`` made in a kept fill-reducing order, solving as SuperLU does
     (``solve(b)``: ``J x = b``; ``solve(b, trans="T")``: ``J^T x = b``).
@@ -259,20 +254,8 @@ class OrderedFactor:
     def solve(self, rhs: np.ndarray, trans: str = "N") -> np.ndarray:
         o = self.order
         rhs = np.asarray(rhs, dtype=np.float64)
-        if rhs.ndim == 2 and rhs.shape[1] > SOLVE_BLOCK:
-            return self._solve_blocks(rhs, trans)
         x = np.empty_like(rhs, dtype=np.float64)
         x[o] = self.lu.solve(rhs[o], trans="N" if trans == "T" else "T")
-        return x
-
-    def _solve_blocks(self, rhs: np.ndarray, trans: str) -> np.ndarray:
-        """Many right-hand sides, ``SOLVE_BLOCK`` columns at a time: a block's columns stay in
-        cache through the triangular sweeps (and through the permutation)."""
-        o = self.order
-        x = np.empty(rhs.shape, order="F")
-        for a in range(0, rhs.shape[1], SOLVE_BLOCK):
-            part = np.asfortranarray(rhs[o, a:a + SOLVE_BLOCK])
-            x[o, a:a + SOLVE_BLOCK] = self.lu.solve(part, trans="N" if trans == "T" else "T")
         return x
 
 
