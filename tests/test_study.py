@@ -486,8 +486,9 @@ def test_workers_import_this_package_not_a_planner_folder_in_the_current_folder(
     import os
     import subprocess
     import sys
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(Path(__file__).resolve().parents[1]),
-                                                       os.environ.get("PYTHONPATH", "")]))
+    # the package's own folder on the path (no empty entry: that would be the current folder)
+    paths = [str(Path(__file__).resolve().parents[1])] + os.environ.get("PYTHONPATH", "").split(os.pathsep)
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in paths if p))
     p = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, env=env,
                        timeout=300)
     assert p.returncode == 0, p.stderr[-2000:]
