@@ -15,11 +15,11 @@ import dataclasses
 import numpy as np
 
 from ..flow.equations import bus_mismatch, injection, load_power
-from ..flow.jacobian import JacobianPattern, factorize
 from ..flow.newton import solve_flow
 from ..flow.result import FlowResult, FlowStatus, build_result
 from ..network.compile import PQ, PV, SLACK
 from .problem import Evaluation, PlanProblem, Settings
+from .sensitivity import jacobian_factor
 from .results import Violation
 
 _MARGIN_STEP = 5e-5   # pu added to a voltage row's margin beyond the breach that AC showed
@@ -111,9 +111,7 @@ class _ChordBase:
         self.held = fr.limit_state != 0
         self.q_fixed = np.where(fr.limit_state > 0, c.q_max, np.where(fr.limit_state < 0, c.q_min, 0.0))
         if lu is None:
-            pat = JacobianPattern(c.ybus(), self.pvpq, self.pq)
-            dload = c.s_load_i + 2.0 * c.s_load_z * np.abs(fr.v)
-            lu = factorize(pat.matrix(fr.v, dload))
+            lu = jacobian_factor(fr, kind)
         self.lu = lu
 
 

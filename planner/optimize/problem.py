@@ -211,7 +211,13 @@ class PlanProblem:
         ratio = c.ratio.copy()
         for g, br in enumerate(self.tap_members):
             ratio[br] = st.ratio[l, g]
-        return replace(c, ysh=ysh, v_set=v_set, ratio=ratio)
+        out = replace(c, ysh=ysh, v_set=v_set, ratio=ratio)
+        if np.array_equal(ratio, c.ratio):
+            # the same branches at the same ratios: the branch admittance matrix is the level's
+            # own (its cache entry is keyed by the ratios, so a later change rebuilds it)
+            c.ybranch()
+            out._cache["ybranch"] = c._cache["ybranch"]
+        return out
 
     def capital(self, st: Settings) -> float:
         total = 0.0
@@ -239,10 +245,10 @@ class PlanProblem:
 
     # ---- linear model ---------------------------------------------------------------------
     def point_factor(self, l: int, fr: FlowResult, own_kinds: bool = False):
-        """Sparse LU of the Jacobian at ``fr`` (level ``l``) with generator limits lifted, or
-        (``own_kinds``) with ``fr``'s own bus kinds (generators held at a limit as PQ: the chord
-        checks' Jacobian); one LU where the two agree. Kept while ``fr`` is the level's latest
-        point."""
+        """Sparse LU (:class:`~planner.optimize.sensitivity.OrderedFactor`) of the Jacobian at
+        ``fr`` (level ``l``) with generator limits lifted, or (``own_kinds``) with ``fr``'s own bus
+        kinds (generators held at a limit as PQ: the chord checks' Jacobian); one LU where the two
+        agree. Kept while ``fr`` is the level's latest point. The linearisation makes its own."""
         c = fr.compiled
         own = own_kinds and not np.array_equal(fr.kind[c.alive], lifted_kinds(c)[c.alive])
         got = self._factor.get((l, own))
@@ -256,7 +262,9 @@ class PlanProblem:
         same settings solved again, e.g. the final plan's check with tables, reuse it)."""
         got = self._linear.get(l)
         if got is None or not (got[0] is fr or same_point(got[0], fr)):
-            sens = self.sensitivity(fr, lu=self.point_factor(l, fr))
+            # its own LU (linearize's plain factor): the step model is the same to the last bit
+            # whatever factor the checks at this point use
+            sens = self.sensitivity(fr)
             # |c + M du|^2 = |d + R du|^2 + const exactly (sensitivity.Sensitivity.loss_model: an
             # R-only QR on small networks, a Gram matrix from sparse products on large ones)
             got = (fr, sens, sens.loss_model())

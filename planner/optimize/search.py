@@ -17,6 +17,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.sparse as sp
 
 from ..flow.runtime import release_free_memory
 from .ac_check import evaluate
@@ -265,7 +266,7 @@ def screen(pb: PlanProblem, st: Settings, flows, moves, exact=False, with_presen
     k1 = k0 + len(pb.exist_step)
     k2 = k1 + len(pb.vset_bus)
     for l in range(L):
-        lev = pb.screen_data(l, st, flows[l], units, exact=exact)
+        lev = _screen_data(pb, l, st, flows[l], units, exact)
         v_now = np.abs(flows[l].v[pb.vset_bus])
         # lever changes of every move (and of the present point, whose setpoints may differ
         # from the voltages reached), written into one array
@@ -278,23 +279,99 @@ def screen(pb: PlanProblem, st: Settings, flows, moves, exact=False, with_presen
             du[n_moves, k1:k2] = st.vset[l] - v_now
         linear = getattr(lev, "loss_linear", None)
         viol = np.zeros(N)
+        # a move changes one or two levers, so its row of du is sparse: the products with the
+        # slopes cost (moves x changed levers x rows), not (moves x every lever x rows)
+        du_sparse = sp.csr_matrix(du)
+        RT = np.ascontiguousarray(lev.R.T)
+        slopes_t = [None if x0 is None or not len(x0) else np.ascontiguousarray(slope.T)
+                    for x0, slope in ((lev.v0, lev.dv), (lev.q0, lev.dq), (lev.s0, lev.ds))]
         for a in range(0, N, _SCREEN_CHUNK):
-            part = du[a:a + _SCREEN_CHUNK]
-            s = lev.d[None, :] + part @ lev.R.T if len(lev.d) else np.zeros((len(part), 0))
+            part = du_sparse[a:a + _SCREEN_CHUNK]
+            s = lev.d[None, :] + part @ RT if len(lev.d) else np.zeros((part.shape[0], 0))
             quad = np.sum(s * s, axis=1) + lev.const
             if linear is not None:
                 quad += part @ linear
             losses[a:a + _SCREEN_CHUNK, l] = quad * pb.base
-            for x0, slope, lo, hi in ((lev.v0, lev.dv, lev.v_lo, lev.v_hi), (lev.q0, lev.dq, lev.q_lo, lev.q_hi),
-                                      (lev.s0, lev.ds, None, lev.s_hi)):
-                if x0 is None or not len(x0):
+            for (x0, _, lo, hi), slope_t in zip(((lev.v0, lev.dv, lev.v_lo, lev.v_hi),
+                                                 (lev.q0, lev.dq, lev.q_lo, lev.q_hi),
+                                                 (lev.s0, lev.ds, None, lev.s_hi)), slopes_t):
+                if slope_t is None:
                     continue
-                x = x0[None, :] + part @ slope.T
+                x = x0[None, :] + part @ slope_t
                 if lo is not None:
                     viol[a:a + _SCREEN_CHUNK] += np.maximum(lo[None, :] - x, 0.0).sum(axis=1)
                 viol[a:a + _SCREEN_CHUNK] += np.maximum(x - hi[None, :], 0.0).sum(axis=1)
         merit += weights[l] * losses[:, l] + pb.penalty() * viol
     return merit, losses
+
+
+def _screen_data(pb: PlanProblem, l: int, st: Settings, fr, units: int, exact: bool):
+    """:meth:`PlanProblem.screen_data`, kept while ``fr`` is the level's present point (a second
+    screen at the same point, e.g. of a combined move, reuses the model)."""
+    memo = pb.__dict__.setdefault("_screen_memo", {})
+    got = memo.get(l)
+    if got is not None and got[0] is fr and got[1] == st.key() and got[2] == units and got[3] == exact:
+        return got[4]
+    lev = pb.screen_data(l, st, fr, units, exact=exact)
+    memo[l] = (fr, st.key(), units, exact, lev)
+    return lev
+
+
+def _changed(cur: Settings, st: Settings) -> np.ndarray:
+    """Which levers ``st`` changes from ``cur``: one flag per site (any of its fixed, switched
+    or per-level units), existing bank, setpoint and tap lever, at any level."""
+    def moved(a, b, lead):
+        d = np.abs(np.asarray(a, float) - np.asarray(b, float)) > 1e-12
+        return d.any(axis=tuple(range(lead))) if lead else d
+    return np.concatenate([moved(st.fixed, cur.fixed, 0) | moved(st.switched, cur.switched, 0)
+                           | moved(st.steps, cur.steps, 1), moved(st.exist, cur.exist, 1),
+                           moved(st.vset, cur.vset, 1), moved(st.ratio, cur.ratio, 1)])
+
+
+def combine(cur: Settings, moves: list) -> Settings | None:
+    """The settings with every move of ``moves`` (settings one move from ``cur``) applied together,
+    taken in the given order and each only if it touches no lever (site, existing bank, setpoint,
+    tap) an earlier one touched; None when fewer than two moves combine."""
+    out = cur.copy()
+    taken = None
+    count = 0
+    for st in moves:
+        mask = _changed(cur, st)
+        if taken is not None and np.any(mask & taken):
+            continue
+        taken = mask if taken is None else taken | mask
+        for f in _FIELDS:
+            a = getattr(out, f)
+            a += getattr(st, f) - getattr(cur, f)
+        count += 1
+    return out if count >= 2 else None
+
+
+def _joined(pb: PlanProblem, cur: Settings, ev: Evaluation, moves, better: list, merit, here: float, exact: bool):
+    """The improving moves of a batch (``better``: (index, evaluation), best AC merit first) that
+    are worth making together, combined (:func:`combine`), or None.
+
+    A move joins when it touches no lever an earlier one did and its own AC gain outweighs its
+    interaction with them as the model of the point sees it: ``model(joined + move) -
+    model(joined) - (model(move) - model(here))``. Two banks taken out of one area, each an
+    improvement alone, can together pull its voltages below the band; the model's limit rows
+    see that, and the pair is not checked."""
+    first = moves[better[0][0]]
+    taken = [first]
+    touched = _changed(cur, first)
+    for j, new in better[1:]:
+        move = moves[j]
+        mask = _changed(cur, move)
+        if np.any(mask & touched):
+            continue
+        joined = taken[0] if len(taken) == 1 else combine(cur, taken)
+        both = combine(cur, taken + [move])
+        m, _ = screen(pb, cur, ev.flows, [both, joined], exact=exact)
+        interaction = (m[0] - m[1]) - (merit[j] - here)
+        if (new.merit - ev.merit) + interaction < 0.0:
+            taken.append(move)
+            touched |= mask
+    return combine(cur, taken) if len(taken) > 1 else None
 
 
 def local_search(pb: PlanProblem, cur: Settings, ev: Evaluation, options, log: list, progress=None,
@@ -332,13 +409,27 @@ def local_search(pb: PlanProblem, cur: Settings, ev: Evaluation, options, log: l
                 pos += 1
                 if moves[j].key() not in seen:
                     chunk.append(j)
+            better = []
             for j in chunk:
                 new = evaluate(pb, moves[j], warm=ev.flows, chord=True)
                 used += len(pb.levels)
                 seen[moves[j].key()] = new.merit
+                if new.converged and new.merit < ev.merit - 1e-12:
+                    better.append((j, new))
                 if new.converged and new.merit < (best[1].merit if best else ev.merit) - 1e-12:
                     best = (j, new)
             if best is not None:
+                # improvements on separate levers mostly add up (banks far apart): their
+                # combination, best first, is checked too and taken when it beats the best single
+                # move, so one round (one new point, one screen) harvests several of them
+                better.sort(key=lambda x: x[1].merit)      # stable: ties keep the list order
+                comb = _joined(pb, cur, ev, moves, better, merit, here, exact) if len(better) > 1 else None
+                if comb is not None and comb.key() not in seen and within_budget(pb, comb) and used < budget:
+                    new = evaluate(pb, comb, warm=ev.flows, chord=True)
+                    used += len(pb.levels)
+                    seen[comb.key()] = new.merit
+                    if new.converged and new.merit < best[1].merit - 1e-12:
+                        best = (comb, new)
                 break
             # nothing in this batch: go on only while the model still expects an improvement
             if pos >= len(order) or merit[order[pos]] >= here - 1e-12 * max(1.0, abs(here)):
@@ -348,10 +439,17 @@ def local_search(pb: PlanProblem, cur: Settings, ev: Evaluation, options, log: l
                 exact = True
                 continue
             break
+        exact_here = exact
         exact = False
         j, new = best
-        cur, ev = moves[j], new
-        predicted = dict(zip(names, map(float, losses[j])))
+        if isinstance(j, Settings):
+            # the combined move: its prediction by the same model of the point it left
+            _, comb_losses = screen(pb, cur, ev.flows, [j], exact=exact_here)
+            cur, ev = j, new
+            predicted = dict(zip(names, map(float, comb_losses[0])))
+        else:
+            cur, ev = moves[j], new
+            predicted = dict(zip(names, map(float, losses[j])))
         log.append(StepRecord(iteration=len(log), accepted=True, merit=ev.merit, polish=True,
                               predicted_mw=predicted, ac_mw=dict(zip(names, map(float, ev.losses_mw))),
                               violation=ev.violation_total, worst_violation=worst(ev)))
