@@ -290,3 +290,39 @@ def test_dc_start_with_imbalance_spread_leaves_the_slack_nothing_to_carry(bases)
     assert slack_injection(dc_angles(c, va0)) == pytest.approx(own - imbalance, abs=1e-9)
     share = imbalance * load[slack] / load.sum()
     assert slack_injection(dc_angles(c, va0, spread_imbalance=True)) == pytest.approx(own - share, abs=1e-9)
+
+
+# --- a trap for full Newton steps: buses with no load at 0 V -----------------------------------
+# tests/data/no_load_buses_23: a random 23-bus network the property tests drew (no load anywhere;
+# buses 3032 and 8 hang behind two long lines and a phase-shifting transformer, with a 10 Mvar
+# shunt at 3032). A bus with no load and only shunts meets its power equations at 0 V, and full
+# Newton steps from a flat start (the textbook undamped method too, checked when the case was
+# found) settle there; the continuation cannot help, as there is no load to scale down.
+
+NO_LOAD = DATA / "no_load_buses_23"
+
+
+def test_full_steps_fall_into_the_zero_voltage_point_of_no_load_buses():
+    from planner.network.io import read_network
+    res = solve_flow(read_network(NO_LOAD), continuation=False, check_plausibility=False)
+    c = res.compiled
+    assert res.status == FlowStatus.CONVERGED
+    assert res.vm[c.index_of([3032, 8])].max() < 1e-3       # the trap: 0 V, power equations met
+
+
+@pytest.mark.parametrize("limits", [True, False])
+@pytest.mark.parametrize("start", ["flat", "dc"])
+def test_monotone_third_start_finds_the_operable_point(limits, start, flowcheck):
+    from planner.network.io import read_network
+    net = read_network(NO_LOAD)
+    res = solve_flow(net, enforce_q_limits=limits, start=start)
+    assert res.status == FlowStatus.CONVERGED and res.strategy == "monotone", res.message
+    assert "monotone step control" in res.message
+    if start == "flat":
+        assert "full steps: solution looks inoperable: bus 3032 at 0.000 pu" in res.message
+    flowcheck.check(res, flowcheck.from_network(net), limits=limits)    # independent dense check
+    vm = dict(zip(res.compiled.bus_ids.tolist(), res.vm))
+    # the capacitor raises the far end (from an independent dense Newton with a monotone line
+    # search, run when the case was found): 1.1336 pu at bus 3032, 1.1801 pu behind the shifter
+    assert vm[3032] == pytest.approx(1.13359, abs=1e-4) and vm[8] == pytest.approx(1.18015, abs=1e-4)
+    assert min(vm.values()) == pytest.approx(0.97467, abs=1e-4)

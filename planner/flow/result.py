@@ -92,7 +92,8 @@ class FlowResult:
     equations_solved: bool = False
     oscillating_buses: list = field(default_factory=list)   # generators frozen at a limit after flip-flopping
     continuation_steps: int = 0      # load steps taken by the continuation (0: plain Newton sufficed)
-    strategy: str = "newton"         # "newton", "dc-start" (second start, DC angles) or "continuation"
+    strategy: str = "newton"         # "newton", "dc-start" (second start, DC angles), "monotone" (third start,
+    #                                  monotone step control) or "continuation"
 
     @property
     def converged(self) -> bool:
