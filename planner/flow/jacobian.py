@@ -57,7 +57,7 @@ LU_OPTIONS = dict(permc_spec="MMD_AT_PLUS_A", options=dict(SymmetricMode=True))
 # while bounding growth per step by 10, a common practice threshold for sparse LU.
 LU_PANEL = 4
 LU_PIVOT_THRESHOLD = 0.1
-_LU_ORDERED = dict(permc_spec="NATURAL", panel_size=LU_PANEL, diag_pivot_thresh=LU_PIVOT_THRESHOLD,
+LU_ORDERED = dict(permc_spec="NATURAL", panel_size=LU_PANEL, diag_pivot_thresh=LU_PIVOT_THRESHOLD,
                    options=dict(SymmetricMode=True))
 
 
@@ -93,7 +93,7 @@ class JacobianPattern:
             pieces_r.append(row_map[self.rows[m]])
             pieces_c.append(col_map[cols[m]])
             pieces_src.append(k[m] + offset * nnz)
-        self.indices, self.indptr, self.src = _csc_structure(
+        self.indices, self.indptr, self.src = csc_structure(
             np.concatenate(pieces_r), np.concatenate(pieces_c), np.concatenate(pieces_src), self.size)
 
     def matrix(self, v: np.ndarray, dload_dvm: np.ndarray | None = None) -> sp.csc_matrix:
@@ -113,11 +113,11 @@ class JacobianPattern:
         inv = np.empty(self.size, np.int64)
         inv[order] = np.arange(self.size)
         cols = np.repeat(np.arange(self.size), np.diff(self.indptr))
-        new.indices, new.indptr, new.src = _csc_structure(inv[self.indices], inv[cols], self.src, self.size)
+        new.indices, new.indptr, new.src = csc_structure(inv[self.indices], inv[cols], self.src, self.size)
         return new
 
 
-def _csc_structure(r, c, src, size):
+def csc_structure(r, c, src, size):
     """(indices, indptr, src) of distinct entries ``(r, c)`` in CSC order, rows sorted.
 
     scipy's compiled COO-to-CSC conversion does the sorting (several times faster than a
@@ -151,7 +151,7 @@ class NewtonLinearSolver:
             return lu.solve(rhs)
         if self._ordered is None:                 # built on second use: many rounds need one LU only
             self._ordered = self.pattern.permuted(self.order)
-        lu = spla.splu(self._ordered.matrix(v, dload_dvm), **_LU_ORDERED)
+        lu = spla.splu(self._ordered.matrix(v, dload_dvm), **LU_ORDERED)
         x = np.empty_like(rhs)
         x[self.order] = lu.solve(rhs[self.order])
         return x
@@ -389,7 +389,7 @@ class _ReducedSystem:
         # standard cases (measured, scipy 1.17 with its OpenBLAS).
         # mode="clip": no bounds-check buffer (every index is valid by construction)
         np.take(self._scaled_derivatives(v, dload_dvm, ibus, s_bus), self.t_src, out=jac_t.data, mode="clip")
-        lu = spla.splu(jac_t, **_LU_ORDERED)
+        lu = spla.splu(jac_t, **LU_ORDERED)
         return lu.solve(rhs, trans="T")
 
 

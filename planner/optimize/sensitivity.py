@@ -34,7 +34,7 @@ import scipy.linalg.lapack
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from ..flow.jacobian import _LU_ORDERED, JacobianPattern, bus_derivatives, factorize
+from ..flow.jacobian import LU_ORDERED, JacobianPattern, bus_derivatives, csc_structure, factorize
 from ..flow.newton import load_power
 from ..flow.result import FlowResult
 from ..network.compile import PQ, PV, SLACK
@@ -239,16 +239,13 @@ class OrderedFactor:
             inv[order] = np.arange(size)
             # where each entry of J lands in (J[order][:, order])^T, in CSC order
             cols = np.repeat(np.arange(size), np.diff(jac.indptr))
-            moved = sp.csc_matrix((np.arange(1, jac.nnz + 1, dtype=np.float64), (inv[cols], inv[jac.indices])),
-                                  shape=(size, size))
-            moved.sort_indices()
-            hit = (order, moved.indices.copy(), moved.indptr.copy(), moved.data.astype(np.int64) - 1)
+            hit = (order, *csc_structure(inv[cols], inv[jac.indices], np.arange(jac.nnz), size))
             if orders is not None:
                 orders[key] = hit
         self.order, indices, indptr, src = hit
         jt = sp.csc_matrix((jac.data[src], indices, indptr), shape=(size, size))
         jt.has_canonical_format = True
-        self.lu = spla.splu(jt, **_LU_ORDERED)
+        self.lu = spla.splu(jt, **LU_ORDERED)
         self.shape = jac.shape
 
     def solve(self, rhs: np.ndarray, trans: str = "N") -> np.ndarray:
