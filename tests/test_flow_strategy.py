@@ -326,3 +326,24 @@ def test_monotone_third_start_finds_the_operable_point(limits, start, flowcheck)
     # search, run when the case was found): 1.1336 pu at bus 3032, 1.1801 pu behind the shifter
     assert vm[3032] == pytest.approx(1.13359, abs=1e-4) and vm[8] == pytest.approx(1.18015, abs=1e-4)
     assert min(vm.values()) == pytest.approx(0.97467, abs=1e-4)
+
+
+# tests/data/no_load_buses_29: a second random network from the property tests (buses renumbered
+# from 1), nearly without load. Full steps leave bus 5 at 0 V again; the operable point loses
+# 3.9 MW (limits on) to the reactive flows the setpoints and shunts drive, which a DC loss estimate
+# (6e-8 MW) does not see: the plausibility check must not call that point suspect.
+
+@pytest.mark.parametrize("limits", [True, False])
+def test_losses_of_reactive_flows_do_not_make_the_operable_point_suspect(limits, flowcheck):
+    from planner.network.io import read_network
+    net = read_network(DATA / "no_load_buses_29")
+    res = solve_flow(net, enforce_q_limits=limits)
+    assert res.status == FlowStatus.CONVERGED and res.strategy == "monotone", res.message
+    assert "bus 5 at 0.000 pu" in res.message
+    flowcheck.check(res, flowcheck.from_network(net), limits=limits)    # independent dense check
+    assert res.vm.min() >= 1.0 - 1e-9
+    if not limits:
+        # an independent dense Newton with a monotone line search, run when the case was found
+        assert res.losses_mw == pytest.approx(7.12765, abs=1e-4)
+        assert res.vm.max() == pytest.approx(1.38259, abs=1e-4)
+        assert res.compiled.bus_ids[res.vm.argmax()] == 19
