@@ -209,10 +209,12 @@ def _solve(c, tol, max_iter, enforce_q_limits, start, build_tables, continuation
         # power equations allow -- and the continuation cannot help where there is no load to
         # scale down (found by the property tests: a 23-bus network, two no-load buses behind a
         # long line and a phase shifter).
-        ctx.growth = 1.0
+        # (an attempt that makes no progress ends early: the continuation still follows, and on a
+        # case beyond its loadability this start would otherwise spend its whole budget)
+        ctx.growth, ctx.give_up = 1.0, True
         v3, st3, it3, status3, message3 = _solve_schedule(ctx, v_start.copy(), st_start, 1.0, tol, max_iter,
                                                           history)
-        ctx.growth = GROWTH_BOUND
+        ctx.growth, ctx.give_up = GROWTH_BOUND, False
         total += it3
         if status3 == FlowStatus.CONVERGED and (not check_plausibility or implausible(
                 c, y, v3, symbolic, ibus=ctx.ibus_at(v3)) is None):
